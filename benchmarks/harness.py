@@ -1,0 +1,52 @@
+"""Small timing harness shared by the benchmark cases.
+
+A case is a function ``case(smoke: bool) -> list[Row]`` registered with
+``@case("section")``; ``benchmarks/run.py`` runs them all and writes
+``benchmarks/results.md``.
+"""
+
+from __future__ import annotations
+
+import os
+import platform
+import time
+from dataclasses import dataclass, field
+
+CASES: list[tuple[str, callable]] = []
+
+
+def case(section: str):
+    def deco(fn):
+        CASES.append((section, fn))
+        return fn
+    return deco
+
+
+@dataclass
+class Row:
+    name: str
+    mvkde_s: float
+    reference: str = ""
+    reference_s: float = float("nan")
+    max_error: float = float("nan")      # max |mvkde - reference| / peak
+    target: str = ""
+    notes: str = ""
+    extra: dict = field(default_factory=dict)
+
+    @property
+    def ratio(self) -> float:
+        return self.reference_s / self.mvkde_s if self.mvkde_s > 0 else float("nan")
+
+
+def best_of(fn, repeat: int = 3) -> tuple[float, object]:
+    """Minimum wall time over ``repeat`` calls, and the last result."""
+    best, out = float("inf"), None
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        out = fn()
+        best = min(best, time.perf_counter() - t0)
+    return best, out
+
+
+def machine() -> str:
+    return f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}"

@@ -1,0 +1,74 @@
+"""Run every benchmark case side by side with the reference libraries.
+
+    python benchmarks/run.py [--smoke] [--only SECTION] [--out benchmarks/results.md]
+
+Each row: mvkde's time, the reference library's time on the same data and
+the same H, their ratio (reference / mvkde: > 1 means mvkde is faster) and
+the max error relative to the peak density.
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as _dt
+import importlib
+import math
+import sys
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE))
+
+from harness import CASES, machine  # noqa: E402
+
+MODULES = ["bench_exact"]
+
+
+def fmt(x, digits=3):
+    if x is None or (isinstance(x, float) and math.isnan(x)):
+        return "-"
+    if isinstance(x, float):
+        return f"{x:.{digits}g}"
+    return str(x)
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--smoke", action="store_true", help="tiny sizes: checks the cases run, not their speed")
+    ap.add_argument("--only", default=None, help="run only sections whose name contains this text")
+    ap.add_argument("--out", default=str(HERE / "results.md"))
+    args = ap.parse_args(argv)
+    for m in MODULES:
+        importlib.import_module(m)
+    lines = [
+        "# mvkde benchmark results",
+        "",
+        f"Machine: {machine()}. Run: {_dt.datetime.now(_dt.timezone.utc):%Y-%m-%d %H:%M} UTC"
+        + (" (smoke sizes: not a speed measurement)" if args.smoke else ""),
+        "Command: `make bench` (`python benchmarks/run.py`). Ratio = reference time / mvkde time.",
+        "",
+    ]
+    current = None
+    for section, fn in CASES:
+        if args.only and args.only not in section:
+            continue
+        print(f"== {section}: {fn.__name__}", flush=True)
+        rows = fn(args.smoke)
+        if section != current:
+            lines += [f"## {section}", "",
+                      "| case | mvkde (s) | reference | reference (s) | ratio | max error / peak | target | notes |",
+                      "|---|---|---|---|---|---|---|---|"]
+            current = section
+        for r in rows:
+            line = (f"| {r.name} | {fmt(r.mvkde_s)} | {r.reference or '-'} | {fmt(r.reference_s)} | "
+                    f"{fmt(r.ratio)} | {fmt(r.max_error, 2)} | {r.target or '-'} | {r.notes} |")
+            print(line, flush=True)
+            lines.append(line)
+        lines.append("")
+    Path(args.out).write_text("\n".join(lines) + "\n")
+    print(f"wrote {args.out}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
