@@ -287,16 +287,19 @@ class DensityEstimate:
                              f"({', '.join(self.names)}): pass an (m, {self.d}) array")
         return pts
 
-    def _evaluate(self, pts: np.ndarray, kind: str, log: bool = False) -> np.ndarray:
-        engine, reason = _engines.choose(self.engine, kind=kind, n=self.n, m=pts.shape[0],
-                                         d=self.d, kernel=self.kernel.name)
-        self.attrs["engine"] = engine
-        self.attrs["engine_reason"] = reason
-        if log:
-            out = _engines.exact.log_density(pts, self.data, self.weights, self.bandwidth.matrix, self.kernel)
-        else:
-            out = _engines.exact.density(pts, self.data, self.weights, self.bandwidth.matrix, self.kernel)
-        return self._outside_support(pts, out, -np.inf if log else 0.0)
+    def _evaluate(self, pts: np.ndarray, log: bool = False) -> np.ndarray:
+        values, choice = _engines.evaluate_points(pts, self.data, self.weights, self.bandwidth.matrix,
+                                                  self.kernel, self.engine, log=log)
+        self.attrs.update(choice.as_attrs())
+        return self._outside_support(pts, values, -np.inf if log else 0.0)
+
+    def _evaluate_grid(self, axes) -> np.ndarray:
+        values, choice = _engines.evaluate_grid(axes, self.data, self.weights, self.bandwidth.matrix,
+                                                self.kernel, self.engine)
+        self.attrs.update(choice.as_attrs())
+        mesh = np.meshgrid(*axes, indexing="ij")
+        pts = np.column_stack([g.ravel() for g in mesh])
+        return self._outside_support(pts, values.ravel(), 0.0).reshape(values.shape)
 
     def _outside_support(self, pts, values, fill):
         if not _boundary.has_bounds(self.bounds):
@@ -310,11 +313,11 @@ class DensityEstimate:
 
     def pdf(self, points) -> np.ndarray:
         """Density at ``points`` ((m, d) array or DataFrame with the variables as columns)."""
-        return self._evaluate(self._points(points), "points")
+        return self._evaluate(self._points(points))
 
     def logpdf(self, points) -> np.ndarray:
         """Log density; for the Gaussian kernel a log-sum-exp that stays finite in far tails."""
-        return self._evaluate(self._points(points), "points", log=True)
+        return self._evaluate(self._points(points), log=True)
 
     __call__ = pdf
 
@@ -383,9 +386,7 @@ class DensityEstimate:
             ``numpy.linspace(lo_i, hi_i, size_i)``.
         """
         axes = self._grid_spec(size, limits)
-        mesh = np.meshgrid(*axes, indexing="ij")
-        pts = np.column_stack([m.ravel() for m in mesh])
-        values = self._evaluate(pts, "grid").reshape([a.size for a in axes])
+        values = self._evaluate_grid(axes)
         attrs = self._grid_attrs()
         if self.kernel.kernel.order > 2:
             cell = np.prod([a[1] - a[0] for a in axes])
