@@ -20,6 +20,7 @@ import xarray as xr
 
 from . import boundary as _boundary
 from . import engines as _engines
+from . import products as _products
 from .bandwidth import BandwidthMatrix, BandwidthResult, PARAMETRIZATIONS, select
 from .errors import InputError, check_choice
 from .kernels import FORMS, get_kernel, get_multivariate_kernel
@@ -432,4 +433,51 @@ class DensityEstimate:
         idx = rng.choice(self.n, size=n, p=self.weights)
         noise = self.bandwidth.matrix.colorize(self.kernel.sample(n, rng))
         return self.data[idx] + noise
+
+    # -- products (mvkde.products) -----------------------------------------
+    def marginal(self, names) -> "DensityEstimate":
+        """Marginal estimate of ``names`` (exact: Gaussian kernel, or product kernel with the
+        kept variables leading); otherwise see :meth:`marginal_grid`."""
+        return _products.marginal(self, names)
+
+    def marginal_grid(self, names, size=None, limits=None) -> xr.DataArray:
+        """Marginal density of ``names`` integrated numerically from the joint grid."""
+        return _products.marginal_grid(self, names, size, limits)
+
+    def conditional(self, given: dict, size=None, limits=None) -> xr.DataArray:
+        """Density of the other variables given values or (lo, hi) bins of ``given``."""
+        return _products.conditional(self, given, size=size, limits=limits)
+
+    def cdf(self, points, *, size=None) -> np.ndarray:
+        """Joint CDF P(X <= x componentwise)."""
+        return _products.cdf(self, points, size=size)
+
+    def exceedance(self, points, *, size=None) -> np.ndarray:
+        """Joint exceedance P(X > x componentwise)."""
+        return _products.exceedance(self, points, size=size)
+
+    def probability_grid(self, kind="exceedance", size=None, limits=None) -> xr.DataArray:
+        """Joint CDF ('cdf') or exceedance ('exceedance') at every grid node."""
+        return _products.probability_grid(self, kind, size, limits)
+
+    def quantiles(self, name, probs) -> np.ndarray:
+        """Marginal quantiles of variable ``name``."""
+        return _products.quantiles(self, name, probs)
+
+    def hdr_levels(self, masses=(0.5, 0.9, 0.99), *, size=None) -> np.ndarray:
+        """Density levels whose upper sets enclose ``masses`` of the probability."""
+        return _products.hdr_levels(self, masses, size=size)
+
+    def mass_above(self, level, *, size=None) -> np.ndarray:
+        """Probability of the region where the density is at least ``level``."""
+        return _products.mass_above(self, level, size=size)
+
+    def standard_error(self, points) -> np.ndarray:
+        """Asymptotic pointwise standard error of the density at ``points``."""
+        return _products.standard_error(self, self.pdf(points))
+
+    def bootstrap_bands(self, points=None, *, kind="density", level=0.9, replicates=200, seed=None):
+        """Percentile bootstrap band (lower, upper) for the density or exceedance."""
+        return _products.bootstrap_bands(self, points, kind=kind, level=level,
+                                         replicates=replicates, seed=seed)
 

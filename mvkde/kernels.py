@@ -129,6 +129,14 @@ class Kernel:
         s = self.scale
         return s * self._fn(s * np.asarray(u, dtype=float))
 
+    def cdf(self, u):
+        """Integrated kernel ``int_{-inf}^u K`` on the standard scale (closed forms)."""
+        return _CDF[self.name](np.asarray(u, dtype=float))
+
+    def unit_cdf(self, u):
+        """Integrated unit-variance kernel."""
+        return self.cdf(self.scale * np.asarray(u, dtype=float))
+
     @property
     def unit_roughness(self) -> float:
         return self.scale * self.roughness
@@ -210,6 +218,33 @@ _register(Kernel("gaussian4", math.inf, 27.0 / (32.0 * math.sqrt(math.pi)), 0.0,
 # R = (15/32)^2 int (3 - 10u^2 + 7u^4)^2 = 5/4  [calc]
 _register(Kernel("epanechnikov4", 1.0, 1.25, 0.0, "continuous", order=4, parent="epanechnikov",
                  description="fourth-order Epanechnikov; can go negative", _fn=_epanechnikov4))
+
+def _poly_cdf(coeffs, denom):
+    """CDF of a polynomial kernel on [-1, 1]: (sum c_k u^k) / denom, clipped to [0, 1]."""
+    def fn(u):
+        v = np.clip(u, -1.0, 1.0)
+        return np.polynomial.polynomial.polyval(v, coeffs) / denom
+    return fn
+
+
+def _triangular_cdf(u):
+    v = np.clip(u, -1.0, 1.0)
+    return np.where(v < 0, 0.5 * (1 + v) ** 2, 1 - 0.5 * (1 - v) ** 2)
+
+
+# int_{-1}^u K: integrate the polynomial kernels term by term [calc]
+_CDF = {
+    "uniform": _poly_cdf([1, 1], 2.0),
+    "triangular": _triangular_cdf,
+    "epanechnikov": _poly_cdf([2, 3, 0, -1], 4.0),
+    "biweight": _poly_cdf([8, 15, 0, -10, 0, 3], 16.0),
+    "triweight": _poly_cdf([16, 35, 0, -35, 0, 21, 0, -5], 32.0),
+    "cosine": lambda u: 0.5 * (1 + np.sin(np.pi * np.clip(u, -1.0, 1.0) / 2.0)),
+    "gaussian": lambda u: special.ndtr(u),
+    "gaussian4": lambda u: special.ndtr(u) + 0.5 * u * np.exp(-0.5 * u * u) / math.sqrt(2 * math.pi),
+    "epanechnikov4": _poly_cdf([16, 45, 0, -50, 0, 21], 32.0),
+}
+
 
 KERNEL_NAMES = ("uniform", "triangular", "epanechnikov", "biweight", "triweight", "cosine", "gaussian")
 HIGHER_ORDER_NAMES = ("gaussian4", "epanechnikov4")

@@ -1,0 +1,171 @@
+"""Products for risk models: marginals, conditionals, CDF/exceedance, quantiles, HDR, uncertainty."""
+
+import numpy as np
+import pytest
+from scipy import stats
+
+import mvkde
+from conftest import grid_integral
+
+S = np.array([[1.0, 0.6], [0.6, 2.0]])
+
+
+@pytest.fixture(scope="module")
+def big_normal():
+    x = np.random.default_rng(2024).multivariate_normal([0, 0], S, size=20_000)
+    return x, mvkde.fit(x)
+
+
+@pytest.mark.parametrize("a,b", [(0.0, 0.0), (1.0, 1.0), (-1.0, 0.5), (1.5, 2.0)])
+def test_exceedance_against_true_bivariate_normal(big_normal, a, b):
+    # Reference: scipy.stats.multivariate_normal.cdf of the true law;
+    # P(X1 > a, X2 > b) = 1 - F1(a) - F2(b) + F(a, b).
+    x, est = big_normal
+    mvn = stats.multivariate_normal([0, 0], S)
+    truth = 1 - stats.norm.cdf(a) - stats.norm.cdf(b, scale=np.sqrt(2)) + mvn.cdf([a, b])
+    mc_sd = np.sqrt(truth * (1 - truth) / len(x))
+    # Monte Carlo error of the sample plus the O(H) smoothing of a normal-scale estimate
+    assert abs(est.exceedance([a, b])[0] - truth) < 4 * mc_sd
+    assert abs(est.cdf([a, b])[0] - mvn.cdf([a, b])) < 4 * np.sqrt(truth * (1 - truth) / len(x)) + 0.004
+
+
+def test_exact_and_grid_cdf_agree(rng):
+    x = rng.multivariate_normal([0, 0], S, size=400)
+    diag = mvkde.fit(x, kernel="biweight", parametrization="diagonal")
+    pts = rng.multivariate_normal([0, 0], S, size=30)
+    from mvkde import products
+    exact = products.cdf(diag, pts)              # closed form: sum of products of kernel CDFs
+    axes, vals, _ = products._grid_cumulative(diag, 512, None, upper=False)
+    assert np.allclose(exact, products._interp(axes, vals, pts, upper=False), atol=2e-3)
+    up = products.exceedance(diag, pts)
+    axes, vals, _ = products._grid_cumulative(diag, 512, None, upper=True)
+    assert np.allclose(up, products._interp(axes, vals, pts, upper=True), atol=2e-3)
+
+
+def test_marginal_equals_one_dimensional_estimate(rng):
+    # The marginal of a Gaussian-kernel estimate is the 1-D estimate with the corresponding H entry
+    # (Wand & Jones 1995, Sec. 4.2: marginals of normal kernels are normal).
+    x = rng.multivariate_normal([0, 0], S, size=500)
+    est = mvkde.fit(x)
+    m = est.marginal(["x1"])
+    one = mvkde.fit(x[:, 1], bandwidth=[[est.H[1, 1]]], names=["x1"])
+    pts = np.linspace(-4, 4, 41)[:, None]
+    np.testing.assert_allclose(m.pdf(pts), one.pdf(pts), rtol=1e-12)
+    np.testing.assert_allclose(m.pdf(pts), stats.gaussian_kde(x[:, 1], bw_method=np.sqrt(
+        est.H[1, 1] / np.var(x[:, 1], ddof=1)))(pts[:, 0]), rtol=1e-10)
+    # numerical marginal from the joint grid agrees
+    mg = est.marginal_grid(["x1"], size=200)
+    np.testing.assert_allclose(mg.values, m.pdf(mg["x1"].values[:, None]), atol=2e-4)
+
+
+def test_product_kernel_marginal_of_leading_variable_is_exact(rng):
+    x = rng.multivariate_normal([0, 0], S, size=300)
+    est = mvkde.fit(x, kernel="epanechnikov")
+    m = est.marginal(["x0"])
+    mg = est.marginal_grid(["x0"], size=400)
+    np.testing.assert_allclose(mg.values, m.pdf(mg["x0"].values[:, None]), atol=3e-3 * mg.values.max())
+    with pytest.raises(mvkde.InputError, match="marginal_grid"):
+        est.marginal(["x1"])
+
+
+def test_conditional_of_bivariate_normal(big_normal):
+    # X2 | X1 = a ~ N(rho s2/s1 a, s2^2 (1 - rho^2)) for the normal law (closed form);
+    # the estimate adds its smoothing, so compare the mean and check normalisation.
+    x, est = big_normal
+    c = est.conditional({"x0": 1.0}, size=400)
+    assert grid_integral(c) == pytest.approx(1.0, abs=1e-6)
+    grid = c["x1"].values
+    mean = np.trapezoid(grid * c.values, grid)
+    assert mean == pytest.approx(0.6, abs=0.06)
+    cb = est.conditional({"x0": (0.5, 1.5)}, size=200)
+    assert grid_integral(cb) == pytest.approx(1.0, abs=1e-6)
+
+
+def test_hdr_level_and_coverage():
+    # Standard bivariate normal: the 95 % HDR is the disc of radius sqrt(chi2_2(0.95)); its level
+    # is phi_2 at that radius = 0.05 / (2 pi) (closed form).  Coverage of the estimated region under
+    # the true law within 1 % at n = 20,000.
+    x = np.random.default_rng(7).standard_normal((20_000, 2))
+    est = mvkde.fit(x)
+    level = est.hdr_levels([0.95], size=256)[0]
+    r2 = stats.chi2.ppf(0.95, 2)
+    closed = np.exp(-r2 / 2) / (2 * np.pi)
+    assert closed == pytest.approx(0.05 / (2 * np.pi))
+    assert level == pytest.approx(closed, rel=0.1)
+    g = est.grid(256)
+    X, Y = np.meshgrid(g["x0"].values, g["x1"].values, indexing="ij")
+    true = np.exp(-(X ** 2 + Y ** 2) / 2) / (2 * np.pi)
+    cell = (g["x0"].values[1] - g["x0"].values[0]) * (g["x1"].values[1] - g["x1"].values[0])
+    for mass, lv in zip((0.5, 0.9, 0.95, 0.99), est.hdr_levels([0.5, 0.9, 0.95, 0.99], size=256)):
+        coverage = true[g.values >= lv].sum() * cell
+        assert coverage == pytest.approx(mass, abs=0.01)
+    assert est.mass_above(level, size=256)[0] == pytest.approx(0.95, abs=2e-3)
+
+
+def test_quantiles_invert_the_cdf(rng):
+    x = rng.gamma(3.0, 2.0, size=(800, 1))
+    est = mvkde.fit(x)
+    probs = [0.05, 0.5, 0.95]
+    q = est.quantiles("x0", probs)
+    np.testing.assert_allclose(est.cdf(q[:, None]), probs, atol=5e-4)
+    y = rng.multivariate_normal([0, 0], S, size=800)
+    e2 = mvkde.fit(y)
+    q2 = e2.quantiles("x1", probs)
+    np.testing.assert_allclose(e2.marginal(["x1"]).cdf(q2[:, None]), probs, atol=5e-4)
+
+
+def test_standard_error_against_exact_variance():
+    # Exact variance for a Gaussian kernel and normal target [calc, from phi_A * phi_B = phi_{A+B}]:
+    # Var f_hat(x) = n^{-1} [ (4 pi)^{-d/2} |H|^{-1/2} phi_{S + H/2}(x) - (phi_{S + H}(x))^2 ].
+    # The asymptotic formula f R(K) / (n |H|^{1/2}) (Wand & Jones 1995, Sec. 4.3) is close at moderate n.
+    rng = np.random.default_rng(11)
+    n, H = 400, np.array([[0.15, 0.0], [0.0, 0.15]])
+    est = mvkde.fit(rng.standard_normal((n, 2)), bandwidth=H)
+    x0 = np.zeros((1, 2))
+    exact = (stats.multivariate_normal(cov=np.eye(2) + H / 2).pdf([0, 0]) / (4 * np.pi * np.sqrt(np.linalg.det(H)))
+             - stats.multivariate_normal(cov=np.eye(2) + H).pdf([0, 0]) ** 2) / n
+    se = est.standard_error(x0)[0]
+    assert se == pytest.approx(np.sqrt(exact), rel=0.25)
+    # and simulated spread of f_hat(0) over replications agrees with the exact variance
+    vals = [mvkde.fit(rng.standard_normal((n, 2)), bandwidth=H).pdf(x0)[0] for _ in range(300)]
+    assert np.std(vals) == pytest.approx(np.sqrt(exact), rel=0.15)
+
+
+def test_bootstrap_band_coverage_at_the_mode():
+    # Percentile bootstrap with H held fixed covers E f_hat(x) = phi_{1 + h^2}(x) for a
+    # standard normal sample (closed form).  Simulation: coverage within 5 points of 90 %.
+    rng = np.random.default_rng(5)
+    n, h2, level = 300, 0.2, 0.9
+    target = stats.norm.pdf(0, scale=np.sqrt(1 + h2))
+    hits = 0
+    trials = 200
+    for t in range(trials):
+        est = mvkde.fit(rng.standard_normal(n), bandwidth=[[h2]])
+        lo, hi = est.bootstrap_bands(np.zeros((1, 1)), level=level, replicates=150, seed=t)
+        hits += bool(lo[0] <= target <= hi[0])
+    assert abs(hits / trials - level) <= 0.05 + 1e-12
+
+
+def test_samples_follow_the_estimate(rng):
+    # Kolmogorov-Smirnov (scipy.stats.kstest) of smoothed-bootstrap draws against the
+    # estimate's own marginal CDFs: should not reject at the 1 % level.
+    x = rng.multivariate_normal([0, 0], S, size=500)
+    est = mvkde.fit(x, kernel="epanechnikov", parametrization="diagonal")
+    s = est.sample(4000, seed=3)
+    for j, name in enumerate(est.names):
+        m = est.marginal([name])
+        assert stats.kstest(s[:, j], lambda v: m.cdf(np.asarray(v)[:, None])).pvalue > 0.01
+
+
+def test_probability_grid_and_bad_arguments(rng):
+    x = rng.normal(size=(300, 2))
+    est = mvkde.fit(x)
+    pg = est.probability_grid("exceedance", size=64)
+    assert pg.dims == ("x0", "x1")
+    assert float(pg.max()) == pytest.approx(1.0, abs=1e-2) and float(pg.min()) >= 0
+    with pytest.raises(mvkde.InputError, match="unknown variable"):
+        est.marginal(["nope"])
+    with pytest.raises(mvkde.InputError, match="between 0 and 1"):
+        est.hdr_levels([1.2])
+    with pytest.raises(mvkde.InputError, match="between 0 and 1"):
+        est.quantiles("x0", [0.0])
