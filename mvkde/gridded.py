@@ -107,6 +107,20 @@ class Plan:
         return int(np.prod([math.ceil(n / t) for n, t in zip(self.cell_shape, self.tile)]))
 
 
+AUTO_BLOCK_MAX = 64
+
+
+def block_cells(wf: Workflow, n_cells: int) -> int:
+    """Cells per block: ``compute.block_size``, or for "auto" about four blocks per worker."""
+    import os
+
+    size = wf["compute"]["block_size"]
+    if size != "auto":
+        return int(size)
+    workers = wf["compute"]["workers"] or os.cpu_count() or 1
+    return max(1, min(AUTO_BLOCK_MAX, math.ceil(n_cells / (4 * workers))))
+
+
 def _tile_shape(shape, block_size) -> tuple:
     """Block shape over the cell dims: whole trailing dims first, at most ``block_size`` cells."""
     tile = [1] * len(shape)
@@ -225,7 +239,7 @@ def _prepare_gridded(wf: Workflow, files) -> Plan:
                              f"along {dname!r}: widen it")
 
     cell_shape = tuple(ds.sizes[d] for d in cell_dims)
-    tile = _tile_shape(cell_shape, wf["compute"]["block_size"])
+    tile = _tile_shape(cell_shape, block_cells(wf, int(np.prod(cell_shape))))
     # chunk so that one block reads exactly its own hyperslab, all samples at once
     chunks = {d: t for d, t in zip(cell_dims, tile)}
     chunks.update({d: -1 for d in sample_dims})
@@ -314,7 +328,7 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
     cell_dims = [group] if group else []
     if not group:
         values, codes = values[0], codes[0]
-    tile = _tile_shape((n_groups,) if group else (), wf["compute"]["block_size"])
+    tile = _tile_shape((n_groups,) if group else (), block_cells(wf, n_groups))
     import dask.array as da
 
     dims = cell_dims + [SAMPLE_DIM, "variable"]
@@ -982,14 +996,14 @@ def estimate_sizes(plan: Plan, settings: CellSettings | None = None) -> dict:
     wf = plan.workflow
     d = len(plan.names)
     grid = int(np.prod(wf.grid_size()))
-    block_cells = int(np.prod(plan.tile)) if plan.tile else 1
+    per_block = int(np.prod(plan.tile)) if plan.tile else 1
     n = plan.sample_counts[2]
     S = plan.n_splits
     itemsize = 8
     from .engines import exact
 
     work = exact.CHUNK_ELEMENTS * itemsize
-    task = block_cells * n * d * itemsize * 2 + block_cells * S * grid * itemsize * 2 + work
+    task = per_block * n * d * itemsize * 2 + per_block * S * grid * itemsize * 2 + work
     out_item = 4 if wf["output"]["dtype"] == "float32" else 8
     output = plan.n_cells * S * (grid * out_item + d * d * 8 + 32)
     return {"task_bytes": task, "output_bytes": output, "engine_work_bytes": work}
@@ -1067,9 +1081,9 @@ def describe_plan(plan: Plan) -> str:
         extras = [e for e in extras if e]
         if extras:
             lines.append(f"              {v}: " + ", ".join(extras))
-    block_cells = int(np.prod(plan.tile)) if plan.tile else 1
+    per_block = int(np.prod(plan.tile)) if plan.tile else 1
     lines.append(f"  compute     scheduler {wf['compute']['scheduler']}, workers {wf['compute']['workers'] or 'all cores'}, "
-                 f"{plan.n_blocks} block(s) of up to {block_cells} cell(s)")
+                 f"{plan.n_blocks} block(s) of up to {per_block} cell(s)")
     lines.append(f"  memory      about {_human(sizes['task_bytes'])} per task (input block, output block and "
                  f"{_human(sizes['engine_work_bytes'])} of engine work space)")
     lines.append(f"  output      {wf['output']['path']}: about {_human(sizes['output_bytes'])} before compression")
@@ -1085,7 +1099,7 @@ def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out
     from .workflow import load
 
     out = out if out is not None else sys.stdout
-    wf = load(path, overrides)
+    wf = path if isinstance(path, Workflow) else load(path, overrides)
     overwrite = overwrite or wf["output"]["overwrite"]
     target = _io.check_output_path(wf["output"]["path"], overwrite=overwrite)
     plan = prepare(wf)

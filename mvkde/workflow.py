@@ -294,6 +294,14 @@ def _scheduler(value, where):
                               "\"tcp://HOST:PORT\"", ("threads", "processes", "local-cluster", "synchronous"))
 
 
+def _block_size(value, where):
+    if value == "auto":
+        return value
+    if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+        raise _fail(where, value, "\"auto\" or a positive integer")
+    return value
+
+
 def _bounds(value, where):
     if value is None:
         return None
@@ -353,7 +361,9 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                                 "dask.distributed scheduler"),
         "workers": Key(None, _int(lo=1, optional=True), "threads, processes or local-cluster workers "
                                                         "(default: the number of cores)"),
-        "block_size": Key(64, _int(lo=1), "cells per dask task; memory per task grows with it"),
+        "block_size": Key("auto", _block_size, "cells per dask task (memory per task grows with it); "
+                                               "auto = enough blocks to keep every worker busy, at most 64 "
+                                               "cells each"),
         "memory_limit": Key("auto", _str, "local-cluster memory limit per worker, e.g. \"2GB\""),
     },
     "output": {
