@@ -129,7 +129,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("check", help="validate a workflow and print its plan",
                        description="Validate a workflow and print the plan: cells, samples per cell, grid, "
-                                   "estimated memory per task and output size. Reads no data values.")
+                                   "estimated memory per task and output size. Reads coordinates and metadata, "
+                                   "not the data values (a table is read to count its rows per group).")
     p.add_argument("workflow", metavar="WORKFLOW", help="the workflow file (.toml)")
     p.add_argument("--set", action="append", metavar="KEY.PATH=VALUE", help="override a workflow key")
     p.set_defaults(func=cmd_check)

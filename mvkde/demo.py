@@ -75,7 +75,7 @@ def run(out_dir="out", out=None) -> int:
         print(f"mvkde demo: note: {note}", file=out)
     print(f"mvkde demo: running {path.relative_to(repo)} on the invented Aldmere basin data "
           f"({wf['input']['split_by']} densities of {', '.join(wf.variables)} per cell)", file=out)
-    written = run_and_write(wf, overwrite=True, command_line=["mvkde", "demo", "--out", str(out_dir)], out=out)
+    written = run_and_write(wf, overwrite=True, command_line=["mvkde", "demo", "--out", str(out_dir)], out=out)["path"]
     print(f"mvkde demo: open it with xarray.open_dataset({str(written)!r}); "
           f"'mvkde check {path.relative_to(repo)}' prints the plan", file=out)
     return 0

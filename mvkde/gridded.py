@@ -1012,17 +1012,18 @@ def estimate_sizes(plan: Plan, settings: CellSettings | None = None) -> dict:
 def run(wf: Workflow, *, progress_stream=None, plan: Plan | None = None):
     """Execute a workflow: returns (dataset, plan, settings, summary dict). Nothing is written."""
     plan = plan or prepare(wf)
-    t0 = time.perf_counter()
     with Scheduler(wf["compute"]) as sched:
+        t0 = time.perf_counter()  # compute time: a cluster's start-up is not counted
         axes = resolve_axes(plan, sched.compute)
         settings = settings_for(plan, axes)
         progress = Progress(plan.n_blocks, progress_stream)
         results = execute(plan, settings, sched, progress)
+        seconds = time.perf_counter() - t0
         where = sched.describe()
     ds = build_dataset(plan, settings, results)
     flags = ds["flags"].values
     summary = {
-        "seconds": time.perf_counter() - t0,
+        "seconds": seconds,
         "scheduler": where,
         "cells": plan.n_cells * plan.n_splits,
         "blocks": plan.n_blocks,
@@ -1093,7 +1094,10 @@ def describe_plan(plan: Plan) -> str:
 
 
 def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out=None, progress_stream=None):
-    """Load, run and write a workflow; print the summary to ``out``. Returns the output path."""
+    """Load, run and write a workflow; print the summary to ``out``.
+
+    Returns the run summary (a dict; ``summary["path"]`` is the output written).
+    """
     from . import CAUTION
     from . import provenance as _prov
     from .workflow import load
@@ -1131,4 +1135,5 @@ def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out
         print(f"  e.g. cell {cell}" + (f", {plan.split_dim} {plan.split_labels[split]}" if plan.split_dim else "")
               + f": {msg}", file=out)
     print(f"  caution: {CAUTION}", file=out)
-    return target
+    summary["path"] = target
+    return summary

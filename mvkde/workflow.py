@@ -634,3 +634,7 @@ def key_reference() -> str:
     for k, key in VARIABLE_KEYS.items():
         lines.append(f"| `variables.NAME.{k}` | {fmt(key.default)} | {key.doc} |")
     return "\n".join(lines)
+
+
+if __name__ == "__main__":  # python -m mvkde.workflow > table for docs/workflow_keys.md
+    print(key_reference())

@@ -254,3 +254,33 @@ path = "{tmp_path / f'ise{years}.nc'}"
     print("mean ISE per cell for 1, 4, 12 years:", mean_ise)
     assert mean_ise[0] > mean_ise[1] > mean_ise[2], mean_ise
     assert mean_ise[2] < 0.5 * mean_ise[0]
+
+
+def test_glob_of_files_with_processes_equals_one_file(tmp_path):
+    ds = generate.make_grid(2, seed=21, lat=np.array([60.0, 61.0]), lon=np.array([20.0]))
+    one = tmp_path / "one.nc"
+    ds.to_netcdf(one)
+    for year, part in ds.groupby("time.year"):
+        part.to_netcdf(tmp_path / f"part_{year}.nc")
+    outs = []
+    for name, path, sched in (("one", one, "threads"), ("glob", tmp_path / "part_*.nc", "processes")):
+        body = f"""
+[input]
+path = "{path}"
+variables = ["tasmax"]
+split_by = "season"
+[estimator]
+bandwidth = "normal"
+[grid]
+size = 40
+[compute]
+scheduler = "{sched}"
+workers = 2
+block_size = 1
+[output]
+path = "{tmp_path / (name + '.out.nc')}"
+"""
+        assert main(["run", write_workflow(tmp_path / f"{name}.toml", body)]) == 0
+        outs.append(xr.open_dataset(tmp_path / f"{name}.out.nc"))
+    np.testing.assert_array_equal(outs[0]["density"].values, outs[1]["density"].values)
+    assert len(json.loads(outs[1].attrs["provenance"])["inputs"]) == 2
