@@ -65,6 +65,23 @@ def cmd_demo(args) -> int:
     return demo.run(out_dir=args.out)
 
 
+def cmd_run(args) -> int:
+    from .gridded import run_and_write
+
+    run_and_write(args.workflow, args.set or (), overwrite=args.overwrite,
+                  command_line=["mvkde", *sys.argv[1:]] if args.argv is None else ["mvkde", *args.argv])
+    return 0
+
+
+def cmd_check(args) -> int:
+    from .gridded import describe_plan, prepare
+    from .workflow import load
+
+    wf = load(args.workflow, args.set or ())
+    print(describe_plan(prepare(wf)))
+    return 0
+
+
 def cmd_not_ready(name):
     def inner(args) -> int:
         raise MvkdeError(f"'mvkde {name}' is not available in this version")
@@ -101,8 +118,24 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="out", help="output folder (default: out)")
     p.set_defaults(func=cmd_demo)
 
-    for name, text in (("run", "run a workflow file"), ("check", "validate a workflow and print its plan"),
-                       ("plot", "quick-look pictures of an output file"),
+    p = sub.add_parser("run", help="run a workflow file: densities per cell written to netCDF",
+                       description="Run a TOML workflow: read the inputs, estimate one joint density per "
+                                   "cell (and season or group), write a labelled netCDF file with provenance.")
+    p.add_argument("workflow", metavar="WORKFLOW", help="the workflow file (.toml)")
+    p.add_argument("--set", action="append", metavar="KEY.PATH=VALUE",
+                   help="override a workflow key, e.g. --set compute.workers=4 (repeatable; TOML values)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing output file")
+    p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("check", help="validate a workflow and print its plan",
+                       description="Validate a workflow and print the plan: cells, samples per cell, grid, "
+                                   "estimated memory per task and output size. Reads coordinates and metadata, "
+                                   "not the data values (a table is read to count its rows per group).")
+    p.add_argument("workflow", metavar="WORKFLOW", help="the workflow file (.toml)")
+    p.add_argument("--set", action="append", metavar="KEY.PATH=VALUE", help="override a workflow key")
+    p.set_defaults(func=cmd_check)
+
+    for name, text in (("plot", "quick-look pictures of an output file"),
                        ("inspect", "summary of an output file")):
         p = sub.add_parser(name, help=text, description=text)
         p.add_argument("rest", nargs="*")
@@ -114,6 +147,7 @@ def main(argv=None) -> int:
     parser = build_parser()
     try:
         args = parser.parse_args(argv)
+        args.argv = None if argv is None else list(argv)
     except SystemExit as exc:  # argparse already printed its one-line usage error
         return int(exc.code or 0)
     if not getattr(args, "command", None):

@@ -1,12 +1,16 @@
 """Reading inputs and writing outputs (pipeline layer).
 
-Outputs are always written to a temporary name in the destination folder and
-renamed into place only when complete, so a reader never sees a half-written
-file.
+Inputs are opened lazily: netCDF files (one file, a glob or a list) through
+xarray and dask, so a cell block reads only its own hyperslab; CSV and
+Parquet tables through pandas.  Outputs are always written to a temporary
+name in the destination folder and renamed into place only when complete,
+so a reader never sees a half-written file.
 """
 
 from __future__ import annotations
 
+import glob
+import hashlib
 import os
 from pathlib import Path
 
@@ -14,16 +18,130 @@ import xarray as xr
 
 from .errors import InputError
 
+NETCDF_SUFFIXES = (".nc", ".nc4", ".netcdf", ".cdf", ".h5")
+TABLE_SUFFIXES = {".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "parquet"}
+
+
+# ---------------------------------------------------------------------------
+# inputs
+# ---------------------------------------------------------------------------
+
+def expand_paths(paths) -> list[Path]:
+    """Files named by ``paths`` (paths or globs), sorted within each glob."""
+    files: list[Path] = []
+    for p in paths:
+        p = os.path.expanduser(str(p))
+        if any(ch in p for ch in "*?["):
+            found = sorted(glob.glob(p))
+            if not found:
+                raise InputError(f"input.path: the glob {p!r} matches no file")
+            files += [Path(f) for f in found]
+        else:
+            if not Path(p).exists():
+                raise InputError(f"input.path: file {p} not found (relative paths are looked up from the "
+                                 "current folder, then from the workflow file's folder)")
+            files.append(Path(p))
+    if not files:
+        raise InputError("input.path names no file")
+    return files
+
+
+def input_format(files, fmt: str = "auto") -> str:
+    """'netcdf', 'csv' or 'parquet', from ``fmt`` or the files' suffixes."""
+    if fmt != "auto":
+        return fmt
+    kinds = set()
+    for f in files:
+        suffix = Path(f).suffix.lower()
+        if suffix in TABLE_SUFFIXES:
+            kinds.add(TABLE_SUFFIXES[suffix])
+        elif suffix in NETCDF_SUFFIXES:
+            kinds.add("netcdf")
+        else:
+            raise InputError(f"input.path: cannot tell the format of {f} from its suffix "
+                             f"{suffix or '(none)'}: set input.format to netcdf, csv or parquet")
+    if len(kinds) > 1:
+        raise InputError(f"input.path mixes formats {sorted(kinds)}: give files of one format")
+    return kinds.pop()
+
+
+def open_gridded(files, chunks=None) -> xr.Dataset:
+    """Open one or several netCDF files lazily (dask arrays).
+
+    ``chunks`` is passed to xarray (``{}`` = the files' own chunks); several
+    files are combined by their coordinates.
+    """
+    chunks = {} if chunks is None else chunks
+    try:
+        if len(files) == 1:
+            return xr.open_dataset(files[0], chunks=chunks, engine="netcdf4")
+        return xr.open_mfdataset([str(f) for f in files], chunks=chunks, engine="netcdf4",
+                                 combine="by_coords", data_vars="minimal", coords="minimal",
+                                 compat="override", parallel=False)
+    except (OSError, ValueError) as exc:
+        raise InputError(f"input.path: cannot open {', '.join(map(str, files[:3]))}"
+                         f"{' ...' if len(files) > 3 else ''} as netCDF: {exc}") from None
+
+
+def read_table(files, fmt: str, columns=None):
+    """Read CSV or Parquet files into one pandas DataFrame (only ``columns`` if given)."""
+    import pandas as pd
+
+    frames = []
+    for f in files:
+        try:
+            if fmt == "csv":
+                frames.append(pd.read_csv(f, usecols=columns))
+            else:
+                try:
+                    frames.append(pd.read_parquet(f, columns=columns))
+                except ImportError:
+                    raise InputError("reading Parquet needs pyarrow: pip install 'mvkde[parquet]'") from None
+        except ValueError as exc:  # usecols naming a missing column, or a malformed file
+            raise InputError(f"input.path: cannot read {f}: {exc}") from None
+        except OSError as exc:
+            raise InputError(f"input.path: cannot read {f}: {exc}") from None
+    return frames[0] if len(frames) == 1 else pd.concat(frames, ignore_index=True)
+
+
+def table_columns(files, fmt: str) -> list[str]:
+    """Column names of the first table (cheap: reads the header or the schema)."""
+    import pandas as pd
+
+    f = files[0]
+    if fmt == "csv":
+        return list(pd.read_csv(f, nrows=0).columns)
+    try:
+        import pyarrow.parquet as pq
+    except ImportError:
+        raise InputError("reading Parquet needs pyarrow: pip install 'mvkde[parquet]'") from None
+    return list(pq.read_schema(f).names)
+
+
+def sha256(path, block: int = 1 << 20) -> str:
+    """SHA-256 of a file's bytes, read in 1 MiB blocks."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while chunk := fh.read(block):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+# ---------------------------------------------------------------------------
+# outputs
+# ---------------------------------------------------------------------------
 
 def temporary_path(path: Path) -> Path:
     return path.with_name(f".{path.name}.{os.getpid()}.partial")
 
 
-def write_netcdf_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding=None) -> Path:
-    """Write ``ds`` to ``path`` through a temporary file and an atomic rename."""
+def check_output_path(path, *, overwrite: bool = False) -> Path:
+    """Refuse an existing output (unless ``overwrite``) or an unwritable folder, before any work."""
     path = Path(path)
     if path.exists() and not overwrite:
         raise InputError(f"output {path} exists: pass --overwrite (or choose another output.path)")
+    if path.exists() and path.is_dir():
+        raise InputError(f"output.path {path} is a folder: name a file, e.g. {path / 'density.nc'}")
     folder = path.parent if str(path.parent) else Path(".")
     try:
         folder.mkdir(parents=True, exist_ok=True)
@@ -31,6 +149,12 @@ def write_netcdf_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encodi
         raise InputError(f"cannot create output folder {folder}: {exc.strerror}") from None
     if not os.access(folder, os.W_OK):
         raise InputError(f"output folder {folder} is not writable: choose another output.path")
+    return path
+
+
+def write_netcdf_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding=None) -> Path:
+    """Write ``ds`` to ``path`` through a temporary file and an atomic rename."""
+    path = check_output_path(path, overwrite=overwrite)
     tmp = temporary_path(path)
     try:
         ds.to_netcdf(tmp, engine="netcdf4", encoding=encoding or {})

@@ -93,10 +93,30 @@ def true_wet_density(pr, tasmax, elev: float, season: str | None = None, months=
     return total
 
 
-def make_grid(years: int = 4, seed: int = SEED) -> xr.Dataset:
+def true_tasmax_density(tasmax, elev: float, months=None):
+    """Known density of tasmax over all days (wet and dry) in ``months`` (default all).
+
+    Per season: ``P_WET N(T - 6.5 e - 1.5, T_SD^2) + (1 - P_WET) N(T - 6.5 e, T_SD^2)``,
+    mixed over the seasons by their share of days.
+    """
+    months = np.arange(1, 13) if months is None else np.asarray(months)
+    days = pd.Series(pd.date_range("2001-01-01", "2004-12-31", freq="D"))
+    keep = days[days.dt.month.isin(months)]
+    share = pd.Series(season_of(keep.dt.month.to_numpy())).value_counts(normalize=True)
+    total = 0.0
+    for s, wgt in share.items():
+        mean = T_MEAN[s] - 6.5 * elev
+        total = total + wgt * (P_WET[s] * stats.norm.pdf(tasmax, mean - 1.5, T_SD)
+                               + (1 - P_WET[s]) * stats.norm.pdf(tasmax, mean, T_SD))
+    return total
+
+
+def make_grid(years: int = 4, seed: int = SEED, lat=LAT, lon=LON) -> xr.Dataset:
+    """The gridded sample data: ``years`` of daily pr and tasmax on the ``lat`` x ``lon`` grid."""
     rng = np.random.default_rng(seed)
     dates = pd.date_range("2001-01-01", periods=int(round(365.25 * years)), freq="D")
-    elev = elevation(LAT, LON)
+    lat, lon = np.asarray(lat, dtype=float), np.asarray(lon, dtype=float)
+    elev = elevation(lat, lon)
     pr, tasmax = simulate(dates, elev, rng)
     ds = xr.Dataset(
         {
@@ -110,8 +130,8 @@ def make_grid(years: int = 4, seed: int = SEED) -> xr.Dataset:
         },
         coords={
             "time": ("time", dates),
-            "lat": ("lat", LAT, {"standard_name": "latitude", "units": "degrees_north"}),
-            "lon": ("lon", LON, {"standard_name": "longitude", "units": "degrees_east"}),
+            "lat": ("lat", lat, {"standard_name": "latitude", "units": "degrees_north"}),
+            "lon": ("lon", lon, {"standard_name": "longitude", "units": "degrees_east"}),
         },
         attrs={
             "title": "Aldmere basin sample grid (invented data)",

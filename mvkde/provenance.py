@@ -1,0 +1,78 @@
+"""Provenance of an output: what made it, from what, when and where.
+
+The record is a JSON document stored in the output's global ``provenance``
+attribute: package and dependency versions, the resolved workflow (every
+default filled in), each input file with its size and SHA-256, the UTC
+creation time, the host, the command line and the random seed.  A CF
+``history`` line summarises it.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import platform
+import socket
+import sys
+from importlib import metadata
+from pathlib import Path
+
+from . import io as _io
+
+DEPENDENCIES = ("numpy", "scipy", "xarray", "netCDF4", "dask", "distributed", "pandas")
+
+
+def versions() -> dict:
+    """Installed versions of mvkde and its runtime dependencies."""
+    from . import __version__
+
+    out = {"mvkde": __version__, "python": platform.python_version()}
+    for name in DEPENDENCIES:
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = None
+    return out
+
+
+def describe_inputs(files) -> list[dict]:
+    """Path (absolute), size in bytes and SHA-256 of each input file."""
+    out = []
+    for f in files:
+        p = Path(f).resolve()
+        out.append({"path": str(p), "size_bytes": p.stat().st_size, "sha256": _io.sha256(p)})
+    return out
+
+
+def record(workflow, files, *, command_line=None, extra=None, now=None) -> dict:
+    """The provenance dict of a run of ``workflow`` over ``files``."""
+    now = now or _dt.datetime.now(_dt.timezone.utc)
+    wf_file = None
+    if workflow.path is not None and Path(workflow.path).exists():
+        p = Path(workflow.path).resolve()
+        wf_file = {"path": str(p), "size_bytes": p.stat().st_size, "sha256": _io.sha256(p)}
+    rec = {
+        "created_utc": now.strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "host": socket.gethostname(),
+        "platform": platform.platform(),
+        "command_line": list(command_line if command_line is not None else sys.argv),
+        "software": versions(),
+        "workflow_file": wf_file,
+        "overrides": list(workflow.overrides),
+        "workflow": workflow.to_json(),
+        "seed": workflow["estimator"]["seed"],
+        "inputs": describe_inputs(files),
+    }
+    if extra:
+        rec.update(extra)
+    return rec
+
+
+def to_json(rec: dict) -> str:
+    return json.dumps(rec, indent=None, sort_keys=False, allow_nan=False, default=str)
+
+
+def history_line(rec: dict) -> str:
+    """A CF ``history`` entry: time, then the command."""
+    cmd = " ".join(rec["command_line"]) or "mvkde"
+    return f"{rec['created_utc']}: {cmd} (mvkde {rec['software']['mvkde']})"

@@ -1,0 +1,640 @@
+"""Workflow files: schema, defaults and validation in one place.
+
+A workflow is a TOML file (read with the standard library's ``tomllib``).
+:data:`SCHEMA` lists every section and key with its default, its type and
+its valid choices; :func:`load` reads a file, applies ``--set`` overrides,
+checks every key against the schema and returns a :class:`Workflow` holding
+the resolved specification (every default filled in), which is what the
+runner uses and what the output's provenance records.
+
+Errors are :class:`mvkde.errors.ConfigError` and name the file, the key
+path (``estimator.kernel``), the bad value and the valid choices or the
+closest match.
+"""
+
+from __future__ import annotations
+
+import copy
+import datetime as _dt
+import difflib
+import math
+import os
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable
+
+from .errors import ConfigError
+
+__all__ = ["SCHEMA", "Workflow", "load", "loads", "apply_override", "SEASONS", "REQUIRED",
+           "available_choices", "key_reference"]
+
+SEASONS = ("DJF", "MAM", "JJA", "SON")  # meteorological seasons (common practice)
+
+
+class _Required:
+    def __repr__(self):
+        return "<required>"
+
+
+REQUIRED = _Required()
+
+
+# ---------------------------------------------------------------------------
+# choices: the documented vocabulary, and what this installation provides
+# ---------------------------------------------------------------------------
+
+def _library_choices() -> dict[str, tuple[str, ...]]:
+    """Option names the installed library layer accepts, read from its registries."""
+    from . import boundary, engines, kernels
+    from .bandwidth import PARAMETRIZATIONS, SELECTORS
+
+    names = tuple(kernels.KERNEL_NAMES) + tuple(getattr(kernels, "HIGHER_ORDER_NAMES", ()))
+    methods = tuple(m for m in boundary.BOUNDARY_METHODS)
+    return {
+        "kernel": names,
+        "form": tuple(kernels.FORMS),
+        "bandwidth": tuple(SELECTORS),
+        "parametrization": tuple(PARAMETRIZATIONS),
+        "boundary": methods,
+        "engine": tuple(engines.ENGINES),
+    }
+
+
+# Names the design promises (shared/DESIGN.md).  A workflow naming one of these
+# is well formed even where this installation lacks it; the runner then says
+# the option is not available rather than calling it a typo.
+_DOCUMENTED = {
+    "kernel": ("uniform", "triangular", "epanechnikov", "biweight", "triweight", "cosine", "gaussian"),
+    "form": ("product", "spherical"),
+    "bandwidth": ("normal", "lscv", "scv", "plugin", "mlcv"),
+    "parametrization": ("full", "diagonal", "scalar"),
+    "boundary": ("none", "reflect", "renormalize", "linear", "transform", "beta", "gamma"),
+    "engine": ("auto", "exact"),
+}
+
+
+def available_choices(option: str) -> tuple[str, ...]:
+    """Valid names for an estimator option: the documented ones plus any the library registers."""
+    lib = _library_choices()[option]
+    return tuple(dict.fromkeys(_DOCUMENTED[option] + lib))
+
+
+# ---------------------------------------------------------------------------
+# the schema
+# ---------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Key:
+    """One workflow key: its default, a checker and a line of documentation.
+
+    ``check(value, where)`` returns the normalised value or raises ConfigError
+    (``where`` prefixes the message with file and key path).
+    """
+
+    default: Any
+    check: Callable
+    doc: str
+    choices: Callable | tuple | None = None
+
+
+def _fail(where: str, value, expected: str, valid=None) -> ConfigError:
+    hint = ""
+    if valid is not None and isinstance(value, str):
+        match = difflib.get_close_matches(value, [str(v) for v in valid], n=1, cutoff=0.5)
+        if match:
+            hint = f" (did you mean {match[0]!r}?)"
+    return ConfigError(f"{where} = {_show(value)} is not valid: expected {expected}{hint}")
+
+
+def _show(value) -> str:
+    if isinstance(value, str):
+        return repr(value)
+    return str(value)
+
+
+def _str(value, where):
+    if not isinstance(value, str) or not value.strip():
+        raise _fail(where, value, "a non-empty string")
+    return value
+
+
+def _opt_str(value, where):
+    return None if value is None else _str(value, where)
+
+
+def _bool(value, where):
+    if not isinstance(value, bool):
+        raise _fail(where, value, "true or false")
+    return value
+
+
+def _int(lo=None, hi=None, optional=False):
+    def check(value, where):
+        if value is None and optional:
+            return None
+        if isinstance(value, bool) or not isinstance(value, int) or (lo is not None and value < lo) \
+                or (hi is not None and value > hi):
+            rng = f" between {lo} and {hi}" if hi is not None else (f" >= {lo}" if lo is not None else "")
+            raise _fail(where, value, f"an integer{rng}")
+        return value
+    return check
+
+
+def _float(optional=False, positive=False):
+    def check(value, where):
+        if value is None and optional:
+            return None
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or math.isnan(value) \
+                or (positive and not (value > 0 and math.isfinite(value))):
+            raise _fail(where, value, "a positive finite number" if positive else "a number")
+        return float(value)
+    return check
+
+
+def _choice(option):
+    def check(value, where):
+        valid = available_choices(option)
+        key = value.strip().lower() if isinstance(value, str) else value
+        if key not in valid:
+            raise _fail(where, value, "one of " + ", ".join(valid), valid)
+        return key
+    return check
+
+
+def _one_of(*valid, optional=False):
+    def check(value, where):
+        if value is None and optional:
+            return None
+        if value not in valid:
+            raise _fail(where, value, "one of " + ", ".join(map(str, valid)), valid)
+        return value
+    return check
+
+
+def _str_list(optional=False, nonempty=True):
+    def check(value, where):
+        if value is None and optional:
+            return None
+        if isinstance(value, str):
+            value = [value]
+        if not isinstance(value, list) or not all(isinstance(v, str) and v for v in value) \
+                or (nonempty and not value):
+            raise _fail(where, value, "a list of names, e.g. [\"pr\", \"tasmax\"]")
+        if len(set(value)) != len(value):
+            raise _fail(where, value, "distinct names")
+        return list(value)
+    return check
+
+
+def _paths(value, where):
+    if isinstance(value, str):
+        value = [value]
+    if not isinstance(value, list) or not value or not all(isinstance(v, str) and v for v in value):
+        raise _fail(where, value, "a path, a glob or a list of paths")
+    return list(value)
+
+
+def _pair(value, where, *, allow_inf=True, what="[lo, hi]"):
+    if not isinstance(value, list) or len(value) != 2 or not all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
+        raise _fail(where, value, f"a pair {what}")
+    lo, hi = float(value[0]), float(value[1])
+    if math.isnan(lo) or math.isnan(hi) or not lo < hi or (
+            not allow_inf and not (math.isfinite(lo) and math.isfinite(hi))):
+        raise _fail(where, value, f"a pair {what} with lo < hi" + ("" if allow_inf else ", both finite"))
+    return [lo, hi]
+
+
+def _time_range(value, where):
+    if value is None:
+        return None
+    if not isinstance(value, list) or len(value) != 2:
+        raise _fail(where, value, "[start, end], e.g. [\"2001-01-01\", \"2003-12-31\"] or TOML dates")
+    out = []
+    for v in value:
+        if isinstance(v, (_dt.date, _dt.datetime)):
+            out.append(v.isoformat())
+        elif isinstance(v, str):
+            try:
+                _dt.date.fromisoformat(v[:10])
+            except ValueError:
+                raise _fail(where, value, "ISO dates, e.g. [\"2001-01-01\", \"2003-12-31\"]") from None
+            out.append(v)
+        else:
+            raise _fail(where, value, "[start, end] as ISO date strings or TOML dates")
+    if out[0][:10] > out[1][:10]:
+        raise _fail(where, value, "start <= end")
+    return out
+
+
+def _months(value, where):
+    if value is None:
+        return None
+    if isinstance(value, int) and not isinstance(value, bool):
+        value = [value]
+    if not isinstance(value, list) or not value or not all(
+            isinstance(m, int) and not isinstance(m, bool) and 1 <= m <= 12 for m in value):
+        raise _fail(where, value, "a list of month numbers 1..12")
+    return sorted(set(value))
+
+
+def _seasons(value, where):
+    if value is None:
+        return None
+    if isinstance(value, str):
+        value = [value]
+    if not isinstance(value, list) or not value:
+        raise _fail(where, value, "a list of seasons from " + ", ".join(SEASONS))
+    out = []
+    for s in value:
+        key = s.upper() if isinstance(s, str) else s
+        if key not in SEASONS:
+            raise _fail(where, s, "one of " + ", ".join(SEASONS), SEASONS)
+        out.append(key)
+    return [s for s in SEASONS if s in out]
+
+
+def _box(value, where):
+    if value is None:
+        return {}
+    if not isinstance(value, dict):
+        raise _fail(where, value, "a table of coordinate = [lo, hi], e.g. {lat = [60, 61], lon = [20, 22]}")
+    return {str(k): _pair(v, f"{where}.{k}", allow_inf=False) for k, v in value.items()}
+
+
+def _size(value, where):
+    if isinstance(value, int) and not isinstance(value, bool):
+        value = [value]
+    if not isinstance(value, list) or not value or not all(
+            isinstance(s, int) and not isinstance(s, bool) and 2 <= s <= 4096 for s in value):
+        raise _fail(where, value, "a node count (2..4096) or a list of them, one per variable")
+    return list(value)
+
+
+def _limits(value, where):
+    if value is None:
+        return {}
+    if not isinstance(value, dict):
+        raise _fail(where, value, "a table of variable = [lo, hi]")
+    return {str(k): _pair(v, f"{where}.{k}", allow_inf=False) for k, v in value.items()}
+
+
+def _scheduler(value, where):
+    if not isinstance(value, str):
+        raise _fail(where, value, "\"threads\", \"processes\", \"local-cluster\" or \"tcp://HOST:PORT\"")
+    if value in ("threads", "processes", "local-cluster", "synchronous"):
+        return value
+    if value.startswith(("tcp://", "tls://", "ucx://", "inproc://")):
+        rest = value.split("://", 1)[1]
+        if not rest:
+            raise _fail(where, value, "an address like \"tcp://HOST:PORT\"")
+        return value
+    raise _fail(where, value, "\"threads\", \"processes\", \"local-cluster\", \"synchronous\" or "
+                              "\"tcp://HOST:PORT\"", ("threads", "processes", "local-cluster", "synchronous"))
+
+
+def _block_size(value, where):
+    if value == "auto":
+        return value
+    if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+        raise _fail(where, value, "\"auto\" or a positive integer")
+    return value
+
+
+def _bounds(value, where):
+    if value is None:
+        return None
+    if not isinstance(value, list) or len(value) != 2 or not all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
+        raise _fail(where, value, "[lo, hi] with inf or -inf for an open side, e.g. [0, inf]")
+    lo, hi = float(value[0]), float(value[1])
+    if math.isnan(lo) or math.isnan(hi) or not lo < hi:
+        raise _fail(where, value, "[lo, hi] with lo < hi")
+    return [lo, hi]
+
+
+#: section -> key -> Key.  ``variables`` is a table of tables (one per variable),
+#: described by VARIABLE_KEYS; ``grid.limits`` and ``input.box`` are free tables.
+SCHEMA: dict[str, dict[str, Key]] = {
+    "input": {
+        "path": Key(REQUIRED, _paths, "a netCDF file, a glob of netCDF files, a .csv or .parquet table, or a "
+                                      "list of files; relative paths are looked up from the current folder, "
+                                      "then from the workflow file's folder"),
+        "variables": Key(REQUIRED, _str_list(), "variables whose joint density is estimated, in order"),
+        "sample_dims": Key(["time"], _str_list(), "dimensions pooled into each sample; every other "
+                                                  "dimension of the variables is a cell dimension"),
+        "group_by": Key(None, _opt_str, "tables: a column whose values each get their own density; the "
+                                        "output dimension is named after it"),
+        "time": Key("time", _str, "name of the time dimension (gridded) or time column (tables)"),
+        "time_range": Key(None, _time_range, "[start, end], inclusive; ISO dates"),
+        "months": Key(None, _months, "keep only these months (1..12)"),
+        "seasons": Key(None, _seasons, "keep only these meteorological seasons (DJF, MAM, JJA, SON)"),
+        "split_by": Key(None, _one_of("season", "month", optional=True),
+                        "\"season\" or \"month\": one density per season (or month) as an extra output "
+                        "dimension named season (or month)"),
+        "box": Key({}, _box, "coordinate = [lo, hi] ranges (inclusive), e.g. a lat/lon box"),
+        "min_samples": Key(30, _int(lo=2), "cells with fewer valid samples get NaN density and a flag"),
+        "max_samples": Key(None, _int(lo=2, optional=True), "random subsample (seeded) of larger cells"),
+        "format": Key("auto", _one_of("auto", "netcdf", "csv", "parquet"),
+                      "input format; auto = from the file suffix"),
+    },
+    "estimator": {
+        "kernel": Key("gaussian", _choice("kernel"), "kernel name (mvkde kernels lists them)", "kernel"),
+        "form": Key("product", _choice("form"), "product or spherical kernel", "form"),
+        "bandwidth": Key("plugin", _choice("bandwidth"), "bandwidth selector", "bandwidth"),
+        "parametrization": Key("full", _choice("parametrization"), "full, diagonal or scalar H",
+                               "parametrization"),
+        "boundary": Key("reflect", _choice("boundary"), "boundary correction for bounded variables "
+                                                        "(used only when bounds are declared)", "boundary"),
+        "engine": Key("auto", _choice("engine"), "evaluation engine", "engine"),
+        "seed": Key(0, _int(lo=0), "seed of every random step (subsampling); recorded in the provenance"),
+    },
+    "grid": {
+        "size": Key([64], _size, "nodes per variable (one number for all, or one per variable)"),
+        "limits": Key({}, _limits, "variable = [lo, hi]; default: the pooled data range widened by 20 % "
+                                   "each side and cut at the bounds"),
+    },
+    "compute": {
+        "scheduler": Key("threads", _scheduler, "threads (embedded local scheduler), processes, "
+                                                "local-cluster, synchronous, or the address of a running "
+                                                "dask.distributed scheduler"),
+        "workers": Key(None, _int(lo=1, optional=True), "threads, processes or local-cluster workers "
+                                                        "(default: the number of cores)"),
+        "block_size": Key("auto", _block_size, "cells per dask task (memory per task grows with it); "
+                                               "auto = enough blocks to keep every worker busy, at most 64 "
+                                               "cells each"),
+        "memory_limit": Key("auto", _str, "local-cluster memory limit per worker, e.g. \"2GB\""),
+    },
+    "output": {
+        "path": Key(REQUIRED, _str, "output netCDF file (relative to the current folder)"),
+        "dtype": Key("float64", _one_of("float64", "float32"), "storage type of the density"),
+        "complevel": Key(4, _int(lo=0, hi=9), "zlib compression level (0 = none)"),
+        "title": Key(None, _opt_str, "global title attribute"),
+        "overwrite": Key(False, _bool, "replace an existing output (also --overwrite)"),
+    },
+}
+
+VARIABLE_KEYS: dict[str, Key] = {
+    "bounds": Key(None, _bounds, "[lo, hi] support; inf for an open side"),
+    "point_mass": Key(None, _float(), "values <= this count as a point mass at the bound (e.g. dry days)"),
+    "period": Key(None, _float(positive=True), "period of a circular variable (e.g. 360.0 for degrees)"),
+    "units": Key(None, _opt_str, "units, overriding the input's units attribute"),
+}
+
+
+# ---------------------------------------------------------------------------
+# loading
+# ---------------------------------------------------------------------------
+
+class Workflow:
+    """A validated workflow: ``spec`` is the resolved dict with every default."""
+
+    def __init__(self, spec: dict, path: Path | None, overrides: list[str]):
+        self.spec = spec
+        self.path = path
+        self.overrides = list(overrides)
+
+    def __getitem__(self, section):
+        return self.spec[section]
+
+    @property
+    def source(self) -> str:
+        return str(self.path) if self.path else "<workflow>"
+
+    @property
+    def variables(self) -> list[str]:
+        return self.spec["input"]["variables"]
+
+    def variable(self, name) -> dict:
+        return self.spec["variables"][name]
+
+    def grid_size(self) -> list[int]:
+        size = self.spec["grid"]["size"]
+        return size * len(self.variables) if len(size) == 1 else list(size)
+
+    def input_paths(self) -> list[str]:
+        """Input paths resolved: the current folder first, then the workflow's folder."""
+        out = []
+        for p in self.spec["input"]["path"]:
+            q = Path(os.path.expanduser(p))
+            if not q.is_absolute() and self.path is not None and not _exists(q):
+                alt = self.path.parent / q
+                if _exists(alt):
+                    q = alt
+            out.append(str(q))
+        return out
+
+    def to_json(self) -> dict:
+        """The resolved specification in plain JSON types (inf written as strings)."""
+        return _jsonable(self.spec)
+
+
+def _exists(p: Path) -> bool:
+    import glob
+
+    return p.exists() or bool(glob.glob(str(p)))
+
+
+def _jsonable(obj):
+    if isinstance(obj, dict):
+        return {k: _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return "inf" if obj > 0 else ("-inf" if obj < 0 else "nan")
+    return obj
+
+
+def load(path, overrides=()) -> Workflow:
+    """Read, override and validate a workflow file."""
+    path = Path(path)
+    try:
+        text = path.read_text()
+    except FileNotFoundError:
+        raise ConfigError(f"workflow file {path} not found") from None
+    except OSError as exc:
+        raise ConfigError(f"cannot read workflow file {path}: {exc.strerror}") from None
+    return loads(text, source=path, overrides=overrides)
+
+
+def loads(text: str, source=None, overrides=()) -> Workflow:
+    """Validate a workflow given as TOML text (``source`` names it in messages)."""
+    name = str(source) if source else "<workflow>"
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{name}: not valid TOML: {exc}") from None
+    for item in overrides:
+        apply_override(raw, item, name)
+    spec = _validate(raw, name, overridden={_override_key(o) for o in overrides})
+    return Workflow(spec, Path(source) if source else None, list(overrides))
+
+
+def _override_key(item: str) -> str:
+    return item.split("=", 1)[0].strip()
+
+
+def apply_override(raw: dict, item: str, source: str = "<workflow>") -> None:
+    """Apply one ``key.path=value`` (value in TOML syntax; bare words are strings)."""
+    if "=" not in item:
+        raise ConfigError(f"--set {item!r}: expected key.path=value, e.g. compute.workers=4")
+    key, text = (s.strip() for s in item.split("=", 1))
+    parts = key.split(".")
+    if not key or not all(parts):
+        raise ConfigError(f"--set {item!r}: the key path {key!r} is not of the form section.key")
+    try:
+        value = tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        value = text  # a bare word such as threads or out/x.nc
+    node = raw
+    for p in parts[:-1]:
+        child = node.setdefault(p, {})
+        if not isinstance(child, dict):
+            raise ConfigError(f"{source}: --set {key}: {p} is a value, not a table")
+        node = child
+    node[parts[-1]] = value
+
+
+def _where(source, path, overridden) -> str:
+    note = " (set on the command line)" if path in overridden else ""
+    return f"{source}: {path}{note}"
+
+
+def _unknown(source, path, key, valid) -> ConfigError:
+    full = f"{path}.{key}" if path else key
+    return ConfigError(f"{source}: unknown key {full!r}" + _closest(key, valid)
+                       + f"; valid keys here: {', '.join(sorted(valid))}")
+
+
+def _closest(name, valid) -> str:
+    match = difflib.get_close_matches(str(name), list(valid), n=1, cutoff=0.6)
+    return f" (did you mean {match[0]!r}?)" if match else ""
+
+
+def _validate(raw: dict, source: str, overridden=frozenset()) -> dict:
+    sections = set(SCHEMA) | {"variables"}
+    for sec, val in raw.items():
+        if sec not in sections:
+            raise _unknown(source, "", sec, sections)
+        if not isinstance(val, dict):
+            raise ConfigError(f"{source}: {sec} must be a table ([{sec}]), got {_show(val)}")
+    spec: dict = {}
+    for sec, keys in SCHEMA.items():
+        given = raw.get(sec, {})
+        for k in given:
+            if k not in keys:
+                raise _unknown(source, sec, k, keys)
+        spec[sec] = {}
+        for k, key in keys.items():
+            path = f"{sec}.{k}"
+            if k in given:
+                spec[sec][k] = key.check(given[k], _where(source, path, overridden))
+            elif key.default is REQUIRED:
+                raise ConfigError(f"{source}: missing required key {path!r} ({key.doc})")
+            else:
+                spec[sec][k] = copy.deepcopy(key.default)
+
+    names = spec["input"]["variables"]
+    # per-variable tables
+    given_vars = raw.get("variables", {})
+    for v, table in given_vars.items():
+        if v not in names:
+            raise ConfigError(f"{source}: [variables.{v}] names a variable not in input.variables "
+                              f"{names}" + _closest(v, names))
+        if not isinstance(table, dict):
+            raise ConfigError(f"{source}: variables.{v} must be a table ([variables.{v}])")
+        for k in table:
+            if k not in VARIABLE_KEYS:
+                raise _unknown(source, f"variables.{v}", k, VARIABLE_KEYS)
+    spec["variables"] = {}
+    for v in names:
+        table = given_vars.get(v, {})
+        spec["variables"][v] = {
+            k: (key.check(table[k], _where(source, f"variables.{v}.{k}", overridden)) if k in table
+                else copy.deepcopy(key.default))
+            for k, key in VARIABLE_KEYS.items()
+        }
+
+    _cross_checks(spec, source)
+    return spec
+
+
+def _cross_checks(spec: dict, source: str) -> None:
+    inp, names = spec["input"], spec["input"]["variables"]
+    d = len(names)
+    size = spec["grid"]["size"]
+    if len(size) not in (1, d):
+        raise ConfigError(f"{source}: grid.size = {size} has {len(size)} entries for {d} variables "
+                          f"({', '.join(names)}): give one number or {d}")
+    for v in spec["grid"]["limits"]:
+        if v not in names:
+            raise ConfigError(f"{source}: grid.limits.{v} names a variable not in input.variables "
+                              f"{names}" + _closest(v, names))
+    overlap = set(names) & set(inp["sample_dims"])
+    if overlap:
+        raise ConfigError(f"{source}: input.sample_dims {inp['sample_dims']} contains variable name(s) "
+                          f"{sorted(overlap)}: list dimensions there, variables in input.variables")
+    if inp["group_by"] is not None and inp["group_by"] in names:
+        raise ConfigError(f"{source}: input.group_by = {inp['group_by']!r} is also in input.variables")
+    if inp["months"] is not None and inp["seasons"] is not None:
+        raise ConfigError(f"{source}: input.months and input.seasons both select months: give one")
+    if inp["min_samples"] < d + 1:
+        raise ConfigError(f"{source}: input.min_samples = {inp['min_samples']} is below the {d + 1} "
+                          f"samples {d} variables need at the very least")
+    if inp["max_samples"] is not None and inp["max_samples"] < inp["min_samples"]:
+        raise ConfigError(f"{source}: input.max_samples = {inp['max_samples']} is below "
+                          f"input.min_samples = {inp['min_samples']}")
+    masses = [v for v in names if spec["variables"][v]["point_mass"] is not None]
+    if len(masses) > 1:
+        raise ConfigError(f"{source}: point_mass is set for {masses}: at most one variable may carry a "
+                          "point mass")
+    for v in names:
+        table = spec["variables"][v]
+        if table["point_mass"] is not None and table["period"] is not None:
+            raise ConfigError(f"{source}: variables.{v} has both point_mass and period: a circular "
+                              "variable has no point mass")
+        if table["period"] is not None and table["bounds"] is not None:
+            raise ConfigError(f"{source}: variables.{v} has both bounds and period: a circular variable "
+                              "is unbounded; drop variables.{v}.bounds")
+        if table["point_mass"] is not None and table["bounds"] is not None:
+            lo, hi = table["bounds"]
+            if not lo <= table["point_mass"] < hi:
+                raise ConfigError(f"{source}: variables.{v}.point_mass = {table['point_mass']} lies outside "
+                                  f"variables.{v}.bounds = {table['bounds']}")
+        lim = spec["grid"]["limits"].get(v)
+        if lim is not None and table["bounds"] is not None:
+            lo, hi = table["bounds"]
+            if lim[1] <= lo or lim[0] >= hi:
+                raise ConfigError(f"{source}: grid.limits.{v} = {lim} lies outside variables.{v}.bounds = "
+                                  f"{table['bounds']}")
+
+
+# ---------------------------------------------------------------------------
+# documentation
+# ---------------------------------------------------------------------------
+
+def key_reference() -> str:
+    """Markdown table of every key, default and meaning (docs/workflow_keys.md is made from it)."""
+    lines = ["| key | default | meaning |", "|---|---|---|"]
+
+    def fmt(v):
+        if v is REQUIRED:
+            return "required"
+        if v is None:
+            return "-"
+        return f"`{_jsonable(v)!r}`".replace("'", '"') if not isinstance(v, str) else f'`"{v}"`'
+
+    for sec, keys in SCHEMA.items():
+        for k, key in keys.items():
+            doc = key.doc
+            if key.choices:
+                doc += " (one of: " + ", ".join(_DOCUMENTED[key.choices]) + ")"
+            lines.append(f"| `{sec}.{k}` | {fmt(key.default)} | {doc} |")
+    for k, key in VARIABLE_KEYS.items():
+        lines.append(f"| `variables.NAME.{k}` | {fmt(key.default)} | {key.doc} |")
+    return "\n".join(lines)
+
+
+if __name__ == "__main__":  # python -m mvkde.workflow > table for docs/workflow_keys.md
+    print(key_reference())
