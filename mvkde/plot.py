@@ -487,8 +487,12 @@ def _contours(ax, X, Y, Z, levels: dict):
     if not lv:
         return None
     styles = [HDR_STYLES.get(m, "solid") for m in masses]
-    ax.contour(X, Y, Z, levels=lv, colors=HALO, linewidths=2.6, linestyles="solid")
-    return ax.contour(X, Y, Z, levels=lv, colors=LINE, linewidths=1.2, linestyles=styles)
+    # a light halo with the same dash pattern keeps each style readable on dark and light fills
+    import matplotlib
+
+    with matplotlib.rc_context({"lines.scale_dashes": False}):
+        ax.contour(X, Y, Z, levels=lv, colors=HALO, linewidths=3.0, linestyles=styles)
+        return ax.contour(X, Y, Z, levels=lv, colors=LINE, linewidths=1.3, linestyles=styles)
 
 
 def _compass(ax, lay, var):

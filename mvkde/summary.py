@@ -191,7 +191,10 @@ def _flag_table(ds: xr.Dataset, lay: OutputLayout) -> dict | None:
     counts = {m: int(((values & int(bit)) != 0).sum()) for m, bit in zip(meanings, masks)}
     flagged = values != 0
     examples = []
-    for idx in np.argwhere(flagged)[:5]:
+    # one example cell per flag that occurs: the first cell carrying it
+    firsts = sorted({int(np.flatnonzero((values.ravel() & int(bit)) != 0)[0])
+                     for bit, m in zip(masks, meanings) if counts[m]})
+    for idx in (np.unravel_index(i, values.shape) if values.ndim else () for i in firsts):
         where = {}
         for k, dim in enumerate(var.dims):
             c = ds[dim].values[idx[k]] if dim in ds.coords else idx[k]
