@@ -166,6 +166,30 @@ def test_exceedance_field_matches_scipy_for_a_bivariate_normal():
     assert "hs > 0.5 m" in label and "tp > -0.7 s" in label
 
 
+def test_point_mass_output_exceedance_and_marginal_match_the_closed_form(tmp_path):
+    from scipy.stats import norm
+
+    from mvkde.plot import cell_density
+
+    ds = tiny_outputs.synthetic_point_mass(p_dry=0.4, scale=5.0, threshold=1.0)
+    lay = layout(ds)
+    assert lay.point_mass == {"pr": 1.0}
+    # P(tasmax > 15) counts dry days too: the normal tail beyond one sd (scipy.stats.norm.sf)
+    da, _ = field_values(ds, lay, "exceedance[tasmax>15]")
+    assert float(da.isel(cell=0)) == pytest.approx(norm.sf(1.0), abs=1e-4)
+    # P(pr > 5, tasmax > 15) = (1 - p) exp(-(5 - 1) / 5) * norm.sf(1): the point mass lies below 5
+    da, _ = field_values(ds, lay, "exceedance[pr>5,tasmax>15]")
+    assert float(da.isel(cell=0)) == pytest.approx(0.6 * np.exp(-0.8) * norm.sf(1.0), abs=1e-4)
+    # the marginal of tasmax drawn for the cell includes the point-mass part: it integrates to 1
+    cd = cell_density(ds, lay, {"cell": 0}, ["tasmax"])
+    assert np.trapezoid(cd.values, cd.axes["tasmax"]) == pytest.approx(1.0, abs=1e-3)  # trapezoid error ~1e-4
+    path = tmp_path / "pm.nc"
+    ds.to_netcdf(path)
+    res = plot_output(path, size=(600, 480), out=tmp_path / "pm.png")
+    assert res.kind == "joint" and "P(pr <= 1) = 0.400" in res.title
+    assert_picture(res.path, 600, 480)
+
+
 def test_bandwidth_field_is_the_entry_of_H(outputs):
     ds = xr.open_dataset(outputs["grid"])
     da, label = field_values(ds, layout(ds), "bandwidth[tasmax,pr]")

@@ -199,3 +199,28 @@ def synthetic_directional(period_on="coordinate", with_speed=True) -> xr.Dataset
                                        **({"wind_speed": {"period": None}} if with_speed else {})}}}
     ds.attrs["provenance"] = json.dumps(prov)
     return ds
+
+
+def synthetic_point_mass(p_dry=0.4, scale=5.0, threshold=1.0) -> xr.Dataset:
+    """One cell: pr with a point mass (pr <= threshold, probability p_dry) and tasmax ~ N(10, 5^2), independent.
+
+    Continuous part: pr - threshold exponential with ``scale``, times the normal, times 1 - p_dry;
+    on the point mass: p_dry times the normal density of tasmax (the layout of mvkde run outputs).
+    """
+    from scipy.stats import expon, norm
+
+    pr = np.linspace(threshold, threshold + 16 * scale, 321)
+    tx = np.linspace(-25.0, 45.0, 281)
+    f_t = norm(10.0, 5.0).pdf(tx)
+    cont = (1 - p_dry) * expon(loc=threshold, scale=scale).pdf(pr)[:, None] * f_t[None, :]
+    ds = xr.Dataset(
+        {"density": (("cell", "pr", "tasmax"), cont[None], {"units": "1/(mm d-1 degC)"}),
+         "density_at_point_mass": (("cell", "tasmax"), (p_dry * f_t)[None], {"units": "degC-1"}),
+         "point_mass_probability": (("cell",), np.array([p_dry]), {"units": "1"})},
+        coords={"cell": [0], "pr": ("pr", pr, {"units": "mm d-1"}), "tasmax": ("tasmax", tx, {"units": "degC"}),
+                "variable_row": ["pr", "tasmax"], "variable_column": ["pr", "tasmax"]})
+    ds["bandwidth"] = (("cell", "variable_row", "variable_column"), np.eye(2)[None])
+    ds = _per_cell(ds, ["cell"], 365)
+    ds.attrs["provenance"] = json.dumps({"workflow": {"input": {"variables": ["pr", "tasmax"]}, "variables": {
+        "pr": {"point_mass": threshold, "period": None}, "tasmax": {"point_mass": None, "period": None}}}})
+    return ds
