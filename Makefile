@@ -12,6 +12,11 @@ $(VENV)/.stamp-base: pyproject.toml
 	$(PIP) install -e .
 	touch $@
 
+$(VENV)/.stamp-plot: pyproject.toml
+	test -x $(PY) || $(PYTHON) -m venv $(VENV)
+	$(PIP) install -e '.[plot]'
+	touch $@ $(VENV)/.stamp-base
+
 $(VENV)/.stamp-test: pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PIP) install -e '.[test]'
@@ -24,7 +29,7 @@ $(VENV)/.stamp-bench: pyproject.toml
 
 install: $(VENV)/.stamp-base
 
-demo: $(VENV)/.stamp-base
+demo: $(VENV)/.stamp-plot
 	$(VENV)/bin/mvkde demo
 
 test: $(VENV)/.stamp-test

@@ -82,6 +82,34 @@ def cmd_check(args) -> int:
     return 0
 
 
+def cmd_plot(args) -> int:
+    from .plot import parse_selection, parse_size, plot_output, require_matplotlib
+
+    require_matplotlib()
+    selection = parse_selection(args.cell)
+    if args.season is not None:
+        if "season" in selection and selection["season"] != args.season:
+            raise MvkdeError(f"--season {args.season} and --cell season={selection['season']} disagree: give one")
+        selection["season"] = args.season
+    size = parse_size(args.size, args.width, args.height)
+    result = plot_output(args.output, cell=selection, field=args.field, variables=args.variables,
+                         out=args.out, size=size)
+    print(f"mvkde plot: wrote {result.path} ({result.kind}, {size[0]}x{size[1]} pixels)")
+    return 0
+
+
+def cmd_inspect(args) -> int:
+    from .summary import format_summary, open_output, summarise, to_json
+
+    ds = open_output(args.output)
+    try:
+        summary = summarise(ds, args.output)
+    finally:
+        ds.close()
+    print(to_json(summary) if args.json else format_summary(summary))
+    return 0
+
+
 def cmd_not_ready(name):
     def inner(args) -> int:
         raise MvkdeError(f"'mvkde {name}' is not available in this version")
@@ -135,11 +163,35 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--set", action="append", metavar="KEY.PATH=VALUE", help="override a workflow key")
     p.set_defaults(func=cmd_check)
 
-    for name, text in (("plot", "quick-look pictures of an output file"),
-                       ("inspect", "summary of an output file")):
-        p = sub.add_parser(name, help=text, description=text)
-        p.add_argument("rest", nargs="*")
-        p.set_defaults(func=cmd_not_ready(name))
+    p = sub.add_parser("plot", help="quick-look picture (PNG) of an output file",
+                       description="Draw one cell's density (joint density with its 50/90/99 % highest-density "
+                                   "regions and marginals for two variables, a line for one, a circular plot "
+                                   "for a direction) or, with --field, a map of a per-cell value. Needs the "
+                                   "plot extra (matplotlib).")
+    p.add_argument("output", metavar="OUTPUT.nc", help="a density file written by mvkde run")
+    p.add_argument("--cell", action="append", metavar="DIM=VALUE[,DIM=VALUE]",
+                   help="choose the cell: any cell dimension (lat, lon, season, station ...); nearest value "
+                        "for numeric coordinates, exact for labels (repeatable)")
+    p.add_argument("--season", metavar="LABEL", help="same as --cell season=LABEL")
+    p.add_argument("--field", metavar="NAME",
+                   help="map a per-cell value: n_samples, grid_mass, flags, bandwidth[A,B], "
+                        "exceedance[A>VALUE,B>VALUE] ...")
+    p.add_argument("--variables", metavar="A[,B]",
+                   help="the one or two variables to draw (the others are integrated out; default: the first two)")
+    p.add_argument("-o", "--out", metavar="FILE.png", help="picture to write (default: beside OUTPUT.nc)")
+    p.add_argument("--size", metavar="WxH", help="picture size in pixels (default 900x700)")
+    p.add_argument("--width", metavar="PIXELS", help="picture width in pixels")
+    p.add_argument("--height", metavar="PIXELS", help="picture height in pixels")
+    p.set_defaults(func=cmd_plot)
+
+    p = sub.add_parser("inspect", help="summary of an output file: cells, variables, estimator, flags, provenance",
+                       description="Print what an output file holds and how it was made: dims and cells, "
+                                   "variables and units, kernel, bandwidth selector and boundary method, "
+                                   "bandwidth ranges over cells, flagged cells, warnings and the provenance "
+                                   "(inputs with their SHA-256, versions, time).")
+    p.add_argument("output", metavar="OUTPUT.nc", help="a density file written by mvkde run")
+    p.add_argument("--json", action="store_true", help="print JSON for machines (the provenance record as stored)")
+    p.set_defaults(func=cmd_inspect)
     return parser
 
 

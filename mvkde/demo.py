@@ -4,7 +4,9 @@
 density of precipitation and maximum temperature per cell and season) with
 the embedded local scheduler and writes ``out/basin_seasonal_density.nc``.
 Where this installation of the library lacks an option the workflow asks
-for, the demo says so and uses the closest available one.
+for, the demo says so and uses the closest available one. It ends by
+writing two pictures beside the output (with the plot extra) and printing
+their paths.
 """
 
 from __future__ import annotations
@@ -78,4 +80,44 @@ def run(out_dir="out", out=None) -> int:
     written = run_and_write(wf, overwrite=True, command_line=["mvkde", "demo", "--out", str(out_dir)], out=out)["path"]
     print(f"mvkde demo: open it with xarray.open_dataset({str(written)!r}); "
           f"'mvkde check {path.relative_to(repo)}' prints the plan", file=out)
+    for line in pictures(written):
+        print(f"mvkde demo: {line}", file=out)
     return 0
+
+
+def pictures(output) -> list[str]:
+    """Write the demo's pictures beside ``output``; one line per picture (or why there is none).
+
+    A summer cell in the middle of the basin (joint density with its
+    highest-density regions) and a summer map of P(tasmax > 25 degC).
+    """
+    import xarray as xr
+
+    from .errors import MvkdeError
+    from .plot import plot_output, require_matplotlib
+
+    try:
+        require_matplotlib()
+    except MvkdeError as exc:
+        return [f"no pictures: {exc}"]
+    output = Path(output)
+    with xr.open_dataset(output) as ds:
+        centre = {d: ds[d].values[ds.sizes[d] // 2] for d in ("lat", "lon") if d in ds.dims}
+        season = "JJA" if "season" in ds.dims and "JJA" in ds["season"].values else None
+        hot = 25.0 if "tasmax" in ds.dims and float(ds["tasmax"][0]) < 25.0 < float(ds["tasmax"][-1]) else None
+    cell = {k: f"{float(v):g}" for k, v in centre.items()}
+    if season:
+        cell["season"] = season
+    lines = []
+    requests = [("joint density of one cell", dict(cell=cell, out=output.with_name(output.stem + "_cell.png")))]
+    if hot is not None:
+        requests.append(("map of P(tasmax > 25 degC)" + (" in summer" if season else ""),
+                         dict(cell={"season": season} if season else {}, field=f"exceedance[tasmax>{hot:g}]",
+                              out=output.with_name(output.stem + "_tasmax_above_25.png"))))
+    for what, kw in requests:
+        try:
+            result = plot_output(output, **kw)
+            lines.append(f"picture: {result.path} ({what})")
+        except MvkdeError as exc:
+            lines.append(f"no picture of the {what}: {exc}")
+    return lines
