@@ -213,6 +213,9 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print(f"mvkde {args.command}: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into head & co.: not an error
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     except Exception as exc:  # an internal error: keep the traceback in a log, not on screen
         log = Path(tempfile.gettempdir()) / f"mvkde-error-{os.getpid()}.log"
         log.write_text(traceback.format_exc())
