@@ -50,7 +50,7 @@ __all__ = ["Prepared", "prepare", "BinnedSums", "ExactSums", "multi_indices", "d
 
 #: bins per normal-scale kernel standard deviation, and grid caps, by dimension:
 #: the binning error of a functional falls like (bin width / bandwidth)^2.
-_RESOLUTION = {1: 40.0, 2: 5.0, 3: 3.0}
+_RESOLUTION = {1: 20.0, 2: 5.0, 3: 3.0}
 _MAX_BINS = {1: 8192, 2: 256, 3: 64}
 #: cap on quadratic forms before exp(-q/2): keeps every product of kernel
 #: values out of the subnormal range (see BinnedSums.half_exp)
@@ -252,7 +252,15 @@ class BinnedSums:
         self.kappa = kappa
         self.mult = mult
         # off-diagonal spectrum, with the 1/(grid volume) of Parseval folded in
-        self.pt = (power - self_spec) * (mult / ntot) / np.prod(delta, axis=1)[:, None]
+        # Linear binning spreads each point over a tent of one bin width; for
+        # points placed at random within their bins the expected binned
+        # cross-spectrum of a pair is the true one times prod_j sinc^2(k_j/2)
+        # for each of the two points.  Dividing it out removes the O(delta^2)
+        # binning bias of every off-diagonal sum (the self pairs were already
+        # removed exactly).
+        half = 0.5 * kappa
+        tent = np.prod(np.where(half == 0, 1.0, np.sin(half) / np.where(half == 0, 1.0, half)), axis=1) ** 4
+        self.pt = (power - self_spec) * (mult / ntot / tent) / np.prod(delta, axis=1)[:, None]
         self.nfreq = int(keep.sum())
         self._pairs = [(j, k) for j in range(d) for k in range(j, d)]
         self._mono2 = np.stack([kappa[:, j] * kappa[:, k] for j, k in self._pairs], axis=1)
@@ -281,9 +289,18 @@ class BinnedSums:
 
         ``a`` and ``b`` are non-negative integers; the spectrum of
         ``phi_{aH+bG}`` is ``E_H^a E_G^b`` with ``E_S = exp(-w'Sw/2)``, so one
-        exponential per row serves every term.  Returns (len(terms), b).
+        exponential per row serves every term.  Rows are processed in chunks
+        so the working arrays stay near 16 MB.  Returns (len(terms), b).
         """
         cells = np.asarray(cells)
+        out = np.empty((len(terms), len(cells)))
+        step = max(1, (1 << 21) // max(self.nfreq, 1))
+        for a0 in range(0, len(cells), step):
+            sl = slice(a0, a0 + step)
+            out[:, sl] = self._gauss_chunk(cells[sl], H[sl], terms, None if G is None else G[sl])
+        return out
+
+    def _gauss_chunk(self, cells, H, terms, G):
         EH = self.half_exp(cells, H)
         P = self.pt[cells[0]][None, :] if np.all(cells == cells[0]) else self.pt[cells]
         EG = self.half_exp(cells, G) if G is not None else None

@@ -333,18 +333,19 @@ def run_selector(method: str, prep: Prepared, parametrization: str, *, binned=No
     if binned:
         s6, t6, u6 = samse_normal_constants(d, 3)
         g6_ref = (samse_q(d, 3, s6, t6, u6) / prep.n_eff) ** (1.0 / (d + 8))
-        if method == "plugin":
-            # only the pilot kernels touch the data: resolve and pad for them
-            # (a data-based g4 below a third of its normal reference is not expected)
-            max_sd = np.maximum(g6_ref, 1.3 * g4_ref)
-            min_sd = g4_ref / 3.0
-            sums = BinnedSums(prep, max_sd, min_sd, delta=g4_ref / 5.0)
+        if method in ("plugin", "scv"):
+            # every SCV kernel contains phi_{2G}, 2G = g4^2 I, and the plug-in
+            # touches the data only through its pilots: resolve and pad for
+            # the pilot scale (a data-based g4 below a third of its normal
+            # reference is not expected), not for H
+            widest = np.maximum(g6_ref, 1.3 * g4_ref) ** 2
+            if method == "scv":
+                widest = np.maximum(widest, 2.0 * high * prep.c_ns * np.minimum(par.spread(), 4.0)
+                                    + (1.3 * g4_ref) ** 2)
+            sums = BinnedSums(prep, np.sqrt(widest), g4_ref / 3.0, delta=g4_ref / 5.0)
         else:
             spread = np.minimum(par.spread(), 4.0)
-            widest = 2.0 * high * prep.c_ns * spread
-            if method == "scv":
-                widest = widest + (1.5 * g4_ref) ** 2
-            max_sd = np.maximum(np.sqrt(widest), 1.2 * g6_ref if method == "scv" else 0.0)
+            max_sd = np.sqrt(2.0 * high * prep.c_ns * spread)
             min_sd = 0.7 * np.sqrt(low * prep.c_ns)
             sums = BinnedSums(prep, max_sd, min_sd)
     else:
