@@ -361,10 +361,16 @@ class BinnedSums:
         kappa = np.stack([m.ravel() for m in mesh], axis=1)
         Su = H / (self.delta[cells][:, :, None] * self.delta[cells][:, None, :])
         q = np.einsum("fj,bjk,fk->bf", kappa, Su, kappa)
-        spec = self._spec_complex[cell].reshape(-1)[None, :] * np.exp(-0.5 * q)
+        # the same tent deconvolution as for the pair sums (binning of X_j and
+        # linear interpolation at X_i each smear by one tent)
+        half = 0.5 * kappa
+        tent = np.prod(np.where(half == 0, 1.0, np.sin(half) / np.where(half == 0, 1.0, half)), axis=1) ** 4
+        kern = np.exp(-0.5 * np.minimum(q, _Q_CAP)) / tent
+        spec = self._spec_complex[cell].reshape(-1)[None, :] * kern
         grid = _fft.irfftn(spec.reshape((b,) + mesh[0].shape), s=(size,) * d,
                            axes=tuple(range(1, d + 1)), workers=1)
-        grid /= np.prod(self.delta[cell])
+        vol = np.prod(self.delta[cell])
+        grid /= vol
         z = self.prep.z[cell]
         w = self.prep.w[cell]
         u = (z - self.origin[cell]) / self.delta[cell]
@@ -376,19 +382,20 @@ class BinnedSums:
         for corner in itertools.product((0, 1), repeat=d):
             corner = np.array(corner)
             wt = np.prod(np.where(corner == 1, frac, 1.0 - frac), axis=1)
-            total += flat[:, (i0 + corner) @ strides] * wt[None, :]
-        # remove each point's own binned contribution
+            total += flat[:, np.einsum("ij,j->i", i0 + corner, strides)] * wt[None, :]
+        # remove each point's own contribution, seen through the same
+        # (deconvolved) kernel at the node offsets {-1, 0, 1}^d
         offsets = np.array(list(itertools.product((-1, 0, 1), repeat=d)))
         auto = np.empty((z.shape[0], len(offsets)))
         for k, o in enumerate(offsets):
             a = np.where(o == 0, (1.0 - frac) ** 2 + frac ** 2, frac * (1.0 - frac))
             auto[:, k] = np.prod(a, axis=1)
-        Hu = Su
-        sign, logdet = np.linalg.slogdet(Hu)
-        quad = np.einsum("kj,bjl,kl->bk", offsets, np.linalg.inv(Hu), offsets)
-        phi = np.exp(-0.5 * quad - 0.5 * logdet[:, None]) * (2 * np.pi) ** (-0.5 * d)
-        phi /= np.prod(self.delta[cell])
-        total -= w[None, :] * (phi @ auto.T)
+        mult = np.ones(mesh[-1].shape)
+        last = np.arange(mesh[-1].shape[-1])
+        mult[..., (last > 0) & (last < size / 2.0)] = 2.0
+        cosines = np.cos(np.einsum("od,fd->fo", offsets, kappa)) * mult.reshape(-1, 1)
+        kern_at = np.einsum("bf,fo->bo", kern, cosines) / (size ** d) / vol
+        total -= w[None, :] * np.einsum("bo,no->bn", kern_at, auto)
         return total
 
 
