@@ -160,8 +160,8 @@ def test_mlcv_diagonal_matches_statsmodels(rng):
                                         ("mlcv", "full")])
 def test_binned_equals_exact(method, par):
     # Binned FFT sums against the exact O(n^2) sums at n = 2,000 (one start each so the two runs
-    # follow the same path; MLCV at n = 600 to keep the exact loop short).
-    n = 600 if method == "mlcv" else 2000
+    # follow the same path; MLCV at n = 400 to keep the exact loop short).
+    n = 400 if method == "mlcv" else 2000
     x = np.random.default_rng(11).multivariate_normal([0, 0], [[1, 0.6], [0.6, 2]], size=n)
     x[: n // 4] += [2.0, -1.0]
     a = run_selector(method, prepare([x]), par, binned=True, starts=(1.0,))[0]
@@ -212,13 +212,14 @@ def test_full_beats_diagonal_on_correlated_target():
 @pytest.mark.parametrize("method", ["plugin", "scv"])
 def test_relative_error_shrinks_with_n(method):
     # Relative error of H against H_MISE (Wand & Jones 1993 target 7, correlated bimodal):
-    # mean over 20 samples per n (fewer than 50 to keep the n = 4,000 case short).
+    # mean over 20 (plugin) or 12 (scv) samples per n -- fewer than 50 to keep the test
+    # budget; the decrease is large compared with the spread at these counts.
     m = WAND_JONES[7]
     rng = np.random.default_rng(31)
     errors = []
     for n in (250, 1000, 4000):
         H_opt, _ = mise_optimal(m, n)
-        xs = [m.sample(n, rng) for _ in range(20)]
+        xs = [m.sample(n, rng) for _ in range(20 if method == "plugin" else 12)]
         errs = [np.linalg.norm(r.H - H_opt) / np.linalg.norm(H_opt) for r in select_many(method, xs)]
         errors.append(np.mean(errs))
     assert errors[0] > errors[1] > errors[2]

@@ -440,6 +440,9 @@ class ExactSums:
                 for b in sel:
                     mats.append(a * H[b] + (bb * G[b] if bb else 0.0))
             mats = np.array(mats)
+            # terms without H (the pilot's phi_{2G}) repeat across rows: sum each matrix once
+            mats, back = np.unique(mats.reshape(len(mats), -1), axis=0, return_inverse=True)
+            mats = mats.reshape(-1, d, d)
             inv = np.linalg.inv(mats)
             coef = np.stack([inv[:, j, k] * (1.0 if j == k else 2.0) for j, k in iu], axis=0)
             const = (2 * np.pi) ** (-0.5 * d) * np.exp(-0.5 * np.linalg.slogdet(mats)[1])
@@ -453,7 +456,7 @@ class ExactSums:
                     q *= -0.5
                     np.exp(q, out=q)
                     acc += ww[a0:a0 + step] @ q
-            out[:, sel] = (acc * const).reshape(len(terms), len(sel))
+            out[:, sel] = (acc * const)[np.ravel(back)].reshape(len(terms), len(sel))
         return out
 
     def derivative_sums(self, cells, g, order):
