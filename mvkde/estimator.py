@@ -169,8 +169,9 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
         Per-variable support; None for an open side.
     boundary : str or None
         Boundary-correction method for bounded variables: ``"none"``,
-        ``"reflect"``, ``"renormalize"`` (each kernel divided by its mass
-        inside the support), ``"renormalize-pointwise"``, ``"linear"`` (Jones
+        ``"reflect"``, ``"renormalize"`` (divided pointwise by the kernel mass
+        inside the support), ``"renormalize-kernel"`` (each kernel divided by
+        its own mass inside the support), ``"linear"`` (Jones
         1993), ``"transform"`` (log/logit; a bandwidth selector then works in
         the transformed space and ``H`` is in that space), ``"beta"`` (Chen
         1999) or ``"gamma"`` (Chen 2000).  None picks the default measured
@@ -258,7 +259,7 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
                              f"at least {d + 1} are needed")
 
     if mask_spec is not None:
-        if boundary not in (None, "renormalize-pointwise", "mask"):
+        if boundary not in (None, "renormalize", "mask"):
             raise InputError(f"with mask= the edge correction is the kernel mass inside the mask; "
                              f"boundary={boundary!r} cannot use a mask: pass boundary=None")
         method = "mask"
@@ -290,8 +291,17 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
     else:
         result = BandwidthResult(BandwidthMatrix.from_matrix(bandwidth, d), "given", parametrization)
 
-    model = _boundary.build_model(method, cont_values, cont_w, result.matrix, mk, cont_box, engine, names,
-                                  mask=mask_spec)
+    default_note = ""
+    try:
+        model = _boundary.build_model(method, cont_values, cont_w, result.matrix, mk, cont_box, engine, names,
+                                      mask=mask_spec)
+    except InputError as err:
+        if boundary is not None or method in ("none", "mask"):
+            raise
+        # the default cannot honour this kernel and H: fall back to the method that always can
+        default_note = f"default {method!r} not applicable ({err}); used {_boundary.DEFAULT_FALLBACK!r}"
+        method = _boundary.DEFAULT_FALLBACK
+        model = _boundary.build_model(method, cont_values, cont_w, result.matrix, mk, cont_box, engine, names)
     if point is not None:
         point.fit_part(values, w, dict(kernel=mk.name, form=mk.form, bandwidth=bandwidth,
                                        parametrization=parametrization, boundary=boundary,
@@ -299,6 +309,8 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
     est = DensityEstimate(cont_values, cont_w, names, units, mk, result, cont_box, method, engine,
                           model=model, point_mass=point, mask=mask_spec)
     est.attrs["n_dropped_outside_support"] = n_dropped
+    if boundary is None and method != "none":
+        est.attrs["boundary_choice"] = default_note or f"default for these bounds ({method!r})"
     return est
 
 

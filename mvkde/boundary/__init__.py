@@ -5,8 +5,8 @@ Methods (``fit(boundary=...)``):
 ==========================  =========================================================
 ``"none"``                  uncorrected estimate cut at the bounds (mass leaks out)
 ``"reflect"``               reflection across every bounded face, corners included
-``"renormalize"``           each kernel divided by its own mass inside the support
-``"renormalize-pointwise"`` f_hat(x) / a0(x), a0 = kernel mass inside the support at x
+``"renormalize"``           f_hat(x) / a0(x), a0 = kernel mass inside the support at x
+``"renormalize-kernel"``    each kernel divided by its own mass inside the support
 ``"linear"``                Jones (1993) linear boundary kernel (can go negative)
 ``"transform"``             log (one bound) / logit (two bounds) transformation
 ``"beta"``                  Chen (1999) beta kernels, two-sided bounds, diagonal H
@@ -36,8 +36,8 @@ from .support import check_inside, has_bounds, outside_rows, parse_bounds
 METHODS = {
     "none": NoCorrection,
     "reflect": Reflection,
-    "renormalize": KernelRenormalization,
-    "renormalize-pointwise": PointwiseRenormalization,
+    "renormalize": PointwiseRenormalization,
+    "renormalize-kernel": KernelRenormalization,
     "linear": LinearBoundaryKernel,
     "transform": Transformation,
     "beta": BetaKernel,
@@ -48,10 +48,12 @@ OUTSIDE_OPTIONS = ("error", "drop")
 
 # Chosen from benchmarks/boundary_ise.md (mean ISE within two bandwidths of the
 # bound): see README "Bounded variables" for the reasoning.
-DEFAULT_METHOD = {"one-sided": "reflect", "two-sided": "reflect"}
+DEFAULT_METHOD = {"one-sided": "linear", "two-sided": "linear"}
+# used by boundary=None when the default cannot honour the kernel and H
+DEFAULT_FALLBACK = "reflect"
 
 __all__ = [
-    "BOUNDARY_METHODS", "DEFAULT_METHOD", "METHODS", "OUTSIDE_OPTIONS", "build_model",
+    "BOUNDARY_METHODS", "DEFAULT_FALLBACK", "DEFAULT_METHOD", "METHODS", "OUTSIDE_OPTIONS", "build_model",
     "check_inside", "check_method", "forward_transform", "has_bounds", "in_mask", "inside_box",
     "inverse_transform", "modified_gamma_shape", "outside_rows", "parse_bounds", "parse_mask",
     "validate_method",

@@ -359,7 +359,7 @@ class KernelRenormalization(_Factorised):
     variant (Jones 1993, Sec. 2, discusses both normalisations).
     """
 
-    name = "renormalize"
+    name = "renormalize-kernel"
     sample_note = "each kernel truncated to the support: a kernel draw is redrawn until inside (exact)"
 
     def __init__(self, *args):
@@ -394,7 +394,7 @@ class PointwiseRenormalization(_Factorised):
     'cut-and-normalise' estimator of Jones 1993), divided by a constant so that
     the total mass is one (the raw correction integrates to 1 + O(h^2))."""
 
-    name = "renormalize-pointwise"
+    name = "renormalize"
     sample_note = ("rejection from the uncorrected estimate with acceptance min(a0)/a0(x) "
                    "(exact: a0 >= its minimum over the support)")
 
