@@ -636,8 +636,8 @@ class DensityEstimate:
             "bandwidth_matrix": self.H.ravel().tolist(),
             "bandwidth_matrix_note": "row-major d x d bandwidth matrix H (covariance of the scaled kernel)",
             "boundary": self.boundary,
-            "bounds": [float(v) for pair in self.bounds for v in pair],
-            "bounds_note": "lo, hi per variable (inf for an open side)",
+            "support_bounds": [float(v) for pair in self.bounds for v in pair],
+            "support_bounds_note": "lo, hi per variable (inf for an open side)",
             "n_samples": self.n,
             "caution": CAUTION,
         }
