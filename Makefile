@@ -37,6 +37,7 @@ test: $(VENV)/.stamp-test
 
 bench: $(VENV)/.stamp-bench
 	$(PY) benchmarks/run.py --out benchmarks/results.md
+	$(PY) benchmarks/boundary_ise.py --out benchmarks/boundary_ise.md
 
 bench-smoke: $(VENV)/.stamp-bench
 	$(PY) benchmarks/run.py --smoke --out /tmp/mvkde-bench-smoke.md

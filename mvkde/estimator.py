@@ -22,7 +22,7 @@ from . import boundary as _boundary
 from . import engines as _engines
 from . import products as _products
 from .bandwidth import BandwidthMatrix, BandwidthResult, PARAMETRIZATIONS, select
-from .errors import InputError, check_choice
+from .errors import InputError, MvkdeError, check_choice
 from .kernels import FORMS, get_kernel, get_multivariate_kernel
 from .units import density_units
 
@@ -146,7 +146,7 @@ def _check_weights(weights, n):
 
 def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametrization="full",
         bounds=None, boundary=None, weights=None, periods=None, engine="auto",
-        names=None, units=None) -> "DensityEstimate":
+        names=None, units=None, point_masses=None, mask=None, outside="error") -> "DensityEstimate":
     """Fit a multivariate kernel density estimate.
 
     Parameters
@@ -169,7 +169,15 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
     bounds : list of (lo, hi) or None
         Per-variable support; None for an open side.
     boundary : str or None
-        Boundary-correction method for bounded variables.
+        Boundary-correction method for bounded variables: ``"none"``,
+        ``"reflect"``, ``"renormalize"`` (divided pointwise by the kernel mass
+        inside the support), ``"renormalize-kernel"`` (each kernel divided by
+        its own mass inside the support), ``"linear"`` (Jones
+        1993), ``"transform"`` (log/logit; a bandwidth selector then works in
+        the transformed space and ``H`` is in that space), ``"beta"`` (Chen
+        1999) or ``"gamma"`` (Chen 2000).  None picks the default measured
+        best in ``benchmarks/boundary_ise.md`` (see README, "Bounded
+        variables").
     weights : (n,) array or None
         Non-negative sample weights (normalised to sum to one).
     periods : list of float or None
@@ -178,6 +186,23 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
         Evaluation engine; "auto" chooses and records why.
     names, units : list of str, optional
         Override names and units found in ``data``.
+    point_masses : list or None
+        One entry per variable, None or a threshold t: values <= t of that
+        variable count as its lower bound (a point mass, e.g. dry days with
+        t = 1 mm).  At most one variable; it needs a finite lower bound.  The
+        estimate then has ``point_mass_probability``, ``grid`` is the density
+        of the continuous part (that variable > t, integrating to 1 - p) and
+        ``point_mass_grid`` the density of the other variables on the point
+        mass (integrating to p).
+    mask : xarray.DataArray of bool, optional
+        An irregular support (land mask, catchment) on a regular grid with one
+        dimension per variable: the estimate is edge-corrected by the kernel
+        mass inside the mask (the mask convolved with the kernel) and is zero
+        outside it.  ``grid()`` with no size and limits uses the mask's grid.
+    outside : {"error", "drop"}
+        Data outside the bounds (or the mask): refuse with the count, the
+        variable and the worst value, or drop them and record the count in
+        ``attrs["n_dropped_outside_support"]``.
 
     Returns
     -------
@@ -204,23 +229,158 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
     engine = _engines.validate_engine(engine)
 
     box = _boundary.parse_bounds(bounds, d, names)
-    _boundary.check_inside(values, box, names)
-    method = _boundary.validate_method(boundary, box)
+    outside = check_choice("outside", outside, _boundary.OUTSIDE_OPTIONS)
+    mask_spec = _boundary.parse_mask(mask, names) if mask is not None else None
     if periods is not None:
         if len(list(periods)) != d:
             raise InputError(f"periods has {len(list(periods))} entries but the data have {d} variables")
         if any(p is not None for p in periods):
             raise InputError("circular variables (periods) are not supported yet; pass periods=None")
 
+    # data outside the support: refuse, or drop and record how many
+    out_rows = _boundary.outside_rows(values, box)
+    if mask_spec is not None:
+        out_rows |= ~_boundary.in_mask(values, *mask_spec)
+    n_dropped = 0
+    if out_rows.any():
+        if outside == "error":
+            _boundary.check_inside(values, box, names)
+            raise InputError(f"{int(out_rows.sum())} sample(s) lie outside the mask: fix the mask or the "
+                             "data, or pass outside='drop' to drop them (the count dropped is recorded)")
+        n_dropped = int(out_rows.sum())
+        values = values[~out_rows]
+        w = None if w is None else w[~out_rows]
+        if w is not None:
+            if w.sum() <= 0:
+                raise InputError("every sample with weight lies outside the support")
+            w = w / w.sum()
+        n = values.shape[0]
+        if n < d + 1:
+            raise InputError(f"only {n} samples remain after dropping {n_dropped} outside the support: "
+                             f"at least {d + 1} are needed")
+
+    if mask_spec is not None:
+        if boundary not in (None, "renormalize", "mask"):
+            raise InputError(f"with mask= the edge correction is the kernel mass inside the mask; "
+                             f"boundary={boundary!r} cannot use a mask: pass boundary=None")
+        method = "mask"
+    else:
+        method = _boundary.validate_method(boundary, box)
+
+    # a point mass at the lower bound of one variable
+    point = _point_mass_split(point_masses, values, w, box, names)
+    if point is not None:
+        keep = ~point.rows
+        cont_values = values[keep]
+        cont_w = None if w is None else w[keep] / w[keep].sum()
+        cont_box = list(box)
+        cont_box[point.index] = (point.threshold, box[point.index][1])
+        if cont_values.shape[0] < d + 1:
+            raise InputError(f"only {cont_values.shape[0]} value(s) of {names[point.index]} exceed the point-mass "
+                             f"threshold {point.threshold}: at least {d + 1} are needed for the continuous part")
+    else:
+        cont_values, cont_w, cont_box = values, w, box
+
+    if method != "mask":
+        _boundary.check_method(method, cont_box, cont_values, names)
+    sel_values = _boundary.selection_data(method, cont_values, cont_box) if method != "mask" else cont_values
     if isinstance(bandwidth, str):
-        result = select(bandwidth, values, w, kernel=mk.name, form=mk.form,
+        result = select(bandwidth, sel_values, cont_w, kernel=mk.name, form=mk.form,
                         parametrization=parametrization, names=names)
     elif isinstance(bandwidth, BandwidthResult):
         result = bandwidth
     else:
         result = BandwidthResult(BandwidthMatrix.from_matrix(bandwidth, d), "given", parametrization)
 
-    return DensityEstimate(values, w, names, units, mk, result, box, method, engine)
+    default_note = ""
+    try:
+        model = _boundary.build_model(method, cont_values, cont_w, result.matrix, mk, cont_box, engine, names,
+                                      mask=mask_spec)
+    except InputError as err:
+        if boundary is not None or method in ("none", "mask"):
+            raise
+        # the default cannot honour this kernel and H: fall back to the method that always can
+        default_note = f"default {method!r} not applicable ({err}); used {_boundary.DEFAULT_FALLBACK!r}"
+        method = _boundary.DEFAULT_FALLBACK
+        model = _boundary.build_model(method, cont_values, cont_w, result.matrix, mk, cont_box, engine, names)
+    if point is not None:
+        point.fit_part(values, w, dict(kernel=mk.name, form=mk.form, bandwidth=bandwidth,
+                                       parametrization=parametrization, boundary=boundary,
+                                       engine=engine), box, names, units, result)
+    est = DensityEstimate(cont_values, cont_w, names, units, mk, result, cont_box, method, engine,
+                          model=model, point_mass=point, mask=mask_spec)
+    est.attrs["n_dropped_outside_support"] = n_dropped
+    if boundary is None and method != "none":
+        est.attrs["boundary_choice"] = default_note or f"default for these bounds ({method!r})"
+    return est
+
+
+class _PointMass:
+    """The point mass of one variable at its lower bound (values <= threshold)."""
+
+    def __init__(self, index, name, threshold, bound, rows, probability):
+        self.index, self.name, self.threshold, self.bound = index, name, threshold, bound
+        self.rows, self.probability = rows, probability
+        self.count = int(rows.sum())
+        self.estimate = None
+        self.problem = ""
+
+    def fit_part(self, values, w, options, box, names, units, result):
+        """The density of the other variables on the point-mass part."""
+        d = values.shape[1]
+        if d == 1 or self.count == 0:
+            return
+        others = [k for k in range(d) if k != self.index]
+        sub = values[self.rows][:, others]
+        sub_w = None if w is None else w[self.rows]
+        bandwidth = options["bandwidth"]
+        if not isinstance(bandwidth, str):
+            bandwidth = np.asarray(result.H)[np.ix_(others, others)]
+        try:
+            self.estimate = fit(sub, kernel=options["kernel"], form=options["form"], bandwidth=bandwidth,
+                                parametrization=options["parametrization"],
+                                bounds=[box[k] for k in others], boundary=options["boundary"],
+                                weights=sub_w, engine=options["engine"],
+                                names=[names[k] for k in others], units=[units[k] for k in others])
+        except MvkdeError as err:
+            self.problem = str(err)
+
+    def as_attrs(self) -> dict:
+        return {"point_mass_variable": self.name, "point_mass_threshold": float(self.threshold),
+                "point_mass_bound": float(self.bound), "point_mass_probability": float(self.probability),
+                "point_mass_count": self.count}
+
+
+def _point_mass_split(point_masses, values, w, box, names):
+    if point_masses is None:
+        return None
+    try:
+        items = list(point_masses)
+    except TypeError:
+        raise InputError("point_masses must be a list with one entry (None or a threshold) per variable") from None
+    d = values.shape[1]
+    if len(items) != d:
+        raise InputError(f"point_masses has {len(items)} entries but the data have {d} variables ({', '.join(names)})")
+    given = [j for j, t in enumerate(items) if t is not None]
+    if not given:
+        return None
+    if len(given) > 1:
+        raise InputError(f"point_masses: at most one variable may carry a point mass, got "
+                         f"{', '.join(names[j] for j in given)}")
+    j = given[0]
+    try:
+        t = float(items[j])
+    except (TypeError, ValueError):
+        raise InputError(f"point_masses for {names[j]} must be a number (the threshold), got {items[j]!r}") from None
+    lo, hi = box[j]
+    if not math.isfinite(lo):
+        raise InputError(f"point_masses for {names[j]}: the point mass sits at the lower bound, so {names[j]} "
+                         "needs a finite lower bound in bounds= (e.g. (0, None) for precipitation)")
+    if not (math.isfinite(t) and lo <= t < hi):
+        raise InputError(f"point_masses threshold for {names[j]} must lie in [{lo}, {hi}), got {t}")
+    rows = values[:, j] <= t
+    wn = np.full(values.shape[0], 1.0 / values.shape[0]) if w is None else w
+    return _PointMass(j, names[j], t, lo, rows, float(wn[rows].sum()))
 
 
 # ---------------------------------------------------------------------------
@@ -231,7 +391,7 @@ class DensityEstimate:
     """A fitted kernel density estimate.  Build it with :func:`mvkde.fit`."""
 
     def __init__(self, data, weights, names, units, kernel, bandwidth: BandwidthResult,
-                 bounds, boundary, engine):
+                 bounds, boundary, engine, *, model=None, point_mass=None, mask=None):
         self.data = data
         self.weights = weights
         self.names = list(names)
@@ -241,7 +401,53 @@ class DensityEstimate:
         self.bounds = bounds
         self.boundary = boundary
         self.engine = engine
-        self.attrs: dict = {}
+        self._model = model if model is not None else _boundary.build_model(
+            boundary, data, weights, bandwidth.matrix, kernel, bounds, engine, self.names)
+        self._point = point_mass
+        self._mask = mask
+        self.attrs: dict = dict(self._model.attrs)
+
+    # -- point mass ------------------------------------------------------
+    @property
+    def point_mass_probability(self) -> float:
+        """Probability of the point mass (0.0 when no variable declares one)."""
+        return 0.0 if self._point is None else self._point.probability
+
+    @property
+    def _continuous_share(self) -> float:
+        return 1.0 - self.point_mass_probability
+
+    def point_mass_grid(self, size=64, limits=None) -> xr.DataArray:
+        """Density of the other variables on the point-mass part, integrating to p.
+
+        For one variable, a 0-d DataArray holding p.  ``limits`` may be given for
+        the other variables (a list in their order or a dict by name).
+        """
+        if self._point is None:
+            raise InputError("point_mass_grid: this estimate has no point mass; fit with point_masses=[...]")
+        pm = self._point
+        attrs = {"long_name": f"point mass of {pm.name} at its bound ({pm.name} <= {pm.threshold})",
+                 "part": "point mass", "caution": CAUTION}
+        attrs.update(pm.as_attrs())
+        if self.d == 1:
+            attrs["units"] = "1"
+            return xr.DataArray(pm.probability, name="point_mass_probability", attrs=attrs)
+        if pm.estimate is None:
+            if pm.count == 0:
+                others = [n for n in self.names if n != pm.name]
+                base = self.grid(size, limits={k: v for k, v in (limits or {}).items()}
+                                 if isinstance(limits, dict) else None)
+                zero = base.isel({pm.name: 0}, drop=True) * 0.0
+                zero.attrs = {**attrs, "units": density_units([u for n, u in zip(self.names, self.units)
+                                                               if n != pm.name])}
+                return zero.transpose(*others).rename("density")
+            raise InputError(f"point_mass_grid: the density on the point mass of {pm.name} could not be "
+                             f"fitted from its {pm.count} sample(s): {pm.problem}")
+        g = pm.estimate.grid(size, limits) * pm.probability
+        g.attrs = {**pm.estimate._grid_attrs(), **attrs}
+        g.attrs["long_name"] = (f"density of {', '.join(pm.estimate.names)} on the point mass of {pm.name} "
+                                f"({pm.name} <= {pm.threshold}); integrates to the point-mass probability")
+        return g.rename("density")
 
     # -- basic facts -----------------------------------------------------
     @property
@@ -289,15 +495,19 @@ class DensityEstimate:
         return pts
 
     def _evaluate(self, pts: np.ndarray, log: bool = False) -> np.ndarray:
-        values, choice = _engines.evaluate_points(pts, self.data, self.weights, self.bandwidth.matrix,
-                                                  self.kernel, self.engine, log=log)
-        self.attrs.update(choice.as_attrs())
+        values, choice = self._model.density(pts, log=log)
+        if choice is not None:
+            self.attrs.update(choice.as_attrs())
+        share = self._continuous_share
+        if share != 1.0:
+            values = values + math.log(share) if log else values * share
         return self._outside_support(pts, values, -np.inf if log else 0.0)
 
     def _evaluate_grid(self, axes) -> np.ndarray:
-        values, choice = _engines.evaluate_grid(axes, self.data, self.weights, self.bandwidth.matrix,
-                                                self.kernel, self.engine)
-        self.attrs.update(choice.as_attrs())
+        values, choice = self._model.grid(axes)
+        if choice is not None:
+            self.attrs.update(choice.as_attrs())
+        values = np.asarray(values) * self._continuous_share
         mesh = np.meshgrid(*axes, indexing="ij")
         pts = np.column_stack([g.ravel() for g in mesh])
         return self._outside_support(pts, values.ravel(), 0.0).reshape(values.shape)
@@ -324,7 +534,19 @@ class DensityEstimate:
 
     # -- grids -------------------------------------------------------------
     def default_limits(self) -> list[tuple[float, float]]:
-        """Data range widened by the kernel's reach (4 sd for the Gaussian), cut at the bounds."""
+        """Data range widened by the kernel's reach (4 sd for the Gaussian), cut at the bounds.
+
+        With ``boundary="transform"`` the widening is done in the transformed
+        space (where H lives) and mapped back; with a mask, the mask's grid.
+        """
+        if self._mask is not None:
+            return [(float(ax[0]), float(ax[-1])) for ax in self._mask[1]]
+        if self.boundary == "transform":
+            y = self._model.data
+            reach = 4.0 * np.sqrt(np.diag(self.H))
+            lo = _boundary.inverse_transform((y.min(axis=0) - reach)[None, :], self.bounds)[0]
+            hi = _boundary.inverse_transform((y.max(axis=0) + reach)[None, :], self.bounds)[0]
+            return [(float(min(a, b)), float(max(a, b))) for a, b in zip(lo, hi)]
         H = self.H
         if self.kernel.is_compact:
             # extent of the kernel's support along each axis
@@ -343,6 +565,10 @@ class DensityEstimate:
         return out
 
     def _grid_spec(self, size, limits):
+        if size is None:
+            if self._mask is not None and limits is None:
+                return [ax.copy() for ax in self._mask[1]]
+            size = 64
         if np.isscalar(size):
             size = [int(size)] * self.d
         size = [int(s) for s in size]
@@ -366,13 +592,14 @@ class DensityEstimate:
         axes = [np.linspace(lo, hi, s) for (lo, hi), s in zip(limits, size)]
         return axes
 
-    def grid(self, size=64, limits=None, *, clip_negative=False) -> xr.DataArray:
-        """Density on a regular grid.
+    def grid(self, size=None, limits=None, *, clip_negative=False) -> xr.DataArray:
+        """Density on a regular grid (of the continuous part when there is a point mass).
 
         Parameters
         ----------
         size : int or sequence of int
-            Nodes per variable.
+            Nodes per variable (default 64; with a mask and no limits, the
+            mask's own grid).
         limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
             Grid range per variable; defaults to the data range widened by
             the kernel's reach and cut at the bounds.
@@ -389,7 +616,7 @@ class DensityEstimate:
         axes = self._grid_spec(size, limits)
         values = self._evaluate_grid(axes)
         attrs = self._grid_attrs()
-        if self.kernel.kernel.order > 2:
+        if self.kernel.kernel.order > 2 or self.boundary == "linear":
             cell = np.prod([a[1] - a[0] for a in axes])
             neg = float(-values[values < 0].sum() * cell)
             attrs["negative_mass"] = neg
@@ -410,29 +637,57 @@ class DensityEstimate:
             "bandwidth_matrix": self.H.ravel().tolist(),
             "bandwidth_matrix_note": "row-major d x d bandwidth matrix H (covariance of the scaled kernel)",
             "boundary": self.boundary,
+            "support_bounds": [float(v) for pair in self.bounds for v in pair],
+            "support_bounds_note": "lo, hi per variable (inf for an open side)",
             "n_samples": self.n,
             "caution": CAUTION,
         }
         attrs.update(self.bandwidth.as_attrs())
         attrs.update({k: v for k, v in self.attrs.items() if isinstance(v, (str, int, float))})
+        if self._point is not None:
+            pm = self._point
+            attrs.update(pm.as_attrs())
+            attrs["part"] = "continuous"
+            attrs["long_name"] = (f"joint probability density of {', '.join(self.names)} on the continuous "
+                                  f"part ({pm.name} > {pm.threshold}); integrates to 1 - point_mass_probability")
         return attrs
 
     def negative_mass(self, size=128, limits=None) -> float:
-        """Integral of the negative part (non-zero only for fourth-order kernels)."""
-        if self.kernel.kernel.order == 2:
+        """Integral of the negative part (non-zero only for fourth-order kernels and the
+        linear boundary kernel)."""
+        if self.kernel.kernel.order == 2 and self.boundary != "linear":
             return 0.0
         return float(self.grid(size, limits).attrs["negative_mass"])
 
     # -- sampling --------------------------------------------------------
     def sample(self, n: int, seed=None) -> np.ndarray:
-        """Draw ``n`` points from the estimate (the smoothed bootstrap), shape (n, d)."""
+        """Draw ``n`` points from the estimate, shape (n, d).
+
+        The draws respect the bounds: how depends on the boundary method
+        (``attrs["boundary_sampling"]``: folding for reflection, truncated kernels
+        for renormalisation, the transformed-space bootstrap for transformation,
+        rejection for the others).  With a point mass, a Binomial(n, p) share of
+        the draws sit on the bound of that variable, the other variables drawn
+        from their density on the point mass.
+        """
         n = int(n)
         if n < 0:
             raise InputError(f"sample size must be non-negative, got {n}")
         rng = np.random.default_rng(seed)
-        idx = rng.choice(self.n, size=n, p=self.weights)
-        noise = self.bandwidth.matrix.colorize(self.kernel.sample(n, rng))
-        return self.data[idx] + noise
+        if self._point is None:
+            return self._model.sample(n, rng)
+        pm = self._point
+        k = int(rng.binomial(n, pm.probability))
+        out = np.empty((n, self.d))
+        out[k:] = self._model.sample(n - k, rng) if n - k else np.empty((0, self.d))
+        if k:
+            out[:k, pm.index] = pm.bound
+            if self.d > 1:
+                if pm.estimate is None:
+                    raise InputError(f"cannot sample the point mass of {pm.name}: {pm.problem}")
+                others = [j for j in range(self.d) if j != pm.index]
+                out[:k, others] = pm.estimate.sample(k, rng)
+        return out[rng.permutation(n)]
 
     # -- products (mvkde.products) -----------------------------------------
     def marginal(self, names) -> "DensityEstimate":
@@ -480,4 +735,3 @@ class DensityEstimate:
         """Percentile bootstrap band (lower, upper) for the density or exceedance."""
         return _products.bootstrap_bands(self, points, kind=kind, level=level,
                                          replicates=replicates, seed=seed)
-

@@ -1,8 +1,4 @@
-"""Bounded supports: per-variable bounds and boundary correction.
-
-This module holds the bounds of the support (the box made by per-variable
-lower and upper bounds) and the boundary-correction methods.
-"""
+"""The support: per-variable bounds (a box) and the data's place in it."""
 
 from __future__ import annotations
 
@@ -10,10 +6,7 @@ import math
 
 import numpy as np
 
-from .errors import InputError, check_choice
-
-BOUNDARY_METHODS = ("none",)
-
+from ..errors import InputError
 
 def parse_bounds(bounds, d: int, names) -> list[tuple[float, float]]:
     """Normalise ``bounds`` to a list of (lo, hi) floats, -inf/inf for an open side.
@@ -47,24 +40,29 @@ def parse_bounds(bounds, d: int, names) -> list[tuple[float, float]]:
 
 
 def check_inside(data: np.ndarray, bounds, names) -> None:
-    """Refuse data outside declared bounds, naming the variable and the worst value."""
+    """Refuse data outside declared bounds, naming the variable, the count and the worst value
+    (the one farthest from its bound)."""
     for j, (lo, hi) in enumerate(bounds):
         col = data[:, j]
         below = col < lo
         above = col > hi
         count = int(below.sum() + above.sum())
         if count:
-            worst = col[below].min() if below.any() else col[above].max()
+            gap = np.where(below, lo - col, np.where(above, col - hi, -np.inf))
+            worst = col[int(np.argmax(gap))]
             raise InputError(
                 f"{count} value(s) of {names[j]} lie outside its bounds [{lo}, {hi}] "
-                f"(worst {worst:.6g}): fix the bounds or the data"
+                f"(worst {worst:.6g}): fix the bounds or the data, or pass outside='drop' "
+                "to drop them (the count dropped is recorded)"
             )
 
 
-def validate_method(method, bounds) -> str:
-    if method is None:
-        return "none"
-    return check_choice("boundary", method, BOUNDARY_METHODS)
+def outside_rows(data: np.ndarray, bounds) -> np.ndarray:
+    """Boolean (n,): rows with a value outside its variable's bounds."""
+    out = np.zeros(data.shape[0], dtype=bool)
+    for j, (lo, hi) in enumerate(bounds):
+        out |= (data[:, j] < lo) | (data[:, j] > hi)
+    return out
 
 
 def has_bounds(bounds) -> bool:
