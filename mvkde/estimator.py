@@ -690,6 +690,15 @@ class DensityEstimate:
         return out[rng.permutation(n)]
 
     # -- products (mvkde.products) -----------------------------------------
+    def fit_options(self, idx) -> dict:
+        """Keyword arguments of :func:`fit` that rebuild this estimate's support for the
+        variables ``idx`` (used for marginals and bootstrap refits)."""
+        bounds = [self.bounds[j] for j in idx]
+        boundary = self.boundary if self.boundary not in ("mask",) else None
+        if boundary not in (None, "none") and not _boundary.has_bounds(bounds):
+            boundary = None
+        return {"bounds": bounds, "boundary": boundary}
+
     def marginal(self, names) -> "DensityEstimate":
         """Marginal estimate of ``names`` (exact: Gaussian kernel, or product kernel with the
         kept variables leading); otherwise see :meth:`marginal_grid`."""

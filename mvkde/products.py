@@ -92,11 +92,10 @@ def marginal(est, names):
             f"{est.kernel.form} {est.kernel.name} kernel with this H: use marginal_grid(...) "
             "(numerical, always available), or put these variables first when fitting"
         )
-    kw = {}
-    if hasattr(est, "fit_options"):
-        kw = est.fit_options(idx)
-    else:
-        kw = {"bounds": [est.bounds[j] for j in idx], "boundary": est.boundary}
+    if est.point_mass_probability:
+        raise InputError("the marginal of an estimate with a point mass is not a single estimate: "
+                         "use marginal_grid(...) for the continuous part and point_mass_grid(...) for the rest")
+    kw = est.fit_options(idx)
     return fit(est.data[:, idx], kernel=est.kernel.name, form=est.kernel.form,
                bandwidth=est.H[np.ix_(idx, idx)], weights=est.weights, engine=est.engine,
                names=[est.names[j] for j in idx], units=[est.units[j] for j in idx], **kw)
@@ -179,22 +178,47 @@ def _interp(axes, vals, pts, upper: bool):
     return out
 
 
+def _point_mass_part(est, pts, upper: bool, size) -> np.ndarray:
+    """Probability carried by the point mass: at the bound of one variable, with the
+    other variables following their density on the point-mass part."""
+    p = est.point_mass_probability
+    extra = np.zeros(pts.shape[0])
+    if not p:
+        return extra
+    pm = est._point
+    j = pm.index
+    # X_j = bound exceeds x_j only below the bound; it is <= x_j from the bound on
+    active = pts[:, j] < pm.bound if upper else pts[:, j] >= pm.bound
+    if not active.any():
+        return extra
+    if est.d == 1:
+        extra[active] = p
+        return extra
+    if pm.estimate is None:
+        raise InputError(f"the density on the point mass of {pm.name} is not available: {pm.problem}")
+    others = [k for k in range(est.d) if k != j]
+    sub = pts[active][:, others]
+    part = exceedance(pm.estimate, sub, size=size) if upper else cdf(pm.estimate, sub, size=size)
+    extra[active] = p * part
+    return extra
+
+
 def cdf(est, points, *, size=None, limits=None) -> np.ndarray:
-    """P(X_1 <= x_1, ..., X_d <= x_d) at each point."""
+    """P(X_1 <= x_1, ..., X_d <= x_d) at each point (point masses included)."""
     pts = est._points(points)
     if _exact_cdf_available(est):
         return _exact_cdf(est, pts, upper=False)
     axes, vals, _ = _grid_cumulative(est, size, limits, upper=False)
-    return _interp(axes, vals, pts, upper=False)
+    return _interp(axes, vals, pts, upper=False) + _point_mass_part(est, pts, False, size)
 
 
 def exceedance(est, points, *, size=None, limits=None) -> np.ndarray:
-    """P(X_1 > x_1, ..., X_d > x_d) at each point (joint exceedance)."""
+    """P(X_1 > x_1, ..., X_d > x_d) at each point (joint exceedance, point masses included)."""
     pts = est._points(points)
     if _exact_cdf_available(est):
         return _exact_cdf(est, pts, upper=True)
     axes, vals, _ = _grid_cumulative(est, size, limits, upper=True)
-    return _interp(axes, vals, pts, upper=True)
+    return _interp(axes, vals, pts, upper=True) + _point_mass_part(est, pts, True, size)
 
 
 def probability_grid(est, kind="exceedance", size=None, limits=None) -> xr.DataArray:
@@ -371,8 +395,7 @@ def bootstrap(est, statistic, replicates=200, seed=None):
         raise InputError(f"replicates must be at least 2, got {replicates}")
     rng = np.random.default_rng(seed)
     out = []
-    kw = est.fit_options(list(range(est.d))) if hasattr(est, "fit_options") else \
-        {"bounds": est.bounds, "boundary": est.boundary}
+    kw = est.fit_options(list(range(est.d)))
     for _ in range(replicates):
         idx = rng.choice(est.n, size=est.n, replace=True, p=est.weights)
         b = fit(est.data[idx], kernel=est.kernel.name, form=est.kernel.form, bandwidth=est.H,

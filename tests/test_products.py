@@ -169,3 +169,21 @@ def test_probability_grid_and_bad_arguments(rng):
         est.hdr_levels([1.2])
     with pytest.raises(mvkde.InputError, match="between 0 and 1"):
         est.quantiles("x0", [0.0])
+
+
+def test_cdf_and_exceedance_include_the_point_mass(rng):
+    # Zero-inflated precipitation (dry probability 0.4) with temperature independent of it:
+    # P(pr <= 0.5, T <= big) is the dry probability, P(pr > -1, T > t) is P(T > t) (closed form
+    # of the simulation law: T ~ N(15, 4^2)).
+    n = 3000
+    dry = rng.random(n) < 0.4
+    pr = np.where(dry, 0.0, 1.0 + rng.gamma(0.8, 5.0, n))
+    t = rng.normal(15, 4, n)
+    est = mvkde.fit(np.column_stack([pr, t]), bounds=[(0, None), (None, None)], point_masses=[1.0, None])
+    p = est.point_mass_probability
+    assert p == pytest.approx(dry.mean(), abs=1e-12)
+    assert est.cdf([[0.5, 60.0]])[0] == pytest.approx(p, abs=2e-3)
+    assert est.exceedance([[-1.0, 15.0]])[0] == pytest.approx(0.5, abs=0.03)
+    wet_hot = ((pr > 5) & (t > 18)).mean()
+    assert est.exceedance([[5.0, 18.0]])[0] == pytest.approx(wet_hot, abs=0.02)
+    assert est.cdf([[1e4, 1e3]])[0] == pytest.approx(1.0, abs=5e-3)
