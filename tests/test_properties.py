@@ -150,9 +150,12 @@ def test_integer_weights_equal_repeated_rows(p):
     weighted = mvkde.fit(X, kernel=p["kernel"], form=p["form"], bandwidth=p["H"], weights=k, engine="exact")
     repeated = mvkde.fit(np.repeat(X, k, axis=0), kernel=p["kernel"], form=p["form"], bandwidth=p["H"],
                          engine="exact")
-    x = np.vstack([points_near(p), X[:3]])
+    # away from the data points: at them the engine's own rounding is ~1e-8 for one kernel
+    # (see test_exact_engine_at_data_points_spherical_triangular)
+    x = points_near(p)
     np.testing.assert_allclose(weighted.pdf(x), repeated.pdf(x), rtol=1e-10,
                                atol=1e-14 * repeated.pdf(x).max())
+    np.testing.assert_allclose(weighted.pdf(X[:3]), repeated.pdf(X[:3]), rtol=1e-6)
     np.testing.assert_allclose(weighted.logpdf(x[:5]), repeated.logpdf(x[:5]), rtol=1e-9, atol=1e-9)
 
 
@@ -168,3 +171,20 @@ def test_every_engine_non_negative_and_matches_exact_on_a_grid(engine, p):
     assert np.all(g >= 0)
     # engines other than exact approximate: held to 1 % of the peak (the binned-engine target)
     assert np.max(np.abs(g - r)) <= 1e-2 * r.max()
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "library (engines/exact.py, not owned here): squared whitened distances are formed as "
+    "|p|^2 + |x|^2 - 2 p.x, so at zero distance they carry an absolute error of about eps * |p|^2; "
+    "the spherical triangular kernel depends on |z| = sqrt(r^2) with a kink at 0, so the density AT a "
+    "data point is off by ~sqrt(eps) * |p| (relative ~1e-8 here instead of 1e-15). Leave-one-out "
+    "criteria evaluate exactly there. Fix: form p - x directly near zero, or centre per chunk."))
+def test_exact_engine_at_data_points_spherical_triangular():
+    from reference import radial_unit, reference_density
+
+    rng = np.random.default_rng(0)
+    X = 40.0 + rng.standard_normal((30, 2))        # data far from the origin, as temperatures are
+    H = np.array([[0.3, 0.05], [0.05, 0.2]])
+    est = mvkde.fit(X, kernel="triangular", form="spherical", bandwidth=H, engine="exact")
+    truth = reference_density(X, X, H, kernel_fn=radial_unit("triangular", 2))
+    np.testing.assert_allclose(est.pdf(X), truth, rtol=1e-10)
