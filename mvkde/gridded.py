@@ -370,7 +370,9 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
             raise InputError(f"column {v!r} of {files[0].name} is not numeric")
     if needs_time:
         try:
-            times = pd.to_datetime(table[tname])
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", UserWarning)  # format inference; failures raise below
+                times = pd.to_datetime(table[tname])
         except (ValueError, TypeError) as exc:
             raise InputError(f"input.time: column {tname!r} cannot be read as dates: {exc}") from None
         keep = np.ones(len(table), dtype=bool)

@@ -3,7 +3,7 @@
 Also: an unexpected internal error gives exit status 1, a short message and
 the path of a log holding the traceback.
 
-    python tests/test_reliability_corpus.py     # prints the message of every case (README table)
+    PYTHONPATH=. python tests/test_reliability_corpus.py   # the message of every case (README table)
 """
 
 import os
@@ -146,5 +146,5 @@ if __name__ == "__main__":  # the table of messages for tests/bad_inputs/README.
             buf = io.StringIO()
             with contextlib.redirect_stderr(buf), contextlib.redirect_stdout(io.StringIO()):
                 code, _ = run_case(case, Path(tmp))
-        msg = buf.getvalue().strip().replace(str(CORPUS) + "/", "").replace("|", "\\|")
+        msg = " / ".join(error_lines(buf.getvalue())).replace(str(CORPUS) + "/", "").replace("|", "\\|")
         print(f"| {case['name']} | {code} | {msg} |")
