@@ -1041,13 +1041,13 @@ def execute(plan: Plan, settings: CellSettings, scheduler: Scheduler, progress: 
 class BlockStore:
     """Finished blocks of a run kept in a Zarr store, for the opt-in resumable mode.
 
-    Layout: one Zarr array per result (chunks = the blocks, so a block is
-    written as whole chunks), ``mvkde-run.json`` with the fingerprint of the
-    run (resolved workflow without its compute and output settings, input
-    files' sizes and modification times, grid axes, blocks), and one marker
-    ``mvkde-blocks/B.json`` per finished block written after its data: a
-    block counts as done only when its marker exists, so a run killed while
-    saving a block recomputes it.  A store made by a different run is
+    Layout of the folder: ``results.zarr`` with one Zarr array per result
+    (chunks = the blocks, so a block is written as whole chunks),
+    ``run.json`` with the fingerprint of the run (resolved workflow without
+    its compute and output settings, input files' sizes and modification
+    times, grid axes, blocks), and one marker ``done/B.json`` per finished
+    block written after its data: a block counts as done only when its
+    marker exists, so a run killed while saving a block recomputes it.  A store made by a different run is
     replaced.  zarr is imported here only (the ``resume`` extra).
     """
 
@@ -1063,11 +1063,11 @@ class BlockStore:
 
         self.zarr = zarr
         self.path = Path(path)
-        self.markers = self.path / "mvkde-blocks"
+        self.markers = self.path / "done"
         self.chunks_over_cells = tuple(plan.tile)
         self.cell_shape = plan.cell_shape
         self.fingerprint = _fingerprint(plan, settings)
-        stamp = self.path / "mvkde-run.json"
+        stamp = self.path / "run.json"
         if self.path.exists():
             try:
                 same = json.loads(stamp.read_text()) == self.fingerprint
@@ -1081,7 +1081,7 @@ class BlockStore:
         if not self.path.exists():
             self.markers.mkdir(parents=True)
             _write_atomic(stamp, json.dumps(self.fingerprint))
-        self.root = zarr.open_group(str(self.path), mode="a")
+        self.root = zarr.open_group(str(self.path / "results.zarr"), mode="a")
 
     def done_blocks(self) -> set:
         return {int(f.stem) for f in self.markers.glob("*.json") if f.stem.isdigit()}
@@ -1146,7 +1146,7 @@ def resume_store_path(output) -> "Path":
     from pathlib import Path
 
     output = Path(output)
-    return output.with_name(output.name + ".resume.zarr")
+    return output.with_name(output.name + ".resume")
 
 
 def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Dataset:

@@ -384,7 +384,7 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "title": Key(None, _opt_str, "global title attribute"),
         "overwrite": Key(False, _bool, "replace an existing output (also --overwrite)"),
         "resume": Key(False, _bool, "keep finished blocks in a Zarr store next to the output "
-                                    "(OUTPUT.resume.zarr) and skip them when the run is restarted; needs "
+                                    "(folder OUTPUT.resume) and skip them when the run is restarted; needs "
                                     "the resume extra (zarr)"),
     },
 }

@@ -91,6 +91,7 @@ class Running:
         if self.proc.poll() is None:
             os.kill(self.proc.pid, signal.SIGKILL)
         self.proc.wait(timeout=TIMEOUT)
+        self.proc.stderr.close()
 
 
 def cli(args, cwd, **extra_env) -> Running:
@@ -186,12 +187,12 @@ def test_sigkill_while_computing_and_after_writing_leaves_no_output(archive, cle
 def test_resume_skips_finished_blocks_and_matches_a_clean_run(archive, clean_run, tmp_path, capsys):
     out = tmp_path / "resumed.nc"
     wf = write_workflow(tmp_path, archive, out, extra_output="resume = true")
-    store = out.with_name(out.name + ".resume.zarr")
+    store = out.with_name(out.name + ".resume")
     run = cli(["run", str(wf)], tmp_path, MVKDE_TEST_DELAY=0.15)
     run.wait_for(r"blocks done \((3|4|5|6)\d %\)")
     run.kill()
     assert not out.exists()
-    done = len(list((store / "mvkde-blocks").glob("*.json")))
+    done = len(list((store / "done").glob("*.json")))
     assert 0 < done < 30, done
     assert main(["run", str(wf)]) == 0
     said = capsys.readouterr().out
@@ -218,8 +219,8 @@ def test_resume_store_of_another_run_is_replaced(archive, clean_run, tmp_path, c
 
     monkeypatch.setattr(gridded, "process_block", failing)
     assert main(["run", str(wf), "--set", "compute.scheduler=synchronous", "--set", "grid.size=20"]) == 130
-    store = out.with_name(out.name + ".resume.zarr")
-    assert len(list((store / "mvkde-blocks").glob("*.json"))) == 7
+    store = out.with_name(out.name + ".resume")
+    assert len(list((store / "done").glob("*.json"))) == 7
     monkeypatch.setattr(gridded, "process_block", inner)
     capsys.readouterr()
     assert main(["run", str(wf)]) == 0  # grid.size 24: a different run
@@ -243,11 +244,11 @@ def cluster(tmp_path):
     """`dask scheduler` + two `dask worker` processes (no nanny: killing one really loses it)."""
     port = free_port()
     address = f"tcp://127.0.0.1:{port}"
-    procs = {}
+    procs, logs = {}, []
 
     def start(name, args):
-        log = open(tmp_path / f"{name}.log", "w")
-        procs[name] = subprocess.Popen([str(DASK), *args], cwd=tmp_path, env=env(), stdout=log,
+        logs.append(open(tmp_path / f"{name}.log", "w"))
+        procs[name] = subprocess.Popen([str(DASK), *args], cwd=tmp_path, env=env(), stdout=logs[-1],
                                        stderr=subprocess.STDOUT)
 
     try:
@@ -276,6 +277,8 @@ def cluster(tmp_path):
                 p.kill()
             if p is not None:
                 p.wait(timeout=TIMEOUT)
+        for log in logs:
+            log.close()
 
 
 def test_worker_killed_mid_run_does_not_fail_the_run(archive, clean_run, cluster, tmp_path):
@@ -287,7 +290,9 @@ def test_worker_killed_mid_run_does_not_fail_the_run(archive, clean_run, cluster
     procs["worker-a"].kill()  # SIGKILL: its running and finished-but-unfetched tasks are lost
     procs["worker-a"].wait(timeout=TIMEOUT)
     run.proc.wait(timeout=TIMEOUT)
+    time.sleep(0.5)  # let the reader thread take the last lines
     err = "".join(run.seen) + "".join(iter_queue(run.lines))
+    run.proc.stderr.close()
     assert run.proc.returncode == 0, err
     assert "30/30 blocks done" in err
     log = (tmp_path / "scheduler.log").read_text()
