@@ -367,7 +367,8 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
     table = _io.read_table(files, kind, wanted)
     for v in names:
         if not pd.api.types.is_numeric_dtype(table[v]):
-            raise InputError(f"column {v!r} of {files[0].name} is not numeric")
+            raise InputError(f"input.variables: column {v!r} of {files[0].name} is not numeric: list numeric "
+                             "columns only, or clean the column")
     if needs_time:
         try:
             with warnings.catch_warnings():

@@ -212,7 +212,7 @@ def check_output_path(path, *, overwrite: bool = False) -> Path:
     try:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise InputError(f"cannot create output folder {folder}: {exc.strerror}") from None
+        raise InputError(f"cannot create output folder {folder}: {exc.strerror}: choose another output.path") from None
     if not os.access(folder, os.W_OK):
         raise InputError(f"output folder {folder} is not writable: choose another output.path")
     return path
