@@ -25,6 +25,7 @@ import logging
 import math
 import sys
 import time
+import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 
@@ -108,17 +109,27 @@ class Plan:
 
 
 AUTO_BLOCK_MAX = 64
+#: "auto" blocks hold at most this many bytes of samples (as float64): the input
+#: of a task stays bounded however long the record of each cell is
+AUTO_BLOCK_BYTES = 128 * 2**20
 
 
-def block_cells(wf: Workflow, n_cells: int) -> int:
-    """Cells per block: ``compute.block_size``, or for "auto" about four blocks per worker."""
+def block_cells(wf: Workflow, n_cells: int, cell_bytes: int = 0) -> int:
+    """Cells per block: ``compute.block_size``, or for "auto" about four blocks per worker.
+
+    ``cell_bytes`` (the float64 samples of one cell) caps "auto" blocks at
+    :data:`AUTO_BLOCK_BYTES`, so long records give smaller blocks.
+    """
     import os
 
     size = wf["compute"]["block_size"]
     if size != "auto":
         return int(size)
     workers = wf["compute"]["workers"] or os.cpu_count() or 1
-    return max(1, min(AUTO_BLOCK_MAX, math.ceil(n_cells / (4 * workers))))
+    cells = max(1, min(AUTO_BLOCK_MAX, math.ceil(n_cells / (4 * workers))))
+    if cell_bytes > 0:
+        cells = max(1, min(cells, AUTO_BLOCK_BYTES // cell_bytes))
+    return cells
 
 
 def _tile_shape(shape, block_size) -> tuple:
@@ -143,7 +154,49 @@ def prepare(wf: Workflow) -> Plan:
     else:
         plan = _prepare_table(wf, files, kind)
     _check_estimator(wf, plan)
+    _check_memory(plan)
     return plan
+
+
+def available_memory() -> int:
+    """Bytes of memory available to this process (MemAvailable, else physical memory)."""
+    import os
+
+    try:
+        with open("/proc/meminfo") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    try:
+        return int(os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE"))
+    except (ValueError, OSError, AttributeError):
+        return 0
+
+
+def _check_memory(plan: Plan) -> None:
+    """Refuse, before any work, a run whose grids cannot fit in this machine's memory.
+
+    The run holds the output of every cell for writing (float64), and each
+    task holds its block's samples and grids.
+    """
+    avail = available_memory()
+    if avail <= 0:
+        return
+    wf = plan.workflow
+    sizes = estimate_sizes(plan)
+    held = sizes["output_bytes"] * (8 // (4 if wf["output"]["dtype"] == "float32" else 8))
+    workers = 1 if str(wf["compute"]["scheduler"]).startswith(("tcp", "tls", "ucx", "inproc")) else (
+        wf["compute"]["workers"] or __import__("os").cpu_count() or 1)
+    need = held + sizes["task_bytes"] * workers
+    if need > avail:
+        nodes = int(np.prod(wf.grid_size()))
+        raise ConfigError(
+            f"{wf.source}: grid.size = {wf['grid']['size']} gives {nodes:,} nodes per density: the run needs "
+            f"about {_human(need)} ({plan.n_cells * plan.n_splits:,} output grids plus {_human(sizes['task_bytes'])} "
+            f"per task) but {_human(avail)} of memory is available: use fewer grid nodes, fewer cells "
+            "(input.box) or a smaller compute.block_size")
 
 
 def _months_of(times) -> np.ndarray:
@@ -183,12 +236,21 @@ def _prepare_gridded(wf: Workflow, files) -> Plan:
     if inp["group_by"] is not None:
         raise ConfigError(f"{src}: input.group_by applies to tables (.csv, .parquet); for gridded inputs "
                           "every dimension not in input.sample_dims is a cell dimension")
-    ds = _io.open_gridded(files)
+    # one file: opened without dask, so the selection below stays lazy indexing and each
+    # block's dask chunk becomes one hyperslab read (a file chunked along time is never
+    # rechunked in memory); several files: dask chunks of whole cell columns per file
+    ds = _io.open_gridded(files, chunks=None if len(files) == 1 else _file_chunks(wf, files))
     missing = [v for v in names if v not in ds.data_vars]
     if missing:
         raise InputError(f"input.variables: {', '.join(missing)} not in {files[0].name}"
                          f"{' and the other files' if len(files) > 1 else ''}; data variables there: "
                          f"{', '.join(map(str, ds.data_vars))}")
+    for v in names:
+        if ds[v].dtype.kind not in "fiu":
+            raise InputError(f"input.variables: {v} in {files[0].name} holds {ds[v].dtype} values, not "
+                             "numbers: choose a numeric variable")
+    if len(files) > 1:
+        _io.check_units_agree(files, names)
     dims = ds[names[0]].dims
     for v in names[1:]:
         if set(ds[v].dims) != set(dims):
@@ -239,12 +301,17 @@ def _prepare_gridded(wf: Workflow, files) -> Plan:
                              f"along {dname!r}: widen it")
 
     cell_shape = tuple(ds.sizes[d] for d in cell_dims)
-    tile = _tile_shape(cell_shape, block_cells(wf, int(np.prod(cell_shape))))
+    n_per_cell = int(np.prod([ds.sizes[d] for d in sample_dims]))
+    tile = _tile_shape(cell_shape, block_cells(wf, int(np.prod(cell_shape)), n_per_cell * len(names) * 8))
     # chunk so that one block reads exactly its own hyperslab, all samples at once
     chunks = {d: t for d, t in zip(cell_dims, tile)}
     chunks.update({d: -1 for d in sample_dims})
+    with warnings.catch_warnings():
+        # blocks of whole cell columns cut across a file chunked along time: intended
+        warnings.filterwarnings("ignore", message=".*separate the stored chunks.*")
+        ds = ds.chunk(chunks)
     arr = ds.to_dataarray("variable").transpose(*cell_dims, *sample_dims, "variable")
-    arr = arr.chunk({**chunks, "variable": -1})
+    arr = arr.chunk({"variable": -1})
 
     if tname in sample_dims:
         months = _months_of(ds[tname].values)
@@ -266,6 +333,22 @@ def _prepare_gridded(wf: Workflow, files) -> Plan:
                 inp["split_by"], labels, tile, list(names), units, attrs, counts)
 
 
+def _file_chunks(wf: Workflow, files) -> dict:
+    """Dask chunks for opening several files: whole sample columns, cells tiled as for the run."""
+    first = _io.open_gridded(files[:1], chunks=None)
+    names = [v for v in wf.variables if v in first.data_vars]
+    if not names:
+        return {}
+    dims = first[names[0]].dims
+    sample_dims = [d for d in wf["input"]["sample_dims"] if d in dims]
+    cell_dims = [d for d in dims if d not in sample_dims]
+    shape = tuple(first.sizes[d] for d in cell_dims)
+    n = int(np.prod([first.sizes[d] for d in sample_dims])) * len(files)
+    tile = _tile_shape(shape, block_cells(wf, int(np.prod(shape)), n * len(names) * 8))
+    first.close()
+    return {**{d: t for d, t in zip(cell_dims, tile)}, **{d: -1 for d in sample_dims}}
+
+
 def _prepare_table(wf: Workflow, files, kind) -> Plan:
     inp, src = wf["input"], wf.source
     names = wf.variables
@@ -284,10 +367,13 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
     table = _io.read_table(files, kind, wanted)
     for v in names:
         if not pd.api.types.is_numeric_dtype(table[v]):
-            raise InputError(f"column {v!r} of {files[0].name} is not numeric")
+            raise InputError(f"input.variables: column {v!r} of {files[0].name} is not numeric: list numeric "
+                             "columns only, or clean the column")
     if needs_time:
         try:
-            times = pd.to_datetime(table[tname])
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", UserWarning)  # format inference; failures raise below
+                times = pd.to_datetime(table[tname])
         except (ValueError, TypeError) as exc:
             raise InputError(f"input.time: column {tname!r} cannot be read as dates: {exc}") from None
         keep = np.ones(len(table), dtype=bool)
@@ -429,7 +515,7 @@ def _check_estimator(wf: Workflow, plan: Plan) -> None:
     settings = settings_for(plan, None)
     for option in ("kernel", "form", "bandwidth", "parametrization", "engine"):
         value = wf["estimator"][option]
-        if value not in lib[option]:
+        if isinstance(value, str) and value not in lib[option]:
             raise ConfigError(f"{src}: estimator.{option} = {value!r} is not available in this installation "
                               f"of mvkde (available: {', '.join(lib[option])})")
     if settings.bounds is not None and settings.boundary not in lib["boundary"]:
@@ -489,29 +575,54 @@ def resolve_axes(plan: Plan, compute=None) -> list[np.ndarray]:
     sizes = wf.grid_size()
     limits = dict(wf["grid"]["limits"])
     todo = [v for v in plan.names if v not in limits and wf.variable(v)["period"] is None]
+    bounded = [v for v in plan.names if wf.variable(v)["bounds"] is not None]
     for v in plan.names:
         if wf.variable(v)["period"] is not None and v not in limits:
             limits[v] = [0.0, wf.variable(v)["period"]]
-    if todo:
+    if todo or bounded:
         import dask
+        import dask.array as da
 
-        stats = []
-        for v in todo:
+        # one pass over the data: the range of every variable that needs one (for the
+        # default limits, and to refuse data outside declared bounds before any fit)
+        stats, keys = [], []
+        for v in plan.names:
+            if v not in todo and v not in bounded:
+                continue
             x = plan.values.sel(variable=v).data
-            t = wf.variable(v)["point_mass"]
-            if t is not None:
-                import dask.array as da
-
-                x = da.where(x > t, x, np.nan)
             stats += [_nanmin(x), _nanmax(x)]
-        computed = (compute or dask.compute)(*stats)
-        for k, v in enumerate(todo):
-            lo, hi = float(computed[2 * k]), float(computed[2 * k + 1])
+            keys += [(v, "min"), (v, "max")]
+            t = wf.variable(v)["point_mass"]
+            if v in todo and t is not None:
+                above = da.where(x > t, x, np.nan)
+                stats += [_nanmin(above), _nanmax(above)]
+                keys += [(v, "min_above"), (v, "max_above")]
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN slices: reported below
+            computed = dict(zip(keys, (compute or dask.compute)(*stats)))
+        for v in bounded:
+            lo_b, hi_b = wf.variable(v)["bounds"]
+            lo, hi = float(computed[(v, "min")]), float(computed[(v, "max")])
+            if math.isfinite(lo) and lo < lo_b:
+                raise InputError(f"variable {v} has values down to {lo:.6g} in {_where_files(plan)}, below "
+                                 f"variables.{v}.bounds = {_show_pair(lo_b, hi_b)}: fix the bounds or the data")
+            if math.isfinite(hi) and hi > hi_b:
+                raise InputError(f"variable {v} has values up to {hi:.6g} in {_where_files(plan)}, above "
+                                 f"variables.{v}.bounds = {_show_pair(lo_b, hi_b)}: fix the bounds or the data")
+        for v in todo:
+            t = wf.variable(v)["point_mass"]
+            part = "_above" if t is not None else ""
+            lo, hi = float(computed[(v, "min" + part)]), float(computed[(v, "max" + part)])
             if not (math.isfinite(lo) and math.isfinite(hi)):
-                raise InputError(f"variable {v} has no valid values in the selection: check the input "
-                                 "and the selection")
+                if not math.isfinite(float(computed[(v, "min")])):
+                    raise InputError(f"variable {v} has no valid (finite) values in the selection of "
+                                     f"{_where_files(plan)}: check the input and input.time_range / months / "
+                                     "seasons / box")
+                raise InputError(f"variable {v} has no values above its point mass "
+                                 f"variables.{v}.point_mass = {t:g}: set grid.limits.{v}")
             if hi <= lo:
-                raise InputError(f"variable {v} is constant ({lo}) in the selection: set grid.limits.{v}")
+                raise InputError(f"variable {v} is constant ({lo:g}) in the selection of {_where_files(plan)}: "
+                                 f"a density needs spread; set grid.limits.{v} or drop the variable")
             pad = 0.2 * (hi - lo)
             lo, hi = lo - pad, hi + pad
             table = wf.variable(v)
@@ -521,6 +632,14 @@ def resolve_axes(plan: Plan, compute=None) -> list[np.ndarray]:
                 lo = max(lo, table["point_mass"])
             limits[v] = [lo, hi]
     return [np.linspace(limits[v][0], limits[v][1], s) for v, s in zip(plan.names, sizes)]
+
+
+def _where_files(plan: Plan) -> str:
+    return plan.files[0].name + (f" and {len(plan.files) - 1} more file(s)" if len(plan.files) > 1 else "")
+
+
+def _show_pair(lo, hi) -> str:
+    return f"[{lo:g}, {hi:g}]"
 
 
 def _nanmin(x):
@@ -573,7 +692,8 @@ def fit_and_evaluate(samples: list[np.ndarray], settings: CellSettings) -> list:
     from . import bandwidth as _bandwidth
     from . import engines as _engines
 
-    plain = settings.bounds is None and settings.point_masses is None and settings.periods is None
+    plain = (settings.bounds is None and settings.point_masses is None and settings.periods is None
+             and isinstance(settings.bandwidth, str))
     if plain and samples and hasattr(_bandwidth, "select_many") and hasattr(_engines, "evaluate_grid_many"):
         try:
             return _batched(samples, settings, _bandwidth, _engines)
@@ -837,8 +957,8 @@ class Scheduler:
 # the whole run
 # ---------------------------------------------------------------------------
 
-def block_tasks(plan: Plan, settings: CellSettings) -> list:
-    """One delayed :func:`process_block` per block of cells."""
+def block_tasks(plan: Plan, settings: CellSettings, skip=()) -> list:
+    """One delayed :func:`process_block` per block of cells (except the blocks in ``skip``)."""
     import uuid
 
     import dask
@@ -849,6 +969,8 @@ def block_tasks(plan: Plan, settings: CellSettings) -> list:
     data = plan.values.data
     nd = len(plan.cell_dims)
     for b, tile in enumerate(plan.tiles()):
+        if b in skip:
+            continue
         block = data[tile] if tile else data
         codes = plan.codes
         if nd:
@@ -867,15 +989,20 @@ def _first_cell(tile, shape) -> int:
     return int(np.ravel_multi_index(tuple(t.start for t in tile), shape))
 
 
-def execute(plan: Plan, settings: CellSettings, scheduler: Scheduler, progress: Progress | None = None) -> dict:
-    """Run every block and gather the results into arrays over (*cells, split, ...)."""
+def execute(plan: Plan, settings: CellSettings, scheduler: Scheduler, progress: Progress | None = None,
+            store: "BlockStore | None" = None) -> dict:
+    """Run every block and gather the results into arrays over (*cells, split, ...).
+
+    With a :class:`BlockStore`, blocks it already holds are read back instead of
+    computed, and each computed block is saved to it as soon as it arrives.
+    """
     ncell_shape = plan.cell_shape
     S = settings.n_splits
     assembled: dict = {}
     messages, engines = [], set()
     tiles = list(plan.tiles())
 
-    def on_result(i, res):
+    def assemble(i, res):
         tile = tiles[i]
         tshape = tuple(t.stop - t.start for t in tile)
         for name, arr in res.items():
@@ -892,11 +1019,135 @@ def execute(plan: Plan, settings: CellSettings, scheduler: Scheduler, progress: 
         if progress is not None:
             progress.update()
 
-    scheduler.run_blocks(block_tasks(plan, settings), on_result)
+    done = store.done_blocks() if store is not None else set()
+    for i in sorted(done):
+        assemble(i, store.read(i, tiles[i]))
+    todo = [i for i in range(len(tiles)) if i not in done]
+
+    def on_result(k, res):
+        i = todo[k]
+        if store is not None:
+            store.write(i, tiles[i], res)
+        assemble(i, res)
+
+    if todo:
+        scheduler.run_blocks(block_tasks(plan, settings, skip=done), on_result)
     assembled["messages"] = messages
     assembled["engines"] = sorted(e for e in engines if e)
+    assembled["resumed_blocks"] = len(done)
     assert all(assembled[k].shape[len(ncell_shape)] == S for k in assembled if isinstance(assembled[k], np.ndarray))
     return assembled
+
+
+class BlockStore:
+    """Finished blocks of a run kept in a Zarr store, for the opt-in resumable mode.
+
+    Layout of the folder: ``results.zarr`` with one Zarr array per result
+    (chunks = the blocks, so a block is written as whole chunks),
+    ``run.json`` with the fingerprint of the run (resolved workflow without
+    its compute and output settings, input files' sizes and modification
+    times, grid axes, blocks), and one marker ``done/B.json`` per finished
+    block written after its data: a block counts as done only when its
+    marker exists, so a run killed while saving a block recomputes it.  A store made by a different run is
+    replaced.  zarr is imported here only (the ``resume`` extra).
+    """
+
+    def __init__(self, path, plan: Plan, settings: CellSettings, note=None):
+        try:
+            import zarr
+        except ImportError:
+            raise ConfigError(f"{plan.workflow.source}: output.resume = true needs the zarr package: "
+                              "pip install 'mvkde[resume]' (or set output.resume = false)") from None
+        import json
+        import shutil
+        from pathlib import Path
+
+        self.zarr = zarr
+        self.path = Path(path)
+        self.markers = self.path / "done"
+        self.chunks_over_cells = tuple(plan.tile)
+        self.cell_shape = plan.cell_shape
+        self.fingerprint = _fingerprint(plan, settings)
+        stamp = self.path / "run.json"
+        if self.path.exists():
+            try:
+                same = json.loads(stamp.read_text()) == self.fingerprint
+            except (OSError, ValueError):
+                same = False
+            if not same:
+                if note is not None:
+                    note(f"mvkde run: {self.path} was made by a different workflow or different inputs: "
+                         "starting over")
+                shutil.rmtree(self.path)
+        if not self.path.exists():
+            self.markers.mkdir(parents=True)
+            _write_atomic(stamp, json.dumps(self.fingerprint))
+        self.root = zarr.open_group(str(self.path / "results.zarr"), mode="a")
+
+    def done_blocks(self) -> set:
+        return {int(f.stem) for f in self.markers.glob("*.json") if f.stem.isdigit()}
+
+    def read(self, i: int, tile) -> dict:
+        import json
+
+        meta = json.loads((self.markers / f"{i}.json").read_text())
+        ncell = int(np.prod([t.stop - t.start for t in tile])) if tile else 1
+        out = {}
+        for name in self.root.array_keys():
+            block = np.asarray(self.root[name][tile if tile else ...])
+            out[name] = block.reshape((ncell,) + block.shape[len(tile):])
+        out["messages"] = [tuple(m) for m in meta["messages"]]
+        out["engines"] = set(meta["engines"])
+        return out
+
+    def write(self, i: int, tile, res: dict) -> None:
+        import json
+
+        tshape = tuple(t.stop - t.start for t in tile)
+        for name, arr in res.items():
+            if name in ("messages", "engines"):
+                continue
+            if name not in self.root:
+                fill = np.nan if arr.dtype.kind == "f" else 0
+                self.root.create_array(name, shape=self.cell_shape + arr.shape[1:], dtype=arr.dtype,
+                                       chunks=tuple(max(1, c) for c in self.chunks_over_cells) + arr.shape[1:],
+                                       fill_value=fill)
+            self.root[name][tile if tile else ...] = arr.reshape(tshape + arr.shape[1:])
+        meta = {"messages": [list(m) for m in res["messages"]], "engines": sorted(e for e in res["engines"] if e)}
+        _write_atomic(self.markers / f"{i}.json", json.dumps(meta))
+
+    def remove(self) -> None:
+        import shutil
+
+        shutil.rmtree(self.path, ignore_errors=True)
+
+
+def _write_atomic(path, text: str) -> None:
+    import os
+
+    tmp = path.with_name(path.name + f".{os.getpid()}.tmp")
+    tmp.write_text(text)
+    os.replace(tmp, path)
+
+
+def _fingerprint(plan: Plan, settings: CellSettings) -> dict:
+    """What makes two runs' blocks interchangeable: not the scheduler, nor the output settings."""
+    spec = plan.workflow.to_json()
+    spec = {k: v for k, v in spec.items() if k not in ("compute", "output")}
+    spec["block_size"] = plan.workflow["compute"]["block_size"]
+    files = []
+    for f in plan.files:
+        st = f.stat()
+        files.append([str(f.resolve()), st.st_size, st.st_mtime_ns])
+    return {"workflow": spec, "inputs": files, "axes": [a.tolist() for a in settings.axes],
+            "tile": list(plan.tile), "cell_shape": list(plan.cell_shape), "n_splits": settings.n_splits}
+
+
+def resume_store_path(output) -> "Path":
+    from pathlib import Path
+
+    output = Path(output)
+    return output.with_name(output.name + ".resume")
 
 
 def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Dataset:
@@ -1009,19 +1260,28 @@ def estimate_sizes(plan: Plan, settings: CellSettings | None = None) -> dict:
     return {"task_bytes": task, "output_bytes": output, "engine_work_bytes": work}
 
 
-def run(wf: Workflow, *, progress_stream=None, plan: Plan | None = None):
-    """Execute a workflow: returns (dataset, plan, settings, summary dict). Nothing is written."""
+def run(wf: Workflow, *, progress_stream=None, plan: Plan | None = None, store_path=None):
+    """Execute a workflow: returns (dataset, plan, settings, summary dict).
+
+    Nothing is written, except finished blocks to the Zarr store at
+    ``store_path`` when given (the resumable mode).
+    """
     plan = plan or prepare(wf)
+    stream = progress_stream if progress_stream is not None else sys.stderr
+    store = None
     with Scheduler(wf["compute"]) as sched:
         t0 = time.perf_counter()  # compute time: a cluster's start-up is not counted
         axes = resolve_axes(plan, sched.compute)
         settings = settings_for(plan, axes)
+        if store_path is not None:
+            store = BlockStore(store_path, plan, settings, note=lambda m: print(m, file=stream, flush=True))
         progress = Progress(plan.n_blocks, progress_stream)
-        results = execute(plan, settings, sched, progress)
+        results = execute(plan, settings, sched, progress, store=store)
         seconds = time.perf_counter() - t0
         where = sched.describe()
     ds = build_dataset(plan, settings, results)
     flags = ds["flags"].values
+    _refuse_if_nothing_fitted(plan, flags, results["messages"])
     summary = {
         "seconds": seconds,
         "scheduler": where,
@@ -1030,8 +1290,28 @@ def run(wf: Workflow, *, progress_stream=None, plan: Plan | None = None):
         "flag_counts": {name: int(((flags & bit) > 0).sum()) for name, bit in FLAGS.items()},
         "messages": results["messages"],
         "engines": results["engines"],
+        "resumed_blocks": results["resumed_blocks"],
+        "store": store,
     }
     return ds, plan, settings, summary
+
+
+def _refuse_if_nothing_fitted(plan: Plan, flags: np.ndarray, messages) -> None:
+    """A run in which no cell got a density is an input or settings error, not an output."""
+    usable = (flags & (FLAGS["too_few_samples"] | FLAGS["fit_failed"])) == 0
+    if flags.size == 0 or usable.any():
+        return
+    wf = plan.workflow
+    few = int(((flags & FLAGS["too_few_samples"]) > 0).sum())
+    failed = int(((flags & FLAGS["fit_failed"]) > 0).sum())
+    parts = []
+    if few:
+        parts.append(f"{few} with fewer than input.min_samples = {wf['input']['min_samples']} valid samples")
+    if failed:
+        example = f" (e.g. {messages[0][2]})" if messages else ""
+        parts.append(f"{failed} refused by the estimator{example}")
+    raise InputError(f"no cell of {_where_files(plan)} got a density: of {flags.size} cells, " + " and ".join(parts)
+                     + ": check the input values, the selection and the [estimator] settings")
 
 
 # ---------------------------------------------------------------------------
@@ -1106,8 +1386,16 @@ def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out
     wf = path if isinstance(path, Workflow) else load(path, overrides)
     overwrite = overwrite or wf["output"]["overwrite"]
     target = _io.check_output_path(wf["output"]["path"], overwrite=overwrite)
+    _io.clean_stale_partials(target)  # left by an earlier run that was killed while writing
     plan = prepare(wf)
-    ds, plan, settings, summary = run(wf, progress_stream=progress_stream, plan=plan)
+    store_path = resume_store_path(target) if wf["output"]["resume"] else None
+    if store_path is not None:
+        try:
+            import zarr  # noqa: F401
+        except ImportError:
+            raise ConfigError(f"{wf.source}: output.resume = true needs the zarr package: "
+                              "pip install 'mvkde[resume]' (or set output.resume = false)") from None
+    ds, plan, settings, summary = run(wf, progress_stream=progress_stream, plan=plan, store_path=store_path)
     rec = _prov.record(wf, plan.files, command_line=command_line, extra={
         "scheduler": summary["scheduler"], "engines": summary["engines"],
         "grid_limits": {v: [float(a[0]), float(a[-1])] for v, a in zip(plan.names, settings.axes)}})
@@ -1125,8 +1413,12 @@ def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out
         "min_samples": int(wf["input"]["min_samples"]),
     })
     _io.write_netcdf_atomic(ds, target, overwrite=overwrite, encoding=encoding_for(ds, plan, wf["output"]))
+    if summary["store"] is not None:
+        summary["store"].remove()  # the output is complete: the finished blocks are no longer needed
     fc = summary["flag_counts"]
-    print(f"mvkde run: wrote {target} ({summary['cells']} densities, {summary['blocks']} blocks, "
+    resumed = (f", {summary['resumed_blocks']} of them resumed from {store_path.name}"
+               if summary["resumed_blocks"] else "")
+    print(f"mvkde run: wrote {target} ({summary['cells']} densities, {summary['blocks']} blocks{resumed}, "
           f"{summary['seconds']:.1f} s on {summary['scheduler']})", file=out)
     flagged = {k: v for k, v in fc.items() if v}
     if flagged:

@@ -66,21 +66,51 @@ def input_format(files, fmt: str = "auto") -> str:
 
 
 def open_gridded(files, chunks=None) -> xr.Dataset:
-    """Open one or several netCDF files lazily (dask arrays).
+    """Open one or several netCDF files lazily.
 
-    ``chunks`` is passed to xarray (``{}`` = the files' own chunks); several
-    files are combined by their coordinates.
+    ``chunks`` is passed to xarray: ``None`` opens one file without dask
+    (lazily indexed: nothing is read until values are asked for, and a later
+    ``.chunk()`` reads each chunk as one hyperslab), ``{}`` uses the files'
+    own chunks.  Several files are combined by their coordinates and always
+    get dask chunks (``{}`` when ``chunks`` is None).
     """
-    chunks = {} if chunks is None else chunks
     try:
         if len(files) == 1:
             return xr.open_dataset(files[0], chunks=chunks, engine="netcdf4")
-        return xr.open_mfdataset([str(f) for f in files], chunks=chunks, engine="netcdf4",
+        return xr.open_mfdataset([str(f) for f in files], chunks={} if chunks is None else chunks,
+                                 engine="netcdf4",
                                  combine="by_coords", data_vars="minimal", coords="minimal",
                                  compat="override", parallel=False)
     except (OSError, ValueError) as exc:
         raise InputError(f"input.path: cannot open {', '.join(map(str, files[:3]))}"
                          f"{' ...' if len(files) > 3 else ''} as netCDF: {exc}") from None
+
+
+def check_units_agree(files, names) -> None:
+    """Refuse several files whose ``units`` attributes of one variable differ.
+
+    Combining files keeps the first file's attributes, so a file in kelvin
+    among files in degC would otherwise be pooled silently.
+    """
+    import netCDF4
+
+    seen: dict = {}
+    for f in files:
+        try:
+            with netCDF4.Dataset(f) as nc:
+                for v in names:
+                    if v in nc.variables:
+                        u = str(getattr(nc.variables[v], "units", "")).strip()
+                        seen.setdefault(v, []).append((u, f))
+        except OSError as exc:
+            raise InputError(f"input.path: cannot open {f} as netCDF: {exc}") from None
+    for v, pairs in seen.items():
+        first_u, first_f = pairs[0]
+        for u, f in pairs[1:]:
+            if u != first_u:
+                raise InputError(f"input.path: variable {v} has units {u or '(none)'!r} in {Path(f).name} but "
+                                 f"{first_u or '(none)'!r} in {Path(first_f).name}: convert the files to one "
+                                 "unit before pooling them")
 
 
 def read_table(files, fmt: str, columns=None):
@@ -132,7 +162,43 @@ def sha256(path, block: int = 1 << 20) -> str:
 # ---------------------------------------------------------------------------
 
 def temporary_path(path: Path) -> Path:
+    """Where ``path`` is written before the rename: ``.NAME.PID.partial`` in the same folder."""
     return path.with_name(f".{path.name}.{os.getpid()}.partial")
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # someone else's live process
+        return True
+    return True
+
+
+def clean_stale_partials(path) -> list[Path]:
+    """Remove temporary files of ``path`` left by runs that died (their PID is gone).
+
+    A run killed while writing (SIGKILL, a node lost) leaves
+    ``.NAME.PID.partial``; a file whose PID still runs belongs to a run in
+    progress and is kept.  Returns the files removed.
+    """
+    path = Path(path)
+    removed = []
+    prefix = f".{path.name}."
+    folder = path.parent if str(path.parent) else Path(".")
+    if not folder.is_dir():
+        return removed
+    for f in folder.glob(glob.escape(prefix) + "*.partial"):
+        pid_text = f.name[len(prefix): -len(".partial")]
+        if not pid_text.isdigit() or int(pid_text) == os.getpid() or _pid_alive(int(pid_text)):
+            continue
+        try:
+            f.unlink()
+            removed.append(f)
+        except OSError:
+            pass
+    return removed
 
 
 def check_output_path(path, *, overwrite: bool = False) -> Path:
@@ -146,7 +212,7 @@ def check_output_path(path, *, overwrite: bool = False) -> Path:
     try:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise InputError(f"cannot create output folder {folder}: {exc.strerror}") from None
+        raise InputError(f"cannot create output folder {folder}: {exc.strerror}: choose another output.path") from None
     if not os.access(folder, os.W_OK):
         raise InputError(f"output folder {folder} is not writable: choose another output.path")
     return path
@@ -155,10 +221,14 @@ def check_output_path(path, *, overwrite: bool = False) -> Path:
 def write_netcdf_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding=None) -> Path:
     """Write ``ds`` to ``path`` through a temporary file and an atomic rename."""
     path = check_output_path(path, overwrite=overwrite)
+    clean_stale_partials(path)
     tmp = temporary_path(path)
     try:
         ds.to_netcdf(tmp, engine="netcdf4", encoding=encoding or {})
         os.replace(tmp, path)
+    except OSError as exc:  # disk full, quota, a folder removed under the run
+        raise InputError(f"cannot write output {path}: {exc.strerror or exc}: free space or choose another "
+                         "output.path") from None
     finally:
         if tmp.exists():
             tmp.unlink()

@@ -280,6 +280,16 @@ def _limits(value, where):
     return {str(k): _pair(v, f"{where}.{k}", allow_inf=False) for k, v in value.items()}
 
 
+def _bandwidth(value, where):
+    """A selector name, or a given matrix H as a list of rows (checked against d later)."""
+    if isinstance(value, list):
+        if not value or not all(isinstance(r, list) and r and all(
+                isinstance(x, (int, float)) and not isinstance(x, bool) for x in r) for r in value):
+            raise _fail(where, value, "a selector name or a d x d matrix of numbers, e.g. [[1.0, 0.2], [0.2, 0.5]]")
+        return [[float(x) for x in r] for r in value]
+    return _choice("bandwidth")(value, where)
+
+
 def _scheduler(value, where):
     if not isinstance(value, str):
         raise _fail(where, value, "\"threads\", \"processes\", \"local-cluster\" or \"tcp://HOST:PORT\"")
@@ -342,7 +352,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
     "estimator": {
         "kernel": Key("gaussian", _choice("kernel"), "kernel name (mvkde kernels lists them)", "kernel"),
         "form": Key("product", _choice("form"), "product or spherical kernel", "form"),
-        "bandwidth": Key("plugin", _choice("bandwidth"), "bandwidth selector", "bandwidth"),
+        "bandwidth": Key("plugin", _bandwidth, "bandwidth selector, or a given d x d matrix H (a list of "
+                                               "rows, the covariance of the scaled kernel)", "bandwidth"),
         "parametrization": Key("full", _choice("parametrization"), "full, diagonal or scalar H",
                                "parametrization"),
         "boundary": Key("reflect", _choice("boundary"), "boundary correction for bounded variables "
@@ -372,6 +383,9 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "complevel": Key(4, _int(lo=0, hi=9), "zlib compression level (0 = none)"),
         "title": Key(None, _opt_str, "global title attribute"),
         "overwrite": Key(False, _bool, "replace an existing output (also --overwrite)"),
+        "resume": Key(False, _bool, "keep finished blocks in a Zarr store next to the output "
+                                    "(folder OUTPUT.resume) and skip them when the run is restarted; needs "
+                                    "the resume extra (zarr)"),
     },
 }
 
@@ -453,8 +467,13 @@ def load(path, overrides=()) -> Workflow:
         text = path.read_text()
     except FileNotFoundError:
         raise ConfigError(f"workflow file {path} not found") from None
+    except IsADirectoryError:
+        raise ConfigError(f"workflow file {path} is a folder: name the .toml file") from None
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"workflow file {path} is not UTF-8 text (byte {exc.start}): save it as UTF-8 "
+                          "TOML") from None
     except OSError as exc:
-        raise ConfigError(f"cannot read workflow file {path}: {exc.strerror}") from None
+        raise ConfigError(f"cannot read workflow file {path}: {exc.strerror or exc}") from None
     return loads(text, source=path, overrides=overrides)
 
 
@@ -585,6 +604,19 @@ def _cross_checks(spec: dict, source: str) -> None:
     if inp["max_samples"] is not None and inp["max_samples"] < inp["min_samples"]:
         raise ConfigError(f"{source}: input.max_samples = {inp['max_samples']} is below "
                           f"input.min_samples = {inp['min_samples']}")
+    H = spec["estimator"]["bandwidth"]
+    if isinstance(H, list):
+        from .bandwidth import BandwidthMatrix
+        from .errors import MvkdeError
+
+        if len(H) != d or any(len(r) != d for r in H):
+            raise ConfigError(f"{source}: estimator.bandwidth is a {len(H)} x {len(H[0])} matrix"
+                              f"{'' if all(len(r) == len(H[0]) for r in H) else ' with rows of unequal length'}"
+                              f" but input.variables has {d} variables: give a {d} x {d} matrix")
+        try:
+            BandwidthMatrix.from_matrix(H, d, argument=f"{source}: estimator.bandwidth")
+        except MvkdeError as exc:
+            raise ConfigError(str(exc)) from None
     masses = [v for v in names if spec["variables"][v]["point_mass"] is not None]
     if len(masses) > 1:
         raise ConfigError(f"{source}: point_mass is set for {masses}: at most one variable may carry a "

@@ -1,0 +1,2 @@
+station,tmax
+A,12.5
