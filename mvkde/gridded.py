@@ -457,10 +457,18 @@ class CellSettings:
     seed: int
     n_splits: int
     n_cell_dims: int
+    products: dict = field(default_factory=dict)
 
     @property
     def d(self) -> int:
         return len(self.names)
+
+    @property
+    def per_cell_products(self) -> bool:
+        """Products that need each cell's fitted estimate (not just its gridded density)."""
+        p = self.products
+        return bool(len(p.get("thresholds", ())) or p.get("samples") or p.get("points") is not None
+                    or p.get("bootstrap") or p.get("standard_error"))
 
     @property
     def point_mass_index(self) -> int | None:
@@ -502,7 +510,20 @@ def settings_for(plan: Plan, axes) -> CellSettings:
         periods=periods if any(p is not None for p in periods) else None,
         engine=est["engine"], axes=[np.asarray(a, dtype=float) for a in axes] if axes else [],
         min_samples=inp["min_samples"], max_samples=inp["max_samples"], seed=est["seed"],
-        n_splits=plan.n_splits, n_cell_dims=len(plan.cell_dims))
+        n_splits=plan.n_splits, n_cell_dims=len(plan.cell_dims),
+        products=_cell_products(wf, plan))
+
+
+def _cell_products(wf: Workflow, plan: Plan) -> dict:
+    """The [products] that are computed per cell from its fitted estimate."""
+    prod = wf["products"]
+    points = None
+    if prod["points"] is not None:
+        points = _io.read_points(prod["points"], plan.names, wf.source)
+    return {"thresholds": np.asarray(prod["thresholds"], dtype=float).reshape(-1, len(plan.names)),
+            "samples": int(prod["samples"]), "points": points, "bootstrap": int(prod["bootstrap"]),
+            "band_level": float(prod["band_level"]), "standard_error": bool(prod["standard_error"]),
+            "seed": int(wf["estimator"]["seed"])}
 
 
 def _check_estimator(wf: Workflow, plan: Plan) -> None:
@@ -678,9 +699,41 @@ class CellResult:
     engine: str
     point_mass_probability: float = float("nan")
     density_at_point_mass: np.ndarray | None = None
+    extras: dict = field(default_factory=dict)
 
 
-def fit_and_evaluate(samples: list[np.ndarray], settings: CellSettings) -> list:
+def _cell_extras(est, settings: CellSettings, size, limits, key) -> dict:
+    """Per-cell [products] from the fitted estimate (library calls only)."""
+    from . import products as _products
+
+    p = settings.products
+    out = {}
+    thresholds = p["thresholds"]
+    if len(thresholds):
+        out["exceedance_at_threshold"] = est.exceedance(thresholds)
+    if p["standard_error"]:
+        # R(K) / (n |H|^{1/2}): the variance of f_hat(x) divided by f(x)
+        out["variance_factor"] = float(_products.standard_error(est, np.ones(1))[0] ** 2)
+    seed = [p["seed"], int(key[0]), int(key[1])]
+    if p["samples"]:
+        out["samples"] = est.sample(p["samples"], seed=seed + [1])
+    if p["points"] is not None:
+        out["density_at_point"] = est.pdf(p["points"])
+    if p["bootstrap"]:
+        def stat(b):
+            g = b.grid(size, limits=limits).values.ravel()
+            return np.concatenate([g, b.exceedance(thresholds)]) if len(thresholds) else g
+        draws = _products.bootstrap(est, stat, p["bootstrap"], seed=seed + [2])
+        a = (1 - p["band_level"]) / 2
+        lo, hi = np.quantile(draws, [a, 1 - a], axis=0)
+        m = int(np.prod(size))
+        out["density_lower"], out["density_upper"] = lo[:m].reshape(size), hi[:m].reshape(size)
+        if len(thresholds):
+            out["exceedance_lower"], out["exceedance_upper"] = lo[m:], hi[m:]
+    return out
+
+
+def fit_and_evaluate(samples: list[np.ndarray], settings: CellSettings, keys=None) -> list:
     """Fit and evaluate every sample of a block: the one place the library is called.
 
     Returns one entry per sample: a :class:`CellResult`, or the message of the
@@ -693,13 +746,14 @@ def fit_and_evaluate(samples: list[np.ndarray], settings: CellSettings) -> list:
     from . import engines as _engines
 
     plain = (settings.bounds is None and settings.point_masses is None and settings.periods is None
-             and isinstance(settings.bandwidth, str))
+             and isinstance(settings.bandwidth, str) and not settings.per_cell_products)
     if plain and samples and hasattr(_bandwidth, "select_many") and hasattr(_engines, "evaluate_grid_many"):
         try:
             return _batched(samples, settings, _bandwidth, _engines)
         except MvkdeError:
             pass  # one cell refused: fall back to one call per cell so only that cell is flagged
-    return [_one_cell(x, settings) for x in samples]
+    keys = keys if keys is not None else [(k, 0) for k in range(len(samples))]
+    return [_one_cell(x, settings, key) for x, key in zip(samples, keys)]
 
 
 def _batched(samples, settings, _bandwidth, _engines) -> list:
@@ -714,7 +768,7 @@ def _batched(samples, settings, _bandwidth, _engines) -> list:
             for k, (r, c) in enumerate(zip(results, choices))]
 
 
-def _one_cell(x: np.ndarray, settings: CellSettings):
+def _one_cell(x: np.ndarray, settings: CellSettings, key=(0, 0)):
     from . import fit
 
     limits = [(a[0], a[-1]) for a in settings.axes]
@@ -732,6 +786,8 @@ def _one_cell(x: np.ndarray, settings: CellSettings):
                 keep = [k for k in range(settings.d) if k != j]
                 pm = est.point_mass_grid([size[k] for k in keep], limits=[limits[k] for k in keep])
                 res.density_at_point_mass = np.asarray(pm.values, dtype=float)
+        if settings.per_cell_products:
+            res.extras = _cell_extras(est, settings, size, limits, key)
         return res
     except (MvkdeError, np.linalg.LinAlgError) as exc:
         return f"{type(exc).__name__}: {exc}"
@@ -799,9 +855,15 @@ def process_block(values, codes, first_cell: int, tile_shape: tuple, settings: C
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", MvkdeWarning)  # reported through flags instead
-        results = fit_and_evaluate(todo, settings)
+        results = fit_and_evaluate(todo, settings, [(first_cell + c, s) for c, s in where])
 
     for (c, s), res in zip(where, results):
+        if not isinstance(res, str):
+            for name, value in res.extras.items():
+                value = np.asarray(value, dtype=float)
+                if name not in out:
+                    out[name] = np.full((ncell, S) + value.shape, np.nan)
+                out[name][c, s] = value
         if isinstance(res, str):
             out["flags"][c, s] |= FLAGS["fit_failed"]
             if len(out["messages"]) < 3:
@@ -1218,7 +1280,13 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
                 "long_name": "density of " + ", ".join(others) + f" on the point mass of {names[j]} "
                              f"(integrates to point_mass_probability)",
                 "units": density_units([u for k, u in enumerate(units) if k != j])})
-    return xr.Dataset(data_vars, coords=coords)
+    ds = xr.Dataset(data_vars, coords=coords)
+    from .derived import add_cell_products, add_grid_products
+
+    add_cell_products(ds, results, settings, lead, squeeze)
+    add_grid_products(ds, plan.workflow["products"], names, j,
+                      settings.bounds[j][0] if j is not None else float("nan"))
+    return ds
 
 
 def encoding_for(ds: xr.Dataset, plan: Plan, output: dict) -> dict:

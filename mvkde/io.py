@@ -233,3 +233,29 @@ def write_netcdf_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encodi
         if tmp.exists():
             tmp.unlink()
     return path
+
+
+def read_points(path, names, source=None) -> "np.ndarray":
+    """Points (m, d) from a CSV table with one column per variable (products.points)."""
+    import numpy as np
+    import pandas as pd
+
+    where = f"{source}: " if source else ""
+    p = Path(path)
+    if not p.exists():
+        raise InputError(f"{where}products.points: file {p} not found")
+    try:
+        table = pd.read_csv(p)
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{where}products.points: cannot read {p} as CSV: {exc}") from None
+    missing = [n for n in names if n not in table.columns]
+    if missing:
+        raise InputError(f"{where}products.points: {p} lacks column(s) {', '.join(missing)} "
+                         f"(it has {', '.join(map(str, table.columns))})")
+    try:
+        pts = table[list(names)].to_numpy(dtype=float)
+    except ValueError:
+        raise InputError(f"{where}products.points: columns {', '.join(names)} of {p} must be numbers") from None
+    if not np.all(np.isfinite(pts)) or len(pts) == 0:
+        raise InputError(f"{where}products.points: {p} needs at least one row and finite numbers only")
+    return pts

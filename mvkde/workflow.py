@@ -187,6 +187,23 @@ def _str_list(optional=False, nonempty=True):
     return check
 
 
+def _fractions(value, where):
+    """A list of numbers strictly between 0 and 1 (HDR masses, quantile probabilities)."""
+    if not isinstance(value, list) or not all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                              and 0 < v < 1 for v in value):
+        raise _fail(where, value, "a list of numbers strictly between 0 and 1, e.g. [0.5, 0.9, 0.99]")
+    return [float(v) for v in value]
+
+
+def _thresholds(value, where):
+    """A list of points (one number per variable) for exceedance probabilities."""
+    if not isinstance(value, list) or not all(
+            isinstance(r, list) and r and all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                              for v in r) for r in value):
+        raise _fail(where, value, "a list of points, one number per variable, e.g. [[10.0, 25.0]]")
+    return [[float(v) for v in r] for r in value]
+
+
 def _paths(value, where):
     if isinstance(value, str):
         value = [value]
@@ -376,6 +393,26 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                                "auto = enough blocks to keep every worker busy, at most 64 "
                                                "cells each"),
         "memory_limit": Key("auto", _str, "local-cluster memory limit per worker, e.g. \"2GB\""),
+    },
+    "products": {
+        "marginals": Key(False, _bool, "write marginal_NAME: each variable's marginal density per cell "
+                                       "(integrated from the grid; point mass included for the others)"),
+        "cdf": Key(False, _bool, "write cdf: P(X <= x componentwise) at every grid node"),
+        "exceedance": Key(False, _bool, "write exceedance: P(X > x componentwise) at every grid node"),
+        "thresholds": Key([], _thresholds, "points [[x1, x2, ...], ...] at which to write the joint "
+                                           "exceedance probability (exceedance_at_threshold)"),
+        "hdr_masses": Key([], _fractions, "write hdr_level: density levels whose regions enclose these "
+                                          "masses, e.g. [0.5, 0.9, 0.99]"),
+        "quantiles": Key([], _fractions, "write quantile_NAME: marginal quantiles at these probabilities"),
+        "standard_error": Key(False, _bool, "write density_standard_error: the asymptotic pointwise "
+                                            "standard error sqrt(f R(K) / (n |H|^(1/2)))"),
+        "samples": Key(0, _int(lo=0), "write this many random draws per cell from its estimate "
+                                      "(smoothed bootstrap; seeded by estimator.seed)"),
+        "points": Key(None, _opt_str, "a CSV table with one column per variable: write density_at_point "
+                                      "for each row"),
+        "bootstrap": Key(0, _int(lo=0), "bootstrap replicates for percentile bands of the density "
+                                        "(density_lower/upper) and of exceedance_at_threshold; 0 = none"),
+        "band_level": Key(0.9, _float(positive=True), "coverage of the bootstrap bands (0 < level < 1)"),
     },
     "output": {
         "path": Key(REQUIRED, _str, "output netCDF file (relative to the current folder)"),
@@ -596,6 +633,14 @@ def _cross_checks(spec: dict, source: str) -> None:
                           f"{sorted(overlap)}: list dimensions there, variables in input.variables")
     if inp["group_by"] is not None and inp["group_by"] in names:
         raise ConfigError(f"{source}: input.group_by = {inp['group_by']!r} is also in input.variables")
+    prod = spec["products"]
+    for k, point in enumerate(prod["thresholds"]):
+        if len(point) != d:
+            raise ConfigError(f"{source}: products.thresholds[{k}] = {point} has {len(point)} numbers for "
+                              f"{d} variables ({', '.join(names)}): give one per variable")
+    if not 0 < prod["band_level"] < 1:
+        raise ConfigError(f"{source}: products.band_level = {prod['band_level']} must lie strictly "
+                          "between 0 and 1, e.g. 0.9")
     if inp["months"] is not None and inp["seasons"] is not None:
         raise ConfigError(f"{source}: input.months and input.seasons both select months: give one")
     if inp["min_samples"] < d + 1:
