@@ -107,12 +107,28 @@ class BandwidthMatrix:
         """``L^{-1} x`` applied to the rows of ``x`` (shape (..., d))."""
         x = np.asarray(x, dtype=float)
         flat = x.reshape(-1, self.d)
-        z = linalg.solve_triangular(self._L, flat.T, lower=True, check_finite=False).T
+        if self.d > 8:
+            z = linalg.solve_triangular(self._L, flat.T, lower=True, check_finite=False).T
+            return z.reshape(x.shape)
+        # forward substitution column by column: for the small d of density estimation this
+        # avoids a BLAS call whose thread start-up costs milliseconds on small inputs
+        L = self._L
+        z = np.empty_like(flat)
+        for i in range(self.d):
+            acc = flat[:, i].copy()
+            for j in range(i):
+                acc -= L[i, j] * z[:, j]
+            z[:, i] = acc / L[i, i]
         return z.reshape(x.shape)
 
     def colorize(self, z: np.ndarray) -> np.ndarray:
         """``L z`` applied to rows: maps unit-covariance draws to covariance H."""
-        return np.asarray(z, dtype=float) @ self._L.T
+        z = np.asarray(z, dtype=float)
+        out = np.zeros_like(z)
+        for i in range(self.d):  # L z row by row, no BLAS call for small d
+            for j in range(i + 1):
+                out[..., i] += self._L[i, j] * z[..., j]
+        return out
 
     def scaled(self, factor: float) -> "BandwidthMatrix":
         """``factor * H``."""
