@@ -260,18 +260,27 @@ def evaluate_grid_many(axes, samples, weights, bws, kernel, engine="auto", *, to
             values[c] = _direct_grid(choice.engine, axes, samples[c], weights[c], bws[c], kernel, shape)
     if batch:
         idx = [c for c, _ in batch]
+        # under "auto" the lattice may not cost more than the direct sums it replaces
+        # (about 5 direct kernel terms per lattice node for the transforms)
+        limit = binned.MAX_LATTICE
+        if engine == "auto":
+            smallest = min(samples[c].shape[0] for c in idx) * m
+            limit = int(min(limit, max(1 << 16, smallest // 5)))
         vals, infos = binned.grid_density_many(axes, [samples[c] for c in idx],
                                                [weights[c] for c in idx], [bws[c] for c in idx],
-                                               kernel, tol)
+                                               kernel, tol, max_lattice=limit)
         for (c, choice), v, info in zip(batch, vals, infos):
             if info.met:
                 values[c] = v
                 choices[c] = _binned_choice(choice, info)
             elif engine == "auto":
-                fallback = EngineChoice("exact", f"binned error estimate {info.error_estimate:.2g} x peak "
-                                                 f"stayed above the tolerance {tol:g} within the lattice "
-                                                 "size limit: direct sums instead")
-                values[c] = _direct_grid("exact", axes, samples[c], weights[c], bws[c], kernel, shape)
+                n = samples[c].shape[0]
+                frac = _fraction(samples[c], bws[c], kernel, n * m)
+                name = "tree" if (frac is not None and frac < TREE_FRACTION) else "exact"
+                fallback = EngineChoice(name, f"binned error estimate {info.error_estimate:.2g} x peak "
+                                              f"stayed above the tolerance {tol:g} within a lattice no "
+                                              f"dearer than direct sums: {name} sums instead")
+                values[c] = _direct_grid(name, axes, samples[c], weights[c], bws[c], kernel, shape)
                 choices[c] = fallback
             else:
                 warnings.warn(f"binned engine: estimated binning error {info.error_estimate:.2g} x peak "

@@ -63,14 +63,19 @@ Binning error, its correction and the refinement
     |a_j|^2 = (H^{-1})_jj: 1/|a_j| is the kernel's conditional standard
     deviation along axis j.
     Kernels with a kink at the edge of their support (Epanechnikov,
-    triangular, cosine) are corrected too; the kink's error per datum has
-    a mean of which E2 sees half, so |E2| is kept in the estimate, and a
-    spread with standard deviation sqrt(1/240) J sum_j D_j |a_j| (J the slope
-    jump, positions of the kink and the datum in the bin uniform: [calc],
-    exact double integral) over the data whose bins meet the kink set:
-    three standard deviations of that sum, 3 sd sqrt(sum_i w_i^2 [...]),
-    are added.  The discontinuous uniform kernel is not corrected; its
-    estimate is SAFETY |E2| + 3 sqrt(1/6) J sqrt(sum_i w_i^2 [...]).
+    triangular, cosine) are corrected too.  A datum whose bin meets the
+    kink set of y -> K_H(g - y) (found by labelling lattice offsets by the
+    smooth piece of the kernel they fall in) has, with J the slope jump and
+    W = sum_j D_j |a_j| the bin's whitened width, an interpolation error of
+    mean J W / 12 and standard deviation J W sqrt(1/240) when the kink and
+    the datum sit uniformly at random in the bin [calc: exact double
+    integrals]; the estimate adds the full mean over those data,
+    J W / 12 sum_i w_i [...], and three standard deviations of their sum,
+    3 J W sqrt(1/240) sqrt(sum_i w_i^2 [...]).  The discontinuous uniform
+    kernel is not corrected; its estimate is
+    SAFETY |E2| + 3 J sqrt(1/6) sqrt(sum_i w_i^2 [...]) (value jump J, same
+    integrals).  The biweight's second derivative jumps (by J2) at the edge of
+    its support; data whose bins meet the edge add J2 W^2 / 8 each.
 
     The refinement starts at the smallest r_j with D_j |a_j| <= RESOLVE and
     grows while the estimate exceeds tol x peak (the peak: the largest
@@ -106,7 +111,7 @@ MAX_DIM = 4
 DEFAULT_TOL = 1e-3
 RESOLVE = 1.0            # start: bins at most one conditional kernel standard deviation wide
 ALIAS_FREE = 0.4         # closed-form Gaussian spectrum when bins are at most this wide
-SAFETY = 2.0             # margin on the estimated error terms
+SAFETY = 3.0             # margin on the estimated higher-order error terms
 MAX_LATTICE = 6_000_000  # nodes per cell of the internal lattice (48 MB per array)
 CHUNK = 1 << 17          # data rows binned per pass
 MAX_ROUNDS = 4           # refinement rounds before giving up (and saying so)
@@ -316,7 +321,9 @@ def _spectra(bws, mk, nfft, delta, margins, closed_form=False):
 
 
 def nonsmooth_jump(mk: MultivariateKernel) -> tuple[str, float]:
-    """('smooth' | 'kink' | 'jump', size) of the unit kernel's worst non-smooth point.
+    """('smooth' | 'curvature' | 'kink' | 'jump', size) of the unit kernel's worst non-smooth point.
+
+    'curvature': jump of the second derivative at the support edge (biweight).
 
     'kink': largest jump of the first derivative (per unit whitened
     distance) across the support edge (and across 0 for the triangular
@@ -324,6 +331,16 @@ def nonsmooth_jump(mk: MultivariateKernel) -> tuple[str, float]:
     k(0)^(d-1), the largest value the other factors can take.
     """
     k = mk.kernel
+    if k.smoothness == "once differentiable":
+        # biweight: the second derivative jumps at the support edge
+        a = mk.radius if mk.is_radial else k.unit_radius
+        h = 1e-4 * a
+        if mk.is_radial:
+            v = mk.evaluate_radial((a - np.array([3 * h, 2 * h, h])) ** 2)
+            return "curvature", float(abs(v[0] - 2 * v[1] + v[2]) / h ** 2)
+        v = k.unit(a - np.array([3 * h, 2 * h, h]))
+        top = float(k.unit(np.array([0.0]))[0]) ** (mk.d - 1)
+        return "curvature", float(abs(v[0] - 2 * v[1] + v[2]) / h ** 2) * top
     if k.smoothness not in ("continuous", "discontinuous"):
         return "smooth", 0.0
     if mk.is_radial:
@@ -432,7 +449,7 @@ def grid_density_many(axes, samples, weights, bws, mk: MultivariateKernel, tol=D
     infos: list = [None] * cells
     lo = np.array([a[0] for a in axes], dtype=float)
     kind = nonsmooth_jump(mk)[0]
-    order = {"smooth": 2.0, "kink": 1.0, "jump": 0.5}[kind]
+    order = {"smooth": 2.0, "curvature": 2.0, "kink": 1.0, "jump": 0.5}[kind]
     todo = np.arange(cells)
     r = starting_refinement(axes, bws)
     for round_ in range(MAX_ROUNDS):
@@ -515,14 +532,14 @@ def _convolve(todo, samples, weights, bws, mk, lo, delta, margins, shape, r):
         terms.append((lambda t, w, j=j, k=k: -0.25 * u(t, j) * u(t, k),
                       lambda a, j=j, k=k: _difference(_difference(a, j + 1, 2), k + 1, 2)))
     weighted = any(weights[c] is not None for c in todo)
-    if kind != "smooth" and weighted:
+    if kind in ("kink", "jump") and weighted:
         terms.append((lambda t, w: w, None))
     outs, dropped = _bin(pieces, origin, delta, shape, nfft, cells, terms)
     counts = outs[0]
     second = sum(outs[1:1 + d])
     third = sum(outs[1 + d:1 + 2 * d])
     fourth = sum(outs[1 + 2 * d:1 + 3 * d + d * (d - 1) // 2])
-    sq = outs[-1] if (kind != "smooth" and weighted) else None
+    sq = outs[-1] if (kind in ("kink", "jump") and weighted) else None
     del outs
     inner = (slice(None),) + tuple(slice(int(mg), int(mg + (s - 2 * mg))) for mg, s in zip(margins, shape))
     e2 = conv(second)[inner]
@@ -534,20 +551,32 @@ def _convolve(todo, samples, weights, bws, mk, lo, delta, margins, shape, r):
     else:
         fine -= e2
         bound = SAFETY * e34
-        if kind == "kink":
-            bound += np.abs(e2)
-    if kind != "smooth":
+    if kind in ("kink", "jump"):
         if sq is None:
             n = np.array([samples[c].shape[0] for c in todo], dtype=float)
             sq = counts / n.reshape((cells,) + (1,) * d)
-        shell = sfft.irfftn(sfft.rfftn(sq, axes=axes) * _shell_spectra(bws, mk, nfft, delta, margins),
-                            s=nfft, axes=axes)[inner]
+        shell_spec = _shell_spectra(bws, mk, nfft, delta, margins)
+        shell_sq = sfft.irfftn(sfft.rfftn(sq, axes=axes) * shell_spec, s=nfft, axes=axes)[inner]
+        shell = None
+        if kind == "kink":
+            shell = sfft.irfftn(sfft.rfftn(counts, axes=axes) * shell_spec, s=nfft, axes=axes)[inner]
         for k, bw in enumerate(bws):
             if kind == "jump":
-                spread = math.sqrt(1.0 / 6.0)
+                spread, mean = math.sqrt(1.0 / 6.0), 0.0
             else:
-                spread = math.sqrt(1.0 / 240.0) * float(np.sum(delta * _conditional_inverse_sd(bw)))
-            bound[k] += 3.0 * np.sqrt(np.maximum(shell[k], 0.0)) * jump * spread / bw.sqrt_det
+                width = float(np.sum(delta * _conditional_inverse_sd(bw)))
+                spread, mean = math.sqrt(1.0 / 240.0) * width, width / 12.0
+            bound[k] += 3.0 * np.sqrt(np.maximum(shell_sq[k], 0.0)) * jump * spread / bw.sqrt_det
+            if shell is not None:
+                bound[k] += np.maximum(shell[k], 0.0) * jump * mean / bw.sqrt_det
+    if kind == "curvature":
+        # a jump J2 of the second derivative inside a datum's bin spoils the
+        # expansion there by at most J2 W^2 / 8 (W the bin's whitened width)
+        shell = sfft.irfftn(sfft.rfftn(counts, axes=axes) * _shell_spectra(bws, mk, nfft, delta, margins),
+                            s=nfft, axes=axes)[inner]
+        for k, bw in enumerate(bws):
+            width = float(np.sum(delta * _conditional_inverse_sd(bw)))
+            bound[k] += np.maximum(shell[k], 0.0) * jump * width ** 2 / 8.0 / bw.sqrt_det
     if mk.kernel.is_nonnegative:
         # the true sum is >= 0; rounding of the FFT and the correction can dip below
         # it by less than the error bound, and setting those nodes to 0 only
