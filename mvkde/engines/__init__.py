@@ -45,6 +45,8 @@ ENGINES = ("auto", "exact", "binned", "tree")
 
 # below this many kernel evaluations (n x m) direct sums are as fast as anything
 DIRECT_LIMIT = 2_000_000
+# auto falls back from a binned grid that misses its tolerance only up to this many terms
+FALLBACK_LIMIT = 500_000_000
 # tree sums pay when fewer than this fraction of the data are neighbours of a point
 TREE_FRACTION = 0.2
 
@@ -273,7 +275,7 @@ def evaluate_grid_many(axes, samples, weights, bws, kernel, engine="auto", *, to
             if info.met:
                 values[c] = v
                 choices[c] = _binned_choice(choice, info)
-            elif engine == "auto":
+            elif engine == "auto" and samples[c].shape[0] * m <= FALLBACK_LIMIT:
                 n = samples[c].shape[0]
                 frac = _fraction(samples[c], bws[c], kernel, n * m)
                 name = "tree" if (frac is not None and frac < TREE_FRACTION) else "exact"
@@ -283,6 +285,10 @@ def evaluate_grid_many(axes, samples, weights, bws, kernel, engine="auto", *, to
                 values[c] = _direct_grid(name, axes, samples[c], weights[c], bws[c], kernel, shape)
                 choices[c] = fallback
             else:
+                if engine == "auto":
+                    choice = EngineChoice("binned", f"{choice.reason}; direct sums ({samples[c].shape[0] * m:.3g} "
+                                                    "terms) would be far dearer than a binning error above "
+                                                    "the tolerance")
                 warnings.warn(f"binned engine: estimated binning error {info.error_estimate:.2g} x peak "
                               f"exceeds the tolerance {tol:g} (lattice size limit reached); use "
                               "engine='exact' for an exact grid, or a coarser tolerance",
