@@ -51,7 +51,9 @@ Binning error, its correction and the refinement
     order term.  Both terms are computed from the data like f~ itself: the
     weights w_i t(1-t)/2 and w_i t(1-t)(1-2t)/6 are linearly binned and the
     second (third, central) difference along axis j is applied to those
-    arrays (a stencil commutes with the convolution), one FFT each.  For
+    arrays (a stencil commutes with the convolution), one FFT each; the
+    third- and fourth-order weights, which only serve the error estimate,
+    go to the nearest node instead of being spread linearly.  For
     kernels without kinks or jumps the second-order term E2 is subtracted
     (a second-order correction of the binning), so what is returned carries
     only the third- and fourth-order terms.  Carrying the expansion one
@@ -209,15 +211,16 @@ def _max_weight(n: int, weights) -> float:
 def _bin(pieces, origin, delta, lattice, nfft, cells, terms, chunk=CHUNK):
     """Linearly bin (cell, x, w) pieces into zero-padded (cells, *nfft) arrays.
 
-    ``terms`` is a list of ``(factor, taps, target)``: each datum's weight is
+    ``terms`` is a list of ``(factor, taps, target[, "nearest"])``: each datum's weight is
     multiplied by ``factor(t, w)`` (None: 1; ``t`` the (rows, d) in-bin
     fractions), the binned array b is passed through the stencil ``taps``
     (None: as is; else a list of ``(shifts, coef)`` meaning
     ``out[p] += coef * b[p + shifts]``, shifts a dict axis -> offset) and
     added to output array number ``target``.  The data are read once,
     ``chunk`` rows at a time; memory is O(chunk 2^d) plus the outputs and
-    one temporary.  Data outside the lattice are dropped and their weight
-    returned per cell.
+    one temporary.  "nearest" terms put each datum on its nearest node
+    instead of spreading it linearly (used for error estimates only).  Data
+    outside the lattice are dropped and their weight returned per cell.
     """
     d = len(lattice)
     size = math.prod(nfft)
@@ -225,40 +228,47 @@ def _bin(pieces, origin, delta, lattice, nfft, cells, terms, chunk=CHUNK):
     upper = np.array(lattice, dtype=np.int64) - 1
     outs = [np.zeros((cells,) + tuple(nfft)) for _ in range(1 + max(t[2] for t in terms))]
     dropped = np.zeros(cells)
-    corners = list(itertools.product((0, 1), repeat=d))
+    offsets = np.array([sum(int(strides[j]) for j, bit in enumerate(bits) if bit)
+                        for bits in itertools.product((0, 1), repeat=d)], dtype=np.int64)
     for cell, x, w in pieces:
         for a in range(0, x.shape[0], chunk):
-            u = (x[a:a + chunk] - origin) / delta
+            # columns as contiguous rows: (d, rows)
+            u = (np.ascontiguousarray(x[a:a + chunk].T) - origin[:, None]) / delta[:, None]
             ws = w[a:a + chunk]
             k = np.floor(u).astype(np.int64)
             t = u - k
-            last = k == upper        # a datum exactly on the last node
-            k[last] -= 1
-            t[last] = 1.0
-            ok = np.all((k >= 0) & (k < upper), axis=1)
+            ok = np.ones(ws.size, dtype=bool)
+            for j in range(d):
+                last = k[j] == upper[j]        # a datum exactly on the last node
+                if last.any():
+                    k[j, last] -= 1
+                    t[j, last] = 1.0
+                ok &= (k[j] >= 0) & (k[j] < upper[j])
             if not ok.all():
                 dropped[cell] += float(ws[~ok].sum())
-                k, t, ws = k[ok], t[ok], ws[ok]
+                k, t, ws = k[:, ok], t[:, ok], ws[ok]
             if ws.size == 0:
                 continue
-            base = k @ strides + cell * size
-            idx = np.empty((len(corners), ws.size), dtype=np.int64)
-            frac = np.empty((len(corners), ws.size))
-            for c, bits in enumerate(corners):
-                f = ws.copy()
-                off = 0
-                for j, b in enumerate(bits):
-                    if b:
-                        off += int(strides[j])
-                        f *= t[:, j]
-                    else:
-                        f *= 1.0 - t[:, j]
-                idx[c] = base + off
-                frac[c] = f
-            idx = idx.ravel()
-            for factor, taps, target in terms:
-                wt = frac if factor is None else frac * factor(t, ws)[None, :]
-                binned = np.bincount(idx, weights=wt.ravel(), minlength=cells * size)
+            base = strides @ k + cell * size
+            # corner weights prod_j (1 - t_j or t_j), built axis by axis (corner order
+            # matches itertools.product((0, 1), repeat=d))
+            frac = ws[None, :]
+            for j in range(d):
+                frac = np.stack([frac * (1.0 - t[j]), frac * t[j]], axis=1).reshape(-1, ws.size)
+            idx = (base[None, :] + offsets[:, None]).ravel()
+            near = None
+            tt = t.T  # (rows, d) view for the factors
+            for factor, taps, target, *how in terms:
+                if how and how[0] == "nearest":
+                    # error-estimate terms: the nearest node is enough (2^d times cheaper)
+                    if near is None:
+                        near = base + strides @ (t >= 0.5).astype(np.int64)
+                        near_size = cells * size
+                    wt = ws if factor is None else ws * factor(tt, ws)
+                    binned = np.bincount(near, weights=wt, minlength=near_size)
+                else:
+                    wt = frac if factor is None else frac * factor(tt, ws)[None, :]
+                    binned = np.bincount(idx, weights=wt.ravel(), minlength=cells * size)
                 _add_stencil(outs[target], binned.reshape(outs[target].shape), taps)
     return outs, dropped
 
@@ -563,13 +573,14 @@ def _convolve(todo, samples, weights, bws, mk, lo, delta, margins, shape, r):
                       e2_target))
     if correct:
         for j in range(d):
-            terms.append((lambda t, w, j=j: u(t, j) * (1.0 - 2.0 * t[:, j]) / 6.0, _taps(j + 1, 3), rest))
+            terms.append((lambda t, w, j=j: u(t, j) * (1.0 - 2.0 * t[:, j]) / 6.0, _taps(j + 1, 3), rest,
+                          "nearest"))
         # fourth order after the correction: -(3/8) u_j^2 D^4_j - (1/4) u_j u_k D^2_j D^2_k
         for j in range(d):
-            terms.append((lambda t, w, j=j: -0.375 * u(t, j) ** 2, _taps(j + 1, 4), rest))
+            terms.append((lambda t, w, j=j: -0.375 * u(t, j) ** 2, _taps(j + 1, 4), rest, "nearest"))
         for j, k in itertools.combinations(range(d), 2):
             terms.append((lambda t, w, j=j, k=k: -0.25 * u(t, j) * u(t, k), _cross_taps(j + 1, k + 1, 1.0),
-                          rest))
+                          rest, "nearest"))
     weighted = any(weights[c] is not None for c in todo)
     if kind in ("kink", "jump") and weighted:
         terms.append((lambda t, w: w, None, rest if not correct else rest + 1))
