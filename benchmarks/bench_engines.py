@@ -135,11 +135,17 @@ def statsmodels_small(smoke: bool):
     x = rng.multivariate_normal([0, 5], [[1, 0.3], [0.3, 4]], size=n)
     sd = np.array([0.3, 0.7])
     # statsmodels' continuous Gaussian product kernel with bandwidths sd = diagonal H = diag(sd^2)
-    ref = KDEMultivariate(x, var_type="cc", bw=sd)
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", FutureWarning)  # statsmodels' own random-state notice
+        ref = KDEMultivariate(x, var_type="cc", bw=sd)
     est = mvkde.fit(x, bandwidth=np.diag(sd ** 2))
     t_m, g = best_of(lambda: est.grid(size))
     pts = _mesh(g)
-    t_r, r = best_of(lambda: ref.pdf(pts), repeat=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", FutureWarning)
+        t_r, r = best_of(lambda: ref.pdf(pts), repeat=1)
     err = np.abs(g.values.ravel() - r).max() / r.max()
     return [Row(f"gaussian diagonal H, n={n:,}, d=2, {size}x{size} grid", t_m,
                 "statsmodels KDEMultivariate", t_r, err, target="equal results",

@@ -252,9 +252,14 @@ def _bin(pieces, origin, delta, lattice, nfft, cells, terms, chunk=CHUNK):
             base = strides @ k + cell * size
             # corner weights prod_j (1 - t_j or t_j), built axis by axis (corner order
             # matches itertools.product((0, 1), repeat=d))
-            frac = ws[None, :]
+            frac = np.empty((1 << d, ws.size))
+            frac[0] = ws
             for j in range(d):
-                frac = np.stack([frac * (1.0 - t[j]), frac * t[j]], axis=1).reshape(-1, ws.size)
+                # corners so far (2^j rows) split on axis j: row c -> 2c (1 - t_j), 2c + 1 (t_j)
+                rows = 1 << j
+                cur = frac[:rows].copy()
+                np.multiply(cur, t[j], out=frac[1:2 * rows:2])
+                np.subtract(cur, frac[1:2 * rows:2], out=frac[0:2 * rows:2])
             idx = (base[None, :] + offsets[:, None]).ravel()
             near = None
             tt = t.T  # (rows, d) view for the factors
