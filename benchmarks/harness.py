@@ -13,6 +13,7 @@ import time
 from dataclasses import dataclass, field
 
 CASES: list[tuple[str, callable]] = []
+NOTES: list[str] = []
 
 
 def case(section: str):
@@ -20,6 +21,11 @@ def case(section: str):
         CASES.append((section, fn))
         return fn
     return deco
+
+
+def note(text: str) -> None:
+    """A sentence for the notes under the results table (how a case was measured)."""
+    NOTES.append(text)
 
 
 @dataclass
@@ -48,5 +54,14 @@ def best_of(fn, repeat: int = 3) -> tuple[float, object]:
     return best, out
 
 
+def cores() -> int:
+    """CPU cores this process may use (the affinity mask where the OS has one)."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:
+        return os.cpu_count() or 1
+
+
 def machine() -> str:
-    return f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}"
+    return (f"{platform.processor() or platform.machine()}, {cores()} cores available "
+            f"({os.cpu_count()} logical CPUs), Python {platform.python_version()}")

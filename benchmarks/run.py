@@ -19,9 +19,9 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
-from harness import CASES, machine  # noqa: E402
+from harness import CASES, NOTES, cores, machine  # noqa: E402
 
-MODULES = ["bench_exact", "bench_bandwidth", "bench_pipeline", "bench_memory"]
+MODULES = ["bench_exact", "bench_engines", "bench_bandwidth", "bench_pipeline", "bench_memory"]
 
 
 def fmt(x, digits=3):
@@ -40,31 +40,33 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     for m in MODULES:
         importlib.import_module(m)
+    print(f"machine: {machine()}", flush=True)
     lines = [
         "# mvkde benchmark results",
         "",
         f"Machine: {machine()}. Run: {_dt.datetime.now(_dt.timezone.utc):%Y-%m-%d %H:%M} UTC"
         + (" (smoke sizes: not a speed measurement)" if args.smoke else ""),
         "Command: `make bench` (`python benchmarks/run.py`). Ratio = reference time / mvkde time.",
+        f"Cores: {cores()}. mvkde and the references run single-threaded numpy/scipy code paths; "
+        "the machine may be shared, so compare ratios measured in the same run, not absolute times.",
         "",
     ]
-    current = None
+    sections: dict[str, list[str]] = {}
     for section, fn in CASES:
         if args.only and args.only not in section:
             continue
         print(f"== {section}: {fn.__name__}", flush=True)
-        rows = fn(args.smoke)
-        if section != current:
-            lines += [f"## {section}", "",
-                      "| case | mvkde (s) | reference | reference (s) | ratio | max error / peak | target | notes |",
-                      "|---|---|---|---|---|---|---|---|"]
-            current = section
-        for r in rows:
+        for r in fn(args.smoke):
             line = (f"| {r.name} | {fmt(r.mvkde_s)} | {r.reference or '-'} | {fmt(r.reference_s)} | "
                     f"{fmt(r.ratio)} | {fmt(r.max_error, 2)} | {r.target or '-'} | {r.notes} |")
             print(line, flush=True)
-            lines.append(line)
-        lines.append("")
+            sections.setdefault(section, []).append(line)
+    for section, rows in sections.items():
+        lines += [f"## {section}", "",
+                  "| case | mvkde (s) | reference | reference (s) | ratio | max error / peak | target | notes |",
+                  "|---|---|---|---|---|---|---|---|"] + rows + [""]
+    if NOTES:
+        lines += ["## Notes", ""] + [f"- {t}" for t in NOTES] + [""]
     Path(args.out).write_text("\n".join(lines) + "\n")
     print(f"wrote {args.out}")
     return 0
