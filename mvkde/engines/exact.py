@@ -49,10 +49,13 @@ def kernel_matrix(mk: MultivariateKernel, pc: np.ndarray, z: np.ndarray, z2h=Non
         g *= (2.0 * math.pi) ** (-0.5 * mk.d)
         return g
     if mk.is_radial:
-        if z2h is None:
-            z2h = 0.5 * np.einsum("ij,ij->i", z, z)
-        g = _neg_half_sq_dist(pc, z, z2h)
-        return mk.evaluate_radial(-2.0 * g)
+        # differences formed directly, one axis at a time: the kernels with a kink at the
+        # centre (triangular, uniform, cosine profiles in |z|) would turn the rounding of
+        # |p|^2 + |x|^2 - 2 p.x near zero into an error of order sqrt(eps) through |z|
+        r2 = (pc[:, None, 0] - z[None, :, 0]) ** 2
+        for j in range(1, mk.d):
+            r2 += (pc[:, None, j] - z[None, :, j]) ** 2
+        return mk.evaluate_radial(r2)
     out = mk.kernel.unit(pc[:, None, 0] - z[None, :, 0])
     for j in range(1, mk.d):
         out *= mk.kernel.unit(pc[:, None, j] - z[None, :, j])
