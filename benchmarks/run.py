@@ -21,7 +21,7 @@ sys.path.insert(0, str(HERE))
 
 from harness import CASES, machine  # noqa: E402
 
-MODULES = ["bench_exact", "bench_bandwidth", "bench_pipeline", "bench_memory"]
+MODULES = ["bench_exact", "bench_bandwidth", "bench_pipeline", "bench_memory", "bench_directional"]
 
 
 def fmt(x, digits=3):

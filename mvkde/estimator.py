@@ -834,6 +834,11 @@ class DensityEstimate:
         """Probability of the region where the density is at least ``level``."""
         return _products.mass_above(self, level, size=size)
 
+    def sector_table(self, direction, speed, sectors=16, speed_edges=None):
+        """Joint probability per direction sector and speed class (see
+        :func:`mvkde.products.sector_table`)."""
+        return _products.sector_table(self, direction, speed, sectors, speed_edges)
+
     def standard_error(self, points) -> np.ndarray:
         """Asymptotic pointwise standard error of the density at ``points``."""
         return _products.standard_error(self, self.pdf(points))
