@@ -643,8 +643,8 @@ def fit_estimate(values, w, names, units, spec: DirectionalSpec, mk, bandwidth, 
             conc[names[j]] = float(sm.kappa_sphere)
     est.concentrations = conc
     est.attrs["circular_variables"] = ", ".join(names[j] for j in spec.circular)
-    if spec.circular:
-        est.attrs["circular_periods"] = [float(spec.periods[j]) for j in spec.circular]
+    for j in spec.circular:
+        est.attrs[f"period_{names[j]}"] = float(spec.periods[j])
     if spec.sphere is not None:
         est.attrs["sphere_variables"] = ", ".join(est.sphere)
         est.attrs["earth_radius_km"] = _dir.EARTH_RADIUS_KM

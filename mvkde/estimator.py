@@ -700,7 +700,6 @@ class DensityEstimate:
             lat, lon = self.sphere
             coords[lat][2].setdefault("units", "degrees_north")
             coords[lon][2].setdefault("units", "degrees_east")
-            coords[lon][2]["period"] = 360.0
             area = node_areas_km2(axes[self.names.index(lat)], axes[self.names.index(lon)])
             coords["cell_area"] = ((lat, lon), area, {
                 "units": "km2", "long_name": "area of the Earth's surface each grid node stands for "

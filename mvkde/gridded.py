@@ -1207,9 +1207,9 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
         if settings.periods is not None and settings.periods[j] is not None:
             attrs["period"] = float(settings.periods[j])
         if v in sphere:
+            # no period attribute on the longitude: plot and inspect read a period as a circular
+            # variable to draw on a polar axis, and a location belongs on a map
             attrs.setdefault("units", "degrees_north" if sphere.index(v) == 0 else "degrees_east")
-            if sphere.index(v) == 1:
-                attrs["period"] = 360.0
         coords[v] = (v, ax, attrs)
     if sphere:
         from .directional import node_areas_km2

@@ -370,3 +370,14 @@ def test_bad_input_gives_clear_errors(rng):
         mvkde.fit(x, periods=[None, 360.0], bandwidth=[[1.0, 0.1], [0.1, 50.0]])
     with pytest.raises(InputError, match="part of the spherical location and has a period"):
         mvkde.fit(x - [180, 180], sphere=("x0", "x1"), periods=[None, 360.0])
+
+
+def test_grid_attributes_name_circular_variables_and_concentrations(rng):
+    df = wind_sample(rng, 100)
+    g = mvkde.fit(df, periods=[None, 360.0]).grid(16)
+    assert g.attrs["circular_variables"] == "direction"
+    assert g.attrs["period_direction"] == 360.0
+    assert g.attrs["concentration_direction"] > 0
+    assert "Taylor (2008)" in g.attrs["concentration_method_direction"]
+    assert "von Mises" in g.attrs["engine_reason"]
+    assert g["direction"].attrs["period"] == 360.0 and "period" not in g["speed"].attrs
