@@ -21,7 +21,8 @@ sys.path.insert(0, str(HERE))
 
 from harness import CASES, NOTES, cores, machine  # noqa: E402
 
-MODULES = ["bench_exact", "bench_engines", "bench_bandwidth", "bench_pipeline", "bench_memory"]
+MODULES = ["bench_exact", "bench_engines", "bench_bandwidth", "bench_pipeline", "bench_memory",
+           "bench_directional"]
 
 
 def fmt(x, digits=3):

@@ -36,6 +36,7 @@ Concentration rules
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 from scipy import optimize, special
@@ -188,190 +189,258 @@ def taylor_rule_from_kappa(k: float, n: float) -> float:
 
 
 # ---------------------------------------------------------------------------
-# cross-validation for mixed (circular x linear) product kernels
+# cross-validation: circular x spherical x linear (Gaussian) product kernels
 # ---------------------------------------------------------------------------
 
-def _pair_terms(theta, lin):
-    """cos of angle differences (n, n, c) and linear differences (n, n, l)."""
-    dc = np.cos(theta[:, None, :] - theta[None, :, :]) if theta.size else None
-    dl = lin[:, None, :] - lin[None, :, :] if lin.size else None
-    return dc, dl
+def _log_circle_kernel(k, cos_d):
+    """log VM_k at angle differences with cosine ``cos_d`` (per radian)."""
+    return k * (cos_d - 1.0) - math.log(2.0 * math.pi) - math.log(special.i0e(k))
 
 
-def _log_kernel_matrix(kappas, chol, dc, dl, n):
-    """log of the product kernel values for every pair (n, n), diagonal included."""
-    out = np.zeros((n, n))
-    if dc is not None:
-        for j, k in enumerate(kappas):
-            out += k * (dc[:, :, j] - 1.0) - math.log(2 * math.pi) - np.log(special.i0e(k))
-    if dl is not None:
-        L = chol
-        q = dl.shape[2]
-        z = np.linalg.solve(L, dl.reshape(-1, q).T).T.reshape(n, n, q)
-        out += -0.5 * np.sum(z * z, axis=2) - 0.5 * q * math.log(2 * math.pi) - np.sum(np.log(np.diag(L)))
-    return out
+def _log_circle_convolution(k, cos_d):
+    """log of int VM_k(t - a) VM_k(t - b) dt = I0(k sqrt(2 + 2 cos(a - b))) / (2 pi I0(k)^2)
+    (Hall, Watson & Cabrera 1987, Biometrika 74, Sec. 3)."""
+    r = k * np.sqrt(np.maximum(2.0 + 2.0 * cos_d, 0.0))
+    return np.log(special.i0e(r)) + r - 2.0 * k - math.log(2.0 * math.pi) - 2.0 * math.log(special.i0e(k))
+
+
+def log_vmf_kernel(k, dot):
+    """log vMF_k on S^2 at points whose unit vectors have inner product ``dot`` (per steradian):
+    k e^{k (dot - 1)} / (2 pi (1 - e^{-2k})), stable for any k > 0."""
+    return k * (dot - 1.0) + math.log(k) - math.log(2.0 * math.pi) - math.log(-math.expm1(-2.0 * k))
+
+
+def _log_sphere_convolution(k, dot):
+    """log of int vMF_k(x; a) vMF_k(x; b) dx = C(k)^2 / C(k |a + b|), C(k) = k / (4 pi sinh k)
+    (the product of two vMF kernels is an unnormalised vMF with mean k(a + b))."""
+    r = k * np.sqrt(np.maximum(2.0 + 2.0 * dot, 0.0))
+    return 2.0 * float(log_vmf_const(k)) - log_vmf_const(r)
+
+
+class PairTerms:
+    """Pairwise quantities of one sample that every cross-validation criterion reuses:
+    cosines of angle differences (one (n, n) matrix per circular variable), inner
+    products of unit vectors (sphere) and products of linear differences
+    ``(x_ia - x_ja)(x_ib - x_jb)`` for a <= b, so that a new H costs a weighted sum
+    of matrices instead of a triangular solve per pair."""
+
+    def __init__(self, theta=None, units=None, lin=None):
+        mats = [a for a in (theta, units, lin) if a is not None and np.size(a)]
+        self.n = mats[0].shape[0]
+        theta = np.zeros((self.n, 0)) if theta is None else np.asarray(theta, float).reshape(self.n, -1)
+        lin = np.zeros((self.n, 0)) if lin is None else np.asarray(lin, float).reshape(self.n, -1)
+        self.cos = [np.cos(theta[:, j][:, None] - theta[:, j][None, :]) for j in range(theta.shape[1])]
+        self.dot = None if units is None else np.clip(units @ units.T, -1.0, 1.0)
+        self.q = lin.shape[1]
+        self.products = {}
+        for a in range(self.q):
+            da = lin[:, a][:, None] - lin[:, a][None, :]
+            for b in range(a, self.q):
+                db = da if b == a else lin[:, b][:, None] - lin[:, b][None, :]
+                self.products[a, b] = da * db
+
+    def quadratic(self, Hinv, out):
+        """Add -(X_i - X_j)' H^{-1} (X_i - X_j) / 2 for every pair to ``out`` (in place)."""
+        tmp = np.empty_like(out)
+        for (a, b), p in self.products.items():
+            np.multiply(p, -0.5 * (Hinv[a, b] if a == b else 2.0 * Hinv[a, b]), out=tmp)
+            out += tmp
+        return out
+
+
+def _row_logsumexp(a: np.ndarray) -> np.ndarray:
+    """log sum_j exp(a_ij) per row; overwrites ``a`` (the matrices here are large and
+    scipy's general logsumexp copies them several times)."""
+    top = a.max(axis=1)
+    top[~np.isfinite(top)] = 0.0
+    a -= top[:, None]
+    np.exp(a, out=a)
+    with np.errstate(divide="ignore"):
+        return np.log(a.sum(axis=1)) + top
+
+
+@dataclass
+class CVResult:
+    """Concentrations and linear bandwidth matrix chosen by a cross-validation criterion."""
+
+    kappas: np.ndarray          # one per circular variable
+    kappa_sphere: float | None  # the spherical location's concentration, if any
+    H_lin: np.ndarray           # (q, q) Gaussian bandwidth matrix of the linear block
+    criterion: float
+    converged: bool
+    at_edge: bool
+    n_used: int
+    evaluations: int
+
+
+def _normal_scale_lin(lin, w, n_eff):
+    q = lin.shape[1]
+    cov = np.atleast_2d(np.cov(lin, rowvar=False, aweights=w))
+    return (4.0 / (q + 2.0)) ** (2.0 / (q + 4.0)) * n_eff ** (-2.0 / (q + 4.0)) * cov
+
+
+def cross_validate(criterion, theta=None, units=None, lin=None, weights=None, *, parametrization="full",
+                   max_n=2000, seed=0) -> CVResult:
+    """Joint cross-validation of von Mises concentrations (circular variables), a von
+    Mises-Fisher concentration (a location on S^2) and a Gaussian bandwidth matrix
+    for the linear variables, for the product kernel of all of them.
+
+    ``criterion`` is ``"mlcv"`` -- maximise the leave-one-out log-likelihood
+    sum_i w_i log f_{-i}(X_i) (Hall, Watson & Cabrera 1987, for the circular
+    and spherical kernels; Habbema, Hermans & van den Broek 1974) -- or
+    ``"lscv"``, minimise
+
+        int f^2 - 2 sum_i w_i f_{-i}(X_i),
+
+    where ``int f^2 = sum_{ij} w_i w_j C(X_i - X_j)`` with C the kernel convolved with
+    itself: I0(k sqrt(2 + 2 cos d)) / (2 pi I0(k)^2) on the circle (Hall, Watson &
+    Cabrera 1987), C(k)^2 / C(k |a + b|) for the vMF kernel and phi_{2H} for the
+    Gaussian (phi_A * phi_B = phi_{A+B}).  ``f_{-i}`` is the leave-one-out
+    estimate with weights renormalised over j != i.  Exact O(n^2) sums; a sample
+    larger than ``max_n`` is subsampled (seeded) for the selection.
+
+    ``theta``: (n, c) angles in radians; ``units``: (n, 3) unit vectors; ``lin``:
+    (n, q) linear values.  Optimised by Nelder-Mead over log-concentrations and the
+    Cholesky factor of H ('full'), its log-diagonal ('diagonal') or a log-multiple of
+    the normal-scale matrix ('scalar'), each within a bounded region around the
+    rules of thumb; ``at_edge`` flags an optimum on its edge (rounded or tied data
+    drive cross-validation to no smoothing).
+    """
+    arrays = [a for a in (theta, units, lin) if a is not None and np.size(a)]
+    n = arrays[0].shape[0]
+    theta = np.zeros((n, 0)) if theta is None else np.asarray(theta, float).reshape(n, -1)
+    lin = np.zeros((n, 0)) if lin is None else np.asarray(lin, float).reshape(n, -1)
+    w = None if weights is None else np.asarray(weights, float)
+    if n > max_n:
+        idx = np.random.default_rng(seed).choice(n, max_n, replace=False)
+        theta, lin = theta[idx], lin[idx]
+        units = None if units is None else units[idx]
+        w = None if w is None else w[idx]
+        n = max_n
+    w = np.full(n, 1.0 / n) if w is None else w / w.sum()
+    n_eff = 1.0 / float(np.sum(w * w))
+    c, q = theta.shape[1], lin.shape[1]
+    pairs = PairTerms(theta, units, lin)
+
+    # starting point: the rules of thumb
+    k0 = [max(taylor_rule_from_kappa(von_mises_mle(theta[:, j], w)[1], n_eff), 0.05) for j in range(c)]
+    ks0 = None if units is None else 1.0 / sphere_rule_h_from_kappa(vmf_mle_kappa(units, w), n_eff) ** 2
+    H0 = _normal_scale_lin(lin, w, n_eff) if q else np.zeros((0, 0))
+    if q and parametrization == "diagonal":
+        H0 = np.diag(np.diag(H0))
+    L0 = np.linalg.cholesky(H0) if q else H0
+    tril = np.tril_indices(q)
+
+    start, bounds = [], []
+    for k in k0 + ([ks0] if ks0 is not None else []):
+        start.append(math.log(k))
+        bounds.append((math.log(k) - 7.0, math.log(k) + 7.0))
+    if q:
+        if parametrization == "scalar":
+            start.append(0.0)
+            bounds.append((-8.0, 8.0))
+        elif parametrization == "diagonal":
+            for a in range(q):
+                v = math.log(L0[a, a])
+                start.append(v)
+                bounds.append((v - 4.0, v + 4.0))
+        else:
+            for a, b in zip(*tril):
+                v = math.log(L0[a, a]) if a == b else L0[a, b]
+                start.append(v)
+                bounds.append((v - 4.0, v + 4.0) if a == b else (None, None))
+    start = np.asarray(start)
+    n_dir = c + (ks0 is not None)
+
+    def unpack(p):
+        kap = np.exp(p[:c])
+        ks = math.exp(p[c]) if ks0 is not None else None
+        if not q:
+            return kap, ks, H0
+        rest = p[n_dir:]
+        if parametrization == "scalar":
+            return kap, ks, H0 * math.exp(rest[0])
+        L = np.zeros((q, q))
+        if parametrization == "diagonal":
+            L[np.diag_indices(q)] = np.exp(rest)
+        else:
+            L[tril] = rest
+            L[np.diag_indices(q)] = np.exp(L[np.diag_indices(q)])
+        return kap, ks, L @ L.T
+
+    logw = np.log(w)
+    self_share = np.log1p(-w)
+
+    def log_kernel(kap, ks, H, conv):
+        out = np.zeros((n, n))
+        for j, k in enumerate(kap):
+            out += (_log_circle_convolution if conv else _log_circle_kernel)(k, pairs.cos[j])
+        if ks is not None:
+            out += (_log_sphere_convolution if conv else log_vmf_kernel)(ks, pairs.dot)
+        if q:
+            Hs = 2.0 * H if conv else H
+            sign, logdet = np.linalg.slogdet(Hs)
+            pairs.quadratic(np.linalg.inv(Hs), out)
+            out -= 0.5 * q * math.log(2 * math.pi) + 0.5 * logdet
+        return out
+
+    evaluations = [0]
+
+    def objective(p):
+        evaluations[0] += 1
+        kap, ks, H = unpack(p)
+        lk = log_kernel(kap, ks, H, conv=False)
+        np.fill_diagonal(lk, -np.inf)
+        lk += logw[None, :]
+        loo = _row_logsumexp(lk) - self_share
+        if criterion == "mlcv":
+            return -float(np.sum(w * loo))
+        lc = log_kernel(kap, ks, H, conv=True)
+        lc += logw[None, :]
+        square = float(np.exp(_row_logsumexp(lc)) @ w)
+        return square - 2.0 * float(np.sum(w * np.exp(loo)))
+
+    if start.size == 1:
+        lo, hi = bounds[0]
+        res = optimize.minimize_scalar(lambda v: objective(np.array([v])), bounds=(lo, hi), method="bounded",
+                                       options={"xatol": 1e-4})
+        x, fun, ok = np.array([res.x]), float(res.fun), bool(res.success)
+    else:
+        simplex = np.vstack([start] + [start + 0.5 * np.eye(start.size)[i] for i in range(start.size)])
+        res = optimize.minimize(objective, start, method="Nelder-Mead", bounds=bounds,
+                                options={"xatol": 1e-4, "fatol": 1e-10, "initial_simplex": simplex,
+                                         "maxiter": 300 * start.size})
+        x, fun, ok = res.x, float(res.fun), bool(res.success)
+    at_edge = any(b[0] is not None and (v - b[0] < 1e-2 or b[1] - v < 1e-2) for v, b in zip(x, bounds))
+    kap, ks, H = unpack(x)
+    return CVResult(np.asarray(kap, float), ks, H, fun, ok, at_edge, n, evaluations[0])
 
 
 def likelihood_cv(theta, lin, weights=None, *, max_n=2000, seed=0):
-    """Concentrations and linear Gaussian H maximising the leave-one-out log-likelihood.
-
-    ``theta`` (n, c) angles in radians, ``lin`` (n, l) linear variables.
-    Returns (kappas (c,), H_lin (l, l), criterion, converged).
-    """
-    theta = np.atleast_2d(theta.T).T if theta.ndim == 1 else theta
-    n = theta.shape[0] if theta.size else lin.shape[0]
-    idx = np.arange(n)
-    if n > max_n:  # O(n^2): select on a random subsample, documented
-        idx = np.random.default_rng(seed).choice(n, max_n, replace=False)
-    th, li = theta[idx], lin[idx]
-    m = len(idx)
-    w = None if weights is None else weights[idx] / weights[idx].sum()
-    dc, dl = _pair_terms(th, li)
-    c, q = th.shape[1], li.shape[1]
-    k0 = np.array([max(taylor_rule(th[:, j]), 0.5) for j in range(c)])
-    if q:
-        cov = np.atleast_2d(np.cov(li.T))
-        L0 = np.linalg.cholesky(cov * m ** (-2.0 / (q + 4)))
-    else:
-        L0 = np.zeros((0, 0))
-    tril = np.tril_indices(q)
-
-    def unpack(p):
-        kap = np.exp(p[:c])
-        L = np.zeros((q, q))
-        if q:
-            L[tril] = p[c:]
-            L[np.diag_indices(q)] = np.exp(L[np.diag_indices(q)])
-        return kap, L
-
-    def loss(p):
-        kap, L = unpack(p)
-        lk = _log_kernel_matrix(kap, L, dc, dl, m)
-        np.fill_diagonal(lk, -np.inf)
-        if w is None:
-            lse = special.logsumexp(lk, axis=1) - math.log(m - 1)
-            return -float(np.mean(lse))
-        ww = np.broadcast_to(w, (m, m)).copy()
-        np.fill_diagonal(ww, 0.0)
-        ww /= ww.sum(axis=1, keepdims=True)
-        lse = special.logsumexp(lk, axis=1, b=ww)
-        return -float(np.sum(w * lse))
-
-    p0 = np.log(k0)
-    if q:
-        Lp = L0.copy()
-        Lp[np.diag_indices(q)] = np.log(np.diag(L0))
-        p0 = np.concatenate([p0, Lp[tril]])
-    res = optimize.minimize(loss, p0, method="Nelder-Mead",
-                            options={"xatol": 1e-4, "fatol": 1e-8, "maxiter": 400 * len(p0)})
-    kap, L = unpack(res.x)
-    return kap, L @ L.T, float(res.fun), bool(res.success)
+    """Joint likelihood CV for circular x linear Gaussian product kernels.
+    Returns (kappas, H_lin, criterion, converged); see :func:`cross_validate`."""
+    r = cross_validate("mlcv", theta=theta, lin=lin, weights=weights, max_n=max_n, seed=seed)
+    return r.kappas, r.H_lin, r.criterion, r.converged
 
 
-def lscv_mixed(theta, lin, *, max_n=2000, seed=0):
-    """Joint least-squares CV for von Mises x Gaussian product kernels.
-
-    LSCV = n^{-2} sum_{i,j} C_c(ij) C_l(ij) - 2 [n(n-1)]^{-1} sum_{i != j} K_c(ij) K_l(ij), with the
-    convolutions C_c = I0(k sqrt(2 + 2 cos d)) / (2 pi I0(k)^2) per circular variable (Hall,
-    Watson & Cabrera 1987) and C_l = phi_{2H}(d) for the linear block (phi_A * phi_B = phi_{A+B}).
-    Returns (kappas, H_lin, criterion, converged).
-    """
-    n = theta.shape[0]
-    idx = np.arange(n)
-    if n > max_n:
-        idx = np.random.default_rng(seed).choice(n, max_n, replace=False)
-    th, li = theta[idx], lin[idx]
-    m = len(idx)
-    dc, dl = _pair_terms(th, li)
-    c, q = th.shape[1], li.shape[1]
-    tril = np.tril_indices(q)
-    k0 = np.array([max(taylor_rule(th[:, j]), 0.5) for j in range(c)])
-    L0 = np.linalg.cholesky(np.atleast_2d(np.cov(li.T)) * m ** (-2.0 / (q + 4))) if q else np.zeros((0, 0))
-
-    def unpack(p):
-        kap = np.exp(p[:c])
-        L = np.zeros((q, q))
-        if q:
-            L[tril] = p[c:]
-            L[np.diag_indices(q)] = np.exp(L[np.diag_indices(q)])
-        return kap, L
-
-    def crit(p):
-        kap, L = unpack(p)
-        log_conv = np.zeros((m, m))
-        for j, k in enumerate(kap):
-            r = k * np.sqrt(np.maximum(2 + 2 * dc[:, :, j], 0.0))
-            log_conv += np.log(special.i0e(r)) + r - 2 * k - math.log(2 * math.pi) - 2 * np.log(special.i0e(k))
-        if q:
-            L2 = math.sqrt(2.0) * L
-            z = np.linalg.solve(L2, dl.reshape(-1, q).T).T.reshape(m, m, q)
-            log_conv += -0.5 * np.sum(z * z, axis=2) - 0.5 * q * math.log(2 * math.pi) - np.sum(np.log(np.diag(L2)))
-        term1 = np.exp(log_conv).sum() / m ** 2
-        lk = _log_kernel_matrix(kap, L, dc, dl, m)
-        np.fill_diagonal(lk, -np.inf)
-        term2 = 2.0 * np.exp(lk).sum() / (m * (m - 1))
-        return term1 - term2
-
-    p0 = np.log(k0)
-    if q:
-        Lp = L0.copy()
-        Lp[np.diag_indices(q)] = np.log(np.diag(L0))
-        p0 = np.concatenate([p0, Lp[tril]])
-    res = optimize.minimize(crit, p0, method="Nelder-Mead",
-                            options={"xatol": 1e-4, "fatol": 1e-12, "maxiter": 400 * len(p0)})
-    kap, L = unpack(res.x)
-    return kap, L @ L.T, float(res.fun), bool(res.success)
+def lscv_mixed(theta, lin, weights=None, *, max_n=2000, seed=0):
+    """Joint least-squares CV for circular x linear Gaussian product kernels.
+    Returns (kappas, H_lin, criterion, converged); see :func:`cross_validate`."""
+    r = cross_validate("lscv", theta=theta, lin=lin, weights=weights, max_n=max_n, seed=seed)
+    return r.kappas, r.H_lin, r.criterion, r.converged
 
 
 def lscv_circular(theta, weights=None, *, max_n=3000, seed=0):
-    """Concentration minimising least-squares CV for a von Mises kernel (one circular variable).
-
-    LSCV(k) = int f^2 - (2/n) sum_i f_{-i}(theta_i), with the closed form
-    int VM_k(t - a) VM_k(t - b) dt = I0(k sqrt(2 + 2 cos(a - b))) / (2 pi I0(k)^2)
-    (Hall, Watson & Cabrera 1987).
-    """
-    theta = np.asarray(theta, dtype=float).ravel()
-    n = theta.size
-    if n > max_n:
-        theta = np.random.default_rng(seed).choice(theta, max_n, replace=False)
-        n = max_n
-    dc = np.cos(theta[:, None] - theta[None, :])
-
-    def crit(logk):
-        k = math.exp(logk)
-        r = k * np.sqrt(np.maximum(2 + 2 * dc, 0.0))
-        # I0(r) / I0(k)^2 = i0e(r) e^{r - 2k} / i0e(k)^2
-        conv = special.i0e(r) * np.exp(r - 2 * k) / (2 * math.pi * special.i0e(k) ** 2)
-        term1 = conv.sum() / n ** 2
-        kv = np.exp(k * (dc - 1)) / (2 * math.pi * special.i0e(k))
-        np.fill_diagonal(kv, 0.0)
-        term2 = 2.0 * kv.sum() / (n * (n - 1))
-        return term1 - term2
-
-    k0 = max(taylor_rule(theta), 0.5)
-    res = optimize.minimize_scalar(crit, bounds=(math.log(k0) - 4, math.log(k0) + 4), method="bounded",
-                                   options={"xatol": 1e-5})
-    return float(math.exp(res.x)), float(res.fun), bool(res.success)
+    """Least-squares CV concentration for one circular variable: (kappa, criterion, converged)."""
+    r = cross_validate("lscv", theta=np.asarray(theta, float).reshape(-1, 1), weights=weights,
+                       max_n=max_n, seed=seed)
+    return float(r.kappas[0]), r.criterion, r.converged
 
 
 def likelihood_cv_sphere(units, weights=None, *, max_n=3000, seed=0):
-    """vMF concentration maximising the leave-one-out log-likelihood on S^2."""
-    n = units.shape[0]
-    if n > max_n:
-        units = units[np.random.default_rng(seed).choice(n, max_n, replace=False)]
-        n = max_n
-    g = units @ units.T
-    np.fill_diagonal(g, -np.inf)
-
-    def loss(logk):
-        k = math.exp(logk)
-        lk = log_vmf_const(k) + k * g
-        return -float(np.mean(special.logsumexp(lk, axis=1) - math.log(n - 1)))
-
-    k0 = 1.0 / sphere_rule_h(units) ** 2
-    res = optimize.minimize_scalar(loss, bounds=(math.log(k0) - 5, math.log(k0) + 5), method="bounded",
-                                   options={"xatol": 1e-5})
-    return float(math.exp(res.x)), float(res.fun), bool(res.success)
+    """Likelihood CV vMF concentration on S^2: (kappa, criterion, converged)."""
+    r = cross_validate("mlcv", units=units, weights=weights, max_n=max_n, seed=seed)
+    return float(r.kappa_sphere), r.criterion, r.converged
 
 
 def check_period(period, name) -> float:
@@ -391,3 +460,51 @@ def cell_areas_km2(lat_edges_deg, lon_edges_deg, radius_km=EARTH_RADIUS_KM) -> n
     band = np.abs(np.diff(np.sin(lat)))
     width = np.abs(np.diff(lon))
     return radius_km ** 2 * np.outer(band, width)
+
+
+def node_areas_km2(lat_deg, lon_deg, radius_km=EARTH_RADIUS_KM) -> np.ndarray:
+    """Surface area (km^2) each node of a lat/lon grid stands for, shape (lat, lon).
+
+    The trapezoid rule on the sphere: node (i, j) owns the band between the
+    midpoints of its latitude neighbours (cut at the grid's first and last
+    latitude) and the same in longitude, so ``R^2 (sin lat_hi - sin lat_lo)
+    (lon_hi - lon_lo)`` in radians.  Summed over a grid spanning the globe
+    (latitudes -90..90, longitudes -180..180) they give 4 pi R^2 exactly; the
+    density per km^2 times these areas sums to the probability of the grid.
+    """
+    lat = np.asarray(lat_deg, dtype=float)
+    lon = np.asarray(lon_deg, dtype=float)
+    lat_edges = np.concatenate([[lat[0]], 0.5 * (lat[1:] + lat[:-1]), [lat[-1]]])
+    lon_edges = np.concatenate([[lon[0]], 0.5 * (lon[1:] + lon[:-1]), [lon[-1]]])
+    return cell_areas_km2(lat_edges, lon_edges, radius_km)
+
+
+def unit_to_latlon(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Latitude and longitude (degrees, longitude in [-180, 180)) of unit vectors (..., 3)."""
+    lat = np.rad2deg(np.arcsin(np.clip(u[..., 2], -1.0, 1.0)))
+    lon = np.rad2deg(np.arctan2(u[..., 1], u[..., 0]))
+    lon = np.where(lon >= 180.0, lon - 360.0, lon)
+    return lat, lon
+
+
+def sample_vmf(means: np.ndarray, kappa: float, rng) -> np.ndarray:
+    """One draw from vMF(mean_i, kappa) on S^2 per row of ``means`` (m, 3).
+
+    On S^2 the cosine w of the angle to the mean has density proportional to
+    e^{kappa w} on [-1, 1], inverted in closed form: w = 1 + log(u + (1 - u) e^{-2 kappa}) / kappa
+    (Wood 1994, Commun. Statist. Simul. Comput. 23, 157-164, the p = 3 case); the
+    tangent direction is uniform.
+    """
+    m = means.shape[0]
+    u = rng.random(m)
+    wv = 1.0 + np.log(u + (1.0 - u) * math.exp(-2.0 * kappa)) / kappa
+    wv = np.clip(wv, -1.0, 1.0)
+    phi = rng.uniform(0.0, 2.0 * math.pi, m)
+    # an orthonormal tangent basis at each mean
+    helper = np.where(np.abs(means[:, [2]]) < 0.9, [[0.0, 0.0, 1.0]], [[1.0, 0.0, 0.0]])
+    e1 = np.cross(means, helper)
+    e1 /= np.linalg.norm(e1, axis=1, keepdims=True)
+    e2 = np.cross(means, e1)
+    s = np.sqrt(np.maximum(1.0 - wv * wv, 0.0))
+    out = wv[:, None] * means + s[:, None] * (np.cos(phi)[:, None] * e1 + np.sin(phi)[:, None] * e2)
+    return out / np.linalg.norm(out, axis=1, keepdims=True)

@@ -19,6 +19,7 @@ import pandas as pd
 import xarray as xr
 
 from . import boundary as _boundary
+from . import directional_fit as _directional
 from . import engines as _engines
 from . import products as _products
 from .bandwidth import BandwidthMatrix, BandwidthResult, PARAMETRIZATIONS, select
@@ -146,7 +147,8 @@ def _check_weights(weights, n):
 
 def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametrization="full",
         bounds=None, boundary=None, weights=None, periods=None, engine="auto",
-        names=None, units=None, point_masses=None, mask=None, outside="error") -> "DensityEstimate":
+        names=None, units=None, point_masses=None, mask=None, outside="error",
+        sphere=None) -> "DensityEstimate":
     """Fit a multivariate kernel density estimate.
 
     Parameters
@@ -181,7 +183,13 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
     weights : (n,) array or None
         Non-negative sample weights (normalised to sum to one).
     periods : list of float or None
-        Period per variable for circular variables, None for linear ones.
+        Period per variable for circular variables (360 for degrees, 365.25 for
+        the day of the year), None for linear ones.  A circular variable is
+        smoothed with the von Mises kernel in product with the others; its
+        data are taken modulo the period, its grid spans one period and
+        ``H`` holds its equivalent variance (period/2 pi)^2 / kappa
+        (``concentrations`` holds kappa).  See README, "Directions and
+        locations".
     engine : {"auto", "exact", ...}
         Evaluation engine; "auto" chooses and records why.
     names, units : list of str, optional
@@ -203,6 +211,12 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
         Data outside the bounds (or the mask): refuse with the count, the
         variable and the worst value, or drop them and record the count in
         ``attrs["n_dropped_outside_support"]``.
+    sphere : (str, str), optional
+        Names of a latitude and a longitude variable (degrees) forming one
+        location on the Earth: smoothed with the von Mises-Fisher kernel on
+        the unit sphere; the density is then per km^2 of the Earth's
+        surface (``mvkde.directional.node_areas_km2`` gives grid-node areas;
+        grids carry them as the ``cell_area`` coordinate).
 
     Returns
     -------
@@ -231,11 +245,10 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
     box = _boundary.parse_bounds(bounds, d, names)
     outside = check_choice("outside", outside, _boundary.OUTSIDE_OPTIONS)
     mask_spec = _boundary.parse_mask(mask, names) if mask is not None else None
-    if periods is not None:
-        if len(list(periods)) != d:
-            raise InputError(f"periods has {len(list(periods))} entries but the data have {d} variables")
-        if any(p is not None for p in periods):
-            raise InputError("circular variables (periods) are not supported yet; pass periods=None")
+    spec = _directional.parse(periods, sphere, names, d)
+    if spec is not None:
+        _directional.check_support(spec, values, box, names, point_masses, mask)
+        values = _directional.wrap(values, spec)
 
     # data outside the support: refuse, or drop and record how many
     out_rows = _boundary.outside_rows(values, box)
@@ -258,6 +271,13 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
         if n < d + 1:
             raise InputError(f"only {n} samples remain after dropping {n_dropped} outside the support: "
                              f"at least {d + 1} are needed")
+
+    if spec is not None:
+        est = _directional.fit_estimate(values, w, names, units, spec, mk, bandwidth, parametrization, box,
+                                        boundary, engine)
+        if n_dropped:
+            est.attrs["n_dropped_outside_support"] = n_dropped
+        return est
 
     if mask_spec is not None:
         if boundary not in (None, "renormalize", "mask"):
@@ -406,6 +426,17 @@ class DensityEstimate:
         self._point = point_mass
         self._mask = mask
         self.attrs: dict = dict(self._model.attrs)
+        #: period per variable (None for a linear one); set by fit(periods=...)
+        self.periods: list = [None] * len(self.names)
+        #: (latitude name, longitude name) of a spherical location, or None
+        self.sphere = None
+        #: concentration kappa of each directional variable's kernel (name -> kappa)
+        self.concentrations: dict = {}
+
+    @property
+    def is_directional(self) -> bool:
+        """True when a variable is circular or a pair is a location on the sphere."""
+        return self.sphere is not None or any(p is not None for p in self.periods)
 
     # -- point mass ------------------------------------------------------
     @property
@@ -541,6 +572,8 @@ class DensityEstimate:
         """
         if self._mask is not None:
             return [(float(ax[0]), float(ax[-1])) for ax in self._mask[1]]
+        if self.is_directional:
+            return self._directional_limits()
         if self.boundary == "transform":
             y = self._model.data
             reach = 4.0 * np.sqrt(np.diag(self.H))
@@ -562,6 +595,38 @@ class DensityEstimate:
         out = []
         for j, (blo, bhi) in enumerate(self.bounds):
             out.append((max(lo[j], blo), min(hi[j], bhi)))
+        return out
+
+    def _directional_limits(self) -> list[tuple[float, float]]:
+        """One period from 0 for a circular variable, the whole globe for a spherical
+        location, and the usual reach-widened data range for the linear variables."""
+        out = []
+        lat_lon = {} if self.sphere is None else {self.sphere[0]: (-90.0, 90.0), self.sphere[1]: (-180.0, 180.0)}
+        lin = [j for j, name in enumerate(self.names) if self.periods[j] is None and name not in lat_lon]
+        if lin:
+            H = self.H[np.ix_(lin, lin)]
+            if self.kernel.is_compact:
+                reach = np.sqrt(np.diag(H)) * (self.kernel.radius if self.kernel.is_radial
+                                               else self.kernel.kernel.unit_radius * math.sqrt(len(lin)))
+            else:
+                reach = 4.0 * np.sqrt(np.diag(H))
+            data = self.data[:, lin]
+            if self.boundary == "transform":
+                box = [self.bounds[j] for j in lin]
+                y = _boundary.forward_transform(data, box)
+                lo = _boundary.inverse_transform((y.min(axis=0) - reach)[None, :], box)[0]
+                hi = _boundary.inverse_transform((y.max(axis=0) + reach)[None, :], box)[0]
+            else:
+                lo, hi = data.min(axis=0) - reach, data.max(axis=0) + reach
+            lin_limits = {j: (max(float(min(a, b)), self.bounds[j][0]), min(float(max(a, b)), self.bounds[j][1]))
+                          for j, a, b in zip(lin, lo, hi)}
+        for j, name in enumerate(self.names):
+            if self.periods[j] is not None:
+                out.append((0.0, float(self.periods[j])))
+            elif name in lat_lon:
+                out.append(lat_lon[name])
+            else:
+                out.append(lin_limits[j])
         return out
 
     def _grid_spec(self, size, limits):
@@ -626,12 +691,32 @@ class DensityEstimate:
                 values *= total / values.sum()
                 attrs["negative_mass_clipped"] = 1
         coords = {name: (name, ax, {"units": u} if u else {}) for name, ax, u in zip(self.names, axes, self.units)}
+        for j, name in enumerate(self.names):
+            if self.periods[j] is not None:
+                coords[name][2]["period"] = float(self.periods[j])
+        if self.sphere is not None:
+            from .directional import node_areas_km2
+
+            lat, lon = self.sphere
+            coords[lat][2].setdefault("units", "degrees_north")
+            coords[lon][2].setdefault("units", "degrees_east")
+            area = node_areas_km2(axes[self.names.index(lat)], axes[self.names.index(lon)])
+            coords["cell_area"] = ((lat, lon), area, {
+                "units": "km2", "long_name": "area of the Earth's surface each grid node stands for "
+                "(trapezoid rule on the sphere); sum(density * cell_area) over the location is the probability"})
         return xr.DataArray(values, dims=self.names, coords=coords, name="density", attrs=attrs)
 
     def _grid_attrs(self) -> dict:
+        if self.sphere is not None:
+            rest = [u for n, u in zip(self.names, self.units) if n not in self.sphere]
+            other = density_units(rest)
+            units = "km-2" if other == "1" else f"km-2 {other}" if "/" not in other else \
+                "1/(km2 " + other[3:-1] + ")"
+        else:
+            units = density_units(self.units)
         attrs = {
             "long_name": "joint probability density of " + ", ".join(self.names),
-            "units": density_units(self.units),
+            "units": units,
             "kernel": self.kernel.name,
             "kernel_form": self.kernel.form,
             "bandwidth_matrix": self.H.ravel().tolist(),
@@ -697,7 +782,19 @@ class DensityEstimate:
         boundary = self.boundary if self.boundary not in ("mask",) else None
         if boundary not in (None, "none") and not _boundary.has_bounds(bounds):
             boundary = None
-        return {"bounds": bounds, "boundary": boundary}
+        out = {"bounds": bounds, "boundary": boundary}
+        if self.is_directional:
+            kept = [self.names[j] for j in idx]
+            if any(self.periods[j] is not None for j in idx):
+                out["periods"] = [self.periods[j] for j in idx]
+            if self.sphere is not None:
+                inside = [n for n in self.sphere if n in kept]
+                if len(inside) == 1:
+                    raise InputError(f"{inside[0]} is half of the spherical location {self.sphere}: keep both "
+                                     "or neither")
+                if inside:
+                    out["sphere"] = self.sphere
+        return out
 
     def marginal(self, names) -> "DensityEstimate":
         """Marginal estimate of ``names`` (exact: Gaussian kernel, or product kernel with the
@@ -735,6 +832,11 @@ class DensityEstimate:
     def mass_above(self, level, *, size=None) -> np.ndarray:
         """Probability of the region where the density is at least ``level``."""
         return _products.mass_above(self, level, size=size)
+
+    def sector_table(self, direction, speed, sectors=16, speed_edges=None):
+        """Joint probability per direction sector and speed class (see
+        :func:`mvkde.products.sector_table`)."""
+        return _products.sector_table(self, direction, speed, sectors, speed_edges)
 
     def standard_error(self, points) -> np.ndarray:
         """Asymptotic pointwise standard error of the density at ``points``."""

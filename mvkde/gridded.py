@@ -457,6 +457,7 @@ class CellSettings:
     seed: int
     n_splits: int
     n_cell_dims: int
+    sphere: list | None = None
     products: dict = field(default_factory=dict)
 
     @property
@@ -488,6 +489,8 @@ class CellSettings:
             kw["boundary"] = self.boundary
         if self.periods is not None:
             kw["periods"] = self.periods
+        if self.sphere is not None:
+            kw["sphere"] = tuple(self.sphere)
         if self.point_masses is not None:
             kw["point_masses"] = self.point_masses
         return kw
@@ -510,7 +513,7 @@ def settings_for(plan: Plan, axes) -> CellSettings:
         periods=periods if any(p is not None for p in periods) else None,
         engine=est["engine"], axes=[np.asarray(a, dtype=float) for a in axes] if axes else [],
         min_samples=inp["min_samples"], max_samples=inp["max_samples"], seed=est["seed"],
-        n_splits=plan.n_splits, n_cell_dims=len(plan.cell_dims),
+        n_splits=plan.n_splits, n_cell_dims=len(plan.cell_dims), sphere=est.get("sphere"),
         products=_cell_products(wf, plan))
 
 
@@ -563,7 +566,11 @@ def _probe_sample(settings: CellSettings, n: int = 60) -> np.ndarray:
         lo, hi = (settings.bounds[j] if settings.bounds and settings.bounds[j] else (-math.inf, math.inf))
         t = settings.point_masses[j] if settings.point_masses else None
         period = settings.periods[j] if settings.periods else None
-        if period is not None:
+        sphere = list(settings.sphere or [])
+        if settings.names[j] in sphere:
+            span = 60.0 if sphere.index(settings.names[j]) == 0 else 180.0
+            col = rng.uniform(-span, span, n)
+        elif period is not None:
             col = rng.uniform(0, period, n)
         elif math.isfinite(lo) and math.isfinite(hi):
             base = lo if t is None else t
@@ -595,11 +602,14 @@ def resolve_axes(plan: Plan, compute=None) -> list[np.ndarray]:
     wf = plan.workflow
     sizes = wf.grid_size()
     limits = dict(wf["grid"]["limits"])
-    todo = [v for v in plan.names if v not in limits and wf.variable(v)["period"] is None]
+    sphere = list(wf["estimator"].get("sphere") or [])
+    todo = [v for v in plan.names if v not in limits and wf.variable(v)["period"] is None and v not in sphere]
     bounded = [v for v in plan.names if wf.variable(v)["bounds"] is not None]
     for v in plan.names:
         if wf.variable(v)["period"] is not None and v not in limits:
             limits[v] = [0.0, wf.variable(v)["period"]]
+    for v, whole in zip(sphere, ([-90.0, 90.0], [-180.0, 180.0])):
+        limits.setdefault(v, whole)
     if todo or bounded:
         import dask
         import dask.array as da
@@ -746,7 +756,8 @@ def fit_and_evaluate(samples: list[np.ndarray], settings: CellSettings, keys=Non
     from . import engines as _engines
 
     plain = (settings.bounds is None and settings.point_masses is None and settings.periods is None
-             and isinstance(settings.bandwidth, str) and not settings.per_cell_products)
+             and settings.sphere is None and isinstance(settings.bandwidth, str)
+             and not settings.per_cell_products)
     if plain and samples and hasattr(_bandwidth, "select_many") and hasattr(_engines, "evaluate_grid_many"):
         try:
             return _batched(samples, settings, _bandwidth, _engines)
@@ -832,6 +843,21 @@ def process_block(values, codes, first_cell: int, tile_shape: tuple, settings: C
         if d > 1:
             out["density_at_point_mass"] = np.full((ncell, S) + other_shape, np.nan)
     weights = _trapezoid_weights(settings.axes)
+    if settings.sphere:
+        # a location on the sphere: node areas (km2) instead of trapezoid weights in degrees
+        from .directional import node_areas_km2
+
+        ia, ib = settings.names.index(settings.sphere[0]), settings.names.index(settings.sphere[1])
+        weights = np.ones(grid_shape)
+        for k, a in enumerate(settings.axes):
+            if k not in (ia, ib):
+                shape = [1] * d
+                shape[k] = -1
+                weights = weights * _trapezoid_weights([a]).reshape(shape)
+        shape = [1] * d
+        shape[ia], shape[ib] = len(settings.axes[ia]), len(settings.axes[ib])
+        area = node_areas_km2(settings.axes[ia], settings.axes[ib])
+        weights = weights * (area if ia < ib else area.T).reshape(shape)
     other_weights = _trapezoid_weights([a for k, a in enumerate(settings.axes) if k != j]) if (
         j is not None and d > 1) else None
 
@@ -1234,18 +1260,36 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
         coords[plan.split_dim] = (plan.split_dim, np.asarray(plan.split_labels),
                                   {"long_name": "meteorological season (DJF, MAM, JJA, SON)"
                                    if plan.split_dim == "season" else "month of the year"})
-    for v, ax, u in zip(names, settings.axes, units):
+    sphere = list(settings.sphere or [])
+    for j, (v, ax, u) in enumerate(zip(names, settings.axes, units)):
         attrs = {"long_name": plan.variable_attrs.get(v, {}).get("long_name", v)}
         if u:
             attrs["units"] = u
         if "standard_name" in plan.variable_attrs.get(v, {}):
             attrs["standard_name"] = plan.variable_attrs[v]["standard_name"]
+        if settings.periods is not None and settings.periods[j] is not None:
+            attrs["period"] = float(settings.periods[j])
+        if v in sphere:
+            # no period attribute on the longitude: plot and inspect read a period as a circular
+            # variable to draw on a polar axis, and a location belongs on a map
+            attrs.setdefault("units", "degrees_north" if sphere.index(v) == 0 else "degrees_east")
         coords[v] = (v, ax, attrs)
+    if sphere:
+        from .directional import node_areas_km2
+
+        ia, ib = names.index(sphere[0]), names.index(sphere[1])
+        area = node_areas_km2(settings.axes[ia], settings.axes[ib])
+        coords["cell_area"] = (tuple(sphere), area, {
+            "units": "km2", "long_name": "area of the Earth's surface each grid node stands for (trapezoid "
+                                         "rule on the sphere)"})
     coords["variable_row"] = ("variable_row", np.array(names))
     coords["variable_column"] = ("variable_column", np.array(names))
 
     j = settings.point_mass_index
     dens_units = density_units(units)
+    if sphere:
+        other = density_units([u for v, u in zip(names, units) if v not in sphere])
+        dens_units = "km-2" if other == "1" else f"km-2 {other}"
     long = "joint probability density of " + ", ".join(names)
     if j is not None:
         long += f" (continuous part: {names[j]} > {settings.point_masses[j]})"

@@ -68,6 +68,8 @@ def _plain(est) -> bool:
 # ---------------------------------------------------------------------------
 
 def marginal_is_exact(est, idx) -> bool:
+    if getattr(est, "is_directional", False):
+        return _directional_marginal_is_exact(est, idx)
     if est.kernel.name == "gaussian":
         return True
     if est.kernel.is_radial:
@@ -79,6 +81,56 @@ def marginal_is_exact(est, idx) -> bool:
     if sorted(idx) == list(range(len(idx))) and list(idx) == sorted(idx):
         return True
     return bool(np.all(est.H[np.ix_(idx, dropped)] == 0.0))
+
+
+def _linear_indices(est) -> list[int]:
+    sphere = getattr(est, "sphere", None) or ()
+    return [j for j, name in enumerate(est.names) if est.periods[j] is None and name not in sphere]
+
+
+def _directional_marginal_is_exact(est, idx) -> bool:
+    """Directional factors are separate factors of the product kernel: dropping them is
+    exact; the linear block follows the usual rules; the spherical pair goes as one."""
+    if est.sphere is not None and sum(est.names[j] in est.sphere for j in idx) == 1:
+        return False
+    lin = _linear_indices(est)
+    kept = [j for j in idx if j in lin]
+    dropped = [j for j in lin if j not in idx]
+    if not kept or not dropped or est.kernel.name == "gaussian":
+        return True
+    if est.kernel.is_radial:
+        return False
+    pos = [lin.index(j) for j in kept]
+    if pos == list(range(len(pos))):
+        return True
+    return bool(np.all(est.H[np.ix_(kept, dropped)] == 0.0))
+
+
+def node_weights(g: xr.DataArray) -> np.ndarray:
+    """Integration weight of every node of a gridded density (same shape as ``g``).
+
+    Trapezoid weights along each axis (on an axis spanning exactly one period
+    with both ends, the periodic trapezoid rule); along a latitude/longitude
+    pair carrying a ``cell_area`` coordinate, the node areas instead.
+    """
+    area_dims = tuple(g["cell_area"].dims) if "cell_area" in g.coords else ()
+    w = np.ones(g.shape)
+    for ax, dim in enumerate(g.dims):
+        if dim in area_dims:
+            continue
+        x = np.asarray(g[dim].values, dtype=float)
+        t = np.zeros(x.size)
+        if x.size > 1:
+            dx = np.diff(x)
+            t[:-1] += dx / 2
+            t[1:] += dx / 2
+        shape = [1] * g.ndim
+        shape[ax] = -1
+        w = w * t.reshape(shape)
+    if area_dims:
+        w = w * g["cell_area"].transpose(*[d for d in g.dims if d in area_dims]).values.reshape(
+            [g.sizes[d] if d in area_dims else 1 for d in g.dims])
+    return w
 
 
 def marginal(est, names):
@@ -114,16 +166,35 @@ def marginal_grid(est, names, size=None, limits=None) -> xr.DataArray:
     idx = _names_index(est, names)
     full = est.grid(size or DEFAULT_GRID.get(est.d, 24), limits)
     axes = [full[n].values for n in est.names]
-    vals = _integrate_out(full.values, axes, idx)
+    sphere = getattr(est, "sphere", None)
+    if sphere is not None and sum(est.names[j] in sphere for j in idx) == 1:
+        raise InputError(f"{', '.join(sphere)} form one location on the sphere: keep both or neither")
+    if sphere is not None and not any(est.names[j] in sphere for j in idx):
+        # integrate the location out with the node areas (density per km^2)
+        ia, ib = est.names.index(sphere[0]), est.names.index(sphere[1])
+        shape = [1] * est.d
+        shape[ia], shape[ib] = full.sizes[sphere[0]], full.sizes[sphere[1]]
+        area = full["cell_area"].transpose(*sorted(sphere, key=est.names.index)).values
+        summed = (full.values * area.reshape(shape)).sum(axis=(ia, ib), keepdims=True)
+        rest = [j for j in range(est.d) if j not in (ia, ib)]
+        vals = _integrate_out(np.squeeze(summed, axis=(ia, ib)), [axes[j] for j in rest],
+                              [rest.index(j) for j in idx])
+    else:
+        vals = _integrate_out(full.values, axes, idx)
     # _integrate_out keeps kept axes in their original order; reorder as requested
     order = np.argsort(np.argsort(idx))
     vals = np.transpose(vals, order) if vals.ndim > 1 else vals
     kept = [est.names[j] for j in idx]
     coords = {n: full[n] for n in kept}
+    if sphere is not None and sphere[0] in kept:
+        coords["cell_area"] = full["cell_area"]
     attrs = dict(full.attrs)
     attrs["long_name"] = "marginal probability density of " + ", ".join(kept)
     from .units import density_units
     attrs["units"] = density_units([est.units[j] for j in idx])
+    if sphere is not None and sphere[0] in kept:
+        other = density_units([est.units[j] for j in idx if est.names[j] not in sphere])
+        attrs["units"] = "km-2" if other == "1" else f"km-2 {other}"
     return xr.DataArray(vals, dims=kept, coords=coords, name="marginal_density", attrs=attrs)
 
 
@@ -133,7 +204,13 @@ def marginal_grid(est, names, size=None, limits=None) -> xr.DataArray:
 
 def _exact_cdf_available(est) -> bool:
     return _plain(est) and (not est.kernel.is_radial) and _is_diagonal(est.H) \
-        and est.kernel.kernel.order in (2, 4)
+        and est.kernel.kernel.order in (2, 4) and not getattr(est, "is_directional", False)
+
+
+def _refuse_sphere(est, what: str) -> None:
+    if getattr(est, "sphere", None) is not None:
+        raise InputError(f"{what} is not defined for a location on the sphere ({', '.join(est.sphere)}): "
+                         "use marginal_grid, conditional or hdr_levels, or drop the location")
 
 
 def _exact_cdf(est, pts, upper: bool) -> np.ndarray:
@@ -206,6 +283,7 @@ def _point_mass_part(est, pts, upper: bool, size) -> np.ndarray:
 def cdf(est, points, *, size=None, limits=None) -> np.ndarray:
     """P(X_1 <= x_1, ..., X_d <= x_d) at each point (point masses included)."""
     pts = est._points(points)
+    _refuse_sphere(est, "the joint CDF")
     if _exact_cdf_available(est):
         return _exact_cdf(est, pts, upper=False)
     axes, vals, _ = _grid_cumulative(est, size, limits, upper=False)
@@ -215,6 +293,7 @@ def cdf(est, points, *, size=None, limits=None) -> np.ndarray:
 def exceedance(est, points, *, size=None, limits=None) -> np.ndarray:
     """P(X_1 > x_1, ..., X_d > x_d) at each point (joint exceedance, point masses included)."""
     pts = est._points(points)
+    _refuse_sphere(est, "the joint exceedance probability")
     if _exact_cdf_available(est):
         return _exact_cdf(est, pts, upper=True)
     axes, vals, _ = _grid_cumulative(est, size, limits, upper=True)
@@ -270,9 +349,11 @@ def hdr_levels_from_grid(values: np.ndarray, cell_volume: float, masses) -> np.n
     masses = np.atleast_1d(np.asarray(masses, dtype=float))
     if np.any((masses <= 0) | (masses >= 1)):
         raise InputError("HDR masses must lie strictly between 0 and 1")
-    f = np.sort(np.asarray(values, dtype=float).ravel())[::-1]
-    f = np.maximum(f, 0.0)
-    cum = np.cumsum(f) * cell_volume
+    values = np.asarray(values, dtype=float)
+    weight = np.broadcast_to(np.asarray(cell_volume, dtype=float), values.shape).ravel()
+    order = np.argsort(values.ravel())[::-1]
+    f = np.maximum(values.ravel()[order], 0.0)
+    cum = np.cumsum(f * weight[order])
     total = cum[-1]
     if total <= 0:
         return np.full(masses.shape, np.nan)
@@ -283,25 +364,30 @@ def hdr_levels_from_grid(values: np.ndarray, cell_volume: float, masses) -> np.n
 
 def mass_above_from_grid(values: np.ndarray, cell_volume: float, level) -> np.ndarray:
     v = np.maximum(np.asarray(values, dtype=float).ravel(), 0.0)
-    total = v.sum()
+    m = v * np.broadcast_to(np.asarray(cell_volume, dtype=float), np.shape(values)).ravel()
+    total = m.sum()
     level = np.atleast_1d(np.asarray(level, dtype=float))
-    return np.array([v[v >= lv].sum() / total if total > 0 else np.nan for lv in level])
+    return np.array([m[v >= lv].sum() / total if total > 0 else np.nan for lv in level])
 
 
-def _cell_volume(g: xr.DataArray) -> float:
+def _cell_volume(g: xr.DataArray, est=None):
+    """Weight of a grid node: the uniform cell volume, or per-node weights for a
+    directional estimate (periodic axes, areas on the sphere)."""
+    if est is not None and getattr(est, "is_directional", False):
+        return node_weights(g)
     return float(np.prod([g[n].values[1] - g[n].values[0] for n in g.dims]))
 
 
 def hdr_levels(est, masses=DEFAULT_HDR_MASSES, *, size=None, limits=None) -> np.ndarray:
     """Density levels enclosing ``masses`` of the probability (highest-density regions)."""
     g = est.grid(size or DEFAULT_GRID.get(est.d, 24), limits)
-    return hdr_levels_from_grid(g.values, _cell_volume(g), masses)
+    return hdr_levels_from_grid(g.values, _cell_volume(g, est), masses)
 
 
 def mass_above(est, level, *, size=None, limits=None) -> np.ndarray:
     """Probability mass of the region where the density is at least ``level``."""
     g = est.grid(size or DEFAULT_GRID.get(est.d, 24), limits)
-    return mass_above_from_grid(g.values, _cell_volume(g), level)
+    return mass_above_from_grid(g.values, _cell_volume(g, est), level)
 
 
 # ---------------------------------------------------------------------------
@@ -427,11 +513,16 @@ def bootstrap_bands(est, points=None, *, kind="density", level=0.9, replicates=2
     return lo, hi
 
 
-def sector_table(est, direction: str, speed: str, sectors=16, speed_edges=None, *, size=None):
-    """Joint probabilities per direction sector and speed class (numbers for a wind rose).
+def sector_table(est, direction: str, speed: str, sectors=16, speed_edges=None, *, nodes=8):
+    """Joint probabilities per direction sector and speed class (the numbers of a wind rose).
 
-    Integrates the gridded joint density over each sector x class cell; the
-    direction variable is taken in degrees on [0, 360).
+    Sector k is centred on ``k * period / sectors`` (north = 0 for degrees) and spans
+    half a sector width each side, across the wrap for sector 0.  Speed classes are
+    ``[speed_edges[c], speed_edges[c + 1])``; by default the lower bound (or the grid's
+    lower limit), the sample quartiles and the grid's upper limit.  Each sector x
+    class cell is integrated with ``nodes``-point Gauss-Legendre rules in direction
+    and (three panels) in speed, so no grid node is counted twice at the wrap.
+    The estimate's other variables, if any, are refused: condition first.
     """
     di, si = _names_index(est, [direction, speed])
     if est.d != 2:
@@ -439,27 +530,50 @@ def sector_table(est, direction: str, speed: str, sectors=16, speed_edges=None, 
     sectors = int(sectors)
     if sectors < 2:
         raise InputError("sectors must be at least 2")
-    width = 360.0 / sectors
-    g = est.grid(size or 256)
-    d_ax = g[direction].values
-    s_ax = g[speed].values
-    vals = g.values if di == 0 else g.values.T
+    periods = getattr(est, "periods", [None] * est.d)
+    period = periods[di] if periods[di] is not None else 360.0
+    if periods[si] is not None:
+        raise InputError(f"sector_table: speed variable {speed!r} is circular; pass the linear variable as speed")
+    width = period / sectors
+    limits = est.default_limits()
     if speed_edges is None:
         speed_edges = np.quantile(est.data[:, si], [0, .25, .5, .75, 1.0])
-        speed_edges[0], speed_edges[-1] = s_ax[0], s_ax[-1]
+        speed_edges[0], speed_edges[-1] = limits[si][0], limits[si][1]
     speed_edges = np.asarray(speed_edges, dtype=float)
-    cell = (d_ax[1] - d_ax[0]) * (s_ax[1] - s_ax[0])
-    centred = np.mod(d_ax + width / 2, 360.0)
-    sec = np.floor(centred / width).astype(int) % sectors
-    cls = np.clip(np.searchsorted(speed_edges, s_ax, side="right") - 1, 0, speed_edges.size - 2)
-    table = np.zeros((sectors, speed_edges.size - 1))
-    np.add.at(table, (sec[:, None].repeat(s_ax.size, 1), cls[None, :].repeat(d_ax.size, 0)), vals * cell)
+    if speed_edges.ndim != 1 or speed_edges.size < 2 or np.any(np.diff(speed_edges) <= 0) \
+            or not np.all(np.isfinite(speed_edges)):
+        raise InputError("speed_edges must be at least two finite, increasing values")
+    gx, gw = np.polynomial.legendre.leggauss(int(nodes))
+    # direction nodes: every sector, Gauss-Legendre inside [centre - width/2, centre + width/2)
     centres = np.arange(sectors) * width
+    dnodes = (centres[:, None] + 0.5 * width * gx[None, :]).ravel()
+    dweights = np.tile(0.5 * width * gw, sectors)
+    # speed nodes: three panels per class
+    panels = 3
+    s_nodes, s_weights, s_class = [], [], []
+    for c in range(speed_edges.size - 1):
+        edges = np.linspace(speed_edges[c], speed_edges[c + 1], panels + 1)
+        for a, b in zip(edges[:-1], edges[1:]):
+            s_nodes.append(0.5 * (a + b) + 0.5 * (b - a) * gx)
+            s_weights.append(0.5 * (b - a) * gw)
+            s_class.append(np.full(gx.size, c))
+    s_nodes, s_weights, s_class = map(np.concatenate, (s_nodes, s_weights, s_class))
+    D, S = np.meshgrid(np.mod(dnodes, period), s_nodes, indexing="ij")
+    pts = np.empty((D.size, 2))
+    pts[:, di], pts[:, si] = D.ravel(), S.ravel()
+    f = est.pdf(pts).reshape(D.shape) * dweights[:, None] * s_weights[None, :]
+    per_sector = f.reshape(sectors, int(nodes), -1).sum(axis=1)
+    table = np.zeros((sectors, speed_edges.size - 1))
+    for c in range(speed_edges.size - 1):
+        table[:, c] = per_sector[:, s_class == c].sum(axis=1)
+    unit = est.units[di] if est.units[di] else ("degree" if period == 360.0 else "")
     return xr.DataArray(table, dims=("sector", "speed_class"),
-                        coords={"sector": ("sector", centres, {"units": "degree", "long_name": "sector centre"}),
+                        coords={"sector": ("sector", centres, {"units": unit, "long_name": "sector centre"}),
                                 "speed_lower": ("speed_class", speed_edges[:-1]),
                                 "speed_upper": ("speed_class", speed_edges[1:])},
                         name="sector_probability",
                         attrs={"long_name": "joint probability per direction sector and speed class",
-                               "units": "1"})
-
+                               "units": "1", "sector_width": float(width),
+                               "total_probability": float(table.sum()),
+                               "note": "sectors centred on multiples of the width; speed classes "
+                                       "[lower, upper); mass beyond the outer speed edges is not counted"})

@@ -377,6 +377,10 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                                         "(used only when bounds are declared)", "boundary"),
         "engine": Key("auto", _choice("engine"), "evaluation engine", "engine"),
         "seed": Key(0, _int(lo=0), "seed of every random step (subsampling); recorded in the provenance"),
+        "sphere": Key(None, _str_list(optional=True), "[latitude, longitude]: two of input.variables (degrees) "
+                                                      "forming one location on the Earth, smoothed with the von "
+                                                      "Mises-Fisher kernel; the density is then per km2 and the "
+                                                      "output has a cell_area coordinate"),
     },
     "grid": {
         "size": Key([64], _size, "nodes per variable (one number for all, or one per variable)"),
@@ -662,6 +666,20 @@ def _cross_checks(spec: dict, source: str) -> None:
             BandwidthMatrix.from_matrix(H, d, argument=f"{source}: estimator.bandwidth")
         except MvkdeError as exc:
             raise ConfigError(str(exc)) from None
+    sphere = spec["estimator"]["sphere"]
+    if sphere is not None:
+        if len(sphere) != 2:
+            raise ConfigError(f"{source}: estimator.sphere = {sphere} must name two variables: "
+                              "[latitude, longitude]")
+        missing = [v for v in sphere if v not in names]
+        if missing:
+            raise ConfigError(f"{source}: estimator.sphere names {missing}, not in input.variables = {names}")
+        for v in sphere:
+            table = spec["variables"][v]
+            for key in ("bounds", "period", "point_mass"):
+                if table[key] is not None:
+                    raise ConfigError(f"{source}: variables.{v}.{key} is set but {v} is part of the spherical "
+                                      f"location estimator.sphere: drop variables.{v}.{key}")
     masses = [v for v in names if spec["variables"][v]["point_mass"] is not None]
     if len(masses) > 1:
         raise ConfigError(f"{source}: point_mass is set for {masses}: at most one variable may carry a "

@@ -1,0 +1,84 @@
+"""Directional estimates: mvkde's factorised direct sums against sums of scipy.stats densities."""
+
+from __future__ import annotations
+
+import math
+import time
+
+import numpy as np
+from scipy import stats
+
+import mvkde
+from mvkde import directional as D
+from harness import Row, best_of, case
+
+
+@case("directional")
+def wind_grid(smoke: bool):
+    """Speed x direction grid (reflection at speed 0) vs scipy.stats.vonmises x norm summed over the data."""
+    n, size = (500, (32, 37)) if smoke else (4_000, (64, 73))
+    rng = np.random.default_rng(3)
+    direction = np.mod(np.rad2deg(rng.vonmises(2.0, 1.5, n)), 360.0)
+    speed = rng.gamma(2.0, 3.0, n)
+    est = mvkde.fit(np.column_stack([speed, direction]), periods=[None, 360.0], bounds=[(0, None), None],
+                    boundary="reflect")
+    t_m, g = best_of(lambda: est.grid(size, limits={"x0": (0.0, 40.0)}))
+    h = math.sqrt(est.H[0, 0])
+    kappa = est.concentrations["x1"]
+    S, A = np.meshgrid(g["x0"].values, np.deg2rad(g["x1"].values), indexing="ij")
+
+    def reference():
+        out = np.zeros(S.size)
+        theta = np.deg2rad(direction)
+        for a in range(0, n, 200):                 # chunks of data: (m, 200) matrices
+            sl = slice(a, a + 200)
+            vm = stats.vonmises.pdf(A.ravel()[:, None] - theta[None, sl], kappa) * 2 * math.pi / 360
+            lin = stats.norm.pdf(S.ravel()[:, None], speed[None, sl], h) + \
+                stats.norm.pdf(S.ravel()[:, None], -speed[None, sl], h)
+            out += (vm * lin).sum(axis=1)
+        return out / n
+
+    t_r, r = best_of(reference, repeat=1)
+    err = np.abs(g.values.ravel() - r).max() / r.max()
+    return [Row(f"speed x direction, n={n}, {size[0]}x{size[1]} grid, reflect", t_m,
+                "scipy.stats vonmises x norm, chunked sums", t_r, err, target="ratio >= 1")]
+
+
+@case("directional")
+def sphere_grid(smoke: bool):
+    """Lat/lon grid of a vMF estimate vs scipy.stats.vonmises_fisher summed over the data."""
+    n, size = (200, (61, 121)) if smoke else (1_000, (181, 361))
+    rng = np.random.default_rng(4)
+    u = D.sample_vmf(np.tile(D.lonlat_to_unit(-15.0, 179.0), (n, 1)), 30.0, rng)
+    lat, lon = D.unit_to_latlon(u)
+    est = mvkde.fit(np.column_stack([lat, lon]), sphere=("lat", "lon"), names=["lat", "lon"])
+    t_m, g = best_of(lambda: est.grid(size))
+    kappa = est.concentrations["lat"]
+    LA, LO = np.meshgrid(g["lat"].values, g["lon"].values, indexing="ij")
+    x = D.lonlat_to_unit(LA.ravel(), LO.ravel())
+
+    def reference():
+        out = np.zeros(x.shape[0])
+        for i in range(n):
+            out += stats.vonmises_fisher(u[i], kappa).pdf(x)
+        return out / n / D.EARTH_RADIUS_KM ** 2
+
+    t_r, r = best_of(reference, repeat=1)
+    err = np.abs(g.values.ravel() - r).max() / r.max()
+    return [Row(f"location on the sphere, n={n}, {size[0]}x{size[1]} grid", t_m,
+                "scipy.stats.vonmises_fisher per datum", t_r, err, target="ratio >= 1")]
+
+
+@case("directional")
+def joint_cv(smoke: bool):
+    """Joint likelihood / least-squares CV of kappa and the speed bandwidth (no reference library)."""
+    rows = []
+    for n in ((300,) if smoke else (500, 2000)):
+        rng = np.random.default_rng(5)
+        x = np.column_stack([rng.gamma(2.0, 3.0, n), np.mod(np.rad2deg(rng.vonmises(2.0, 1.5, n)), 360.0)])
+        for method in ("mlcv", "lscv"):
+            t0 = time.perf_counter()
+            mvkde.fit(x, periods=[None, 360.0], bandwidth=method)
+            rows.append(Row(f"{method} joint (kappa, h), n={n}", time.perf_counter() - t0,
+                            notes="exact O(n^2) sums, Nelder-Mead"))
+    return rows

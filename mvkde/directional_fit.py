@@ -1,0 +1,667 @@
+"""Estimates with circular variables and spherical locations: ``fit(periods=..., sphere=...)``.
+
+The kernel is a product: a von Mises kernel per circular variable (angle
+``2 pi x / period``), a von Mises-Fisher kernel for a latitude/longitude pair
+declared as one location on the sphere, and the chosen kernel (with its
+bandwidth matrix H) on the remaining, linear, variables:
+
+    f(x) = sum_i w_i  prod_c VM_{k_c}(x_c - X_ic) (2 pi / P_c)
+                      vMF_{k_s}(u(x) . u(X_i)) / R^2
+                      |H|^{-1/2} K(L^{-1}(x_lin - X_i,lin)).
+
+Units: a circular factor is a density per unit of the variable (per degree
+for P = 360); the spherical factor is per km^2 of the Earth's surface (R the
+mean radius).  Boundary correction acts on the linear block only (the
+directional factors have no boundary): reflection, transformation or none.
+
+Evaluation is by chunked direct sums: ``(m_chunk, n)`` matrices of the log
+directional kernels and of the linear kernel (through
+:func:`mvkde.engines.exact.kernel_matrix` on whitened coordinates).  On a grid
+the estimate factorises as ``D diag(w) B'``, D the directional kernels at the
+directional nodes and B the linear kernels at the linear nodes, so a grid is
+one matrix product per pair of chunks.
+
+References
+----------
+Hall, P., Watson, G. S. & Cabrera, J. (1987). Kernel density estimation with
+spherical data. Biometrika 74, 751-762.
+Taylor, C. C. (2008). Automatic bandwidth selection for circular density
+estimation. Computational Statistics & Data Analysis 52, 3493-3500.
+Garcia-Portugues, E. (2013). Exact risk improvement of bandwidth selectors for
+kernel density estimation with directional data. Electronic Journal of
+Statistics 7, 1655-1685.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import directional as _dir
+from .bandwidth import BandwidthMatrix, BandwidthResult, kernel_rescaling, select
+from .boundary.methods import axis_reach, forward_transform, inverse_transform
+from .engines import EngineChoice
+from .engines.exact import CHUNK_ELEMENTS, kernel_matrix
+from .errors import InputError
+from .kernels import get_multivariate_kernel
+
+#: boundary methods available for the linear block of a directional estimate
+DIRECTIONAL_BOUNDARY = ("none", "reflect", "transform")
+#: default for a bounded linear variable in a directional estimate
+DIRECTIONAL_DEFAULT_BOUNDARY = "reflect"
+
+
+# ---------------------------------------------------------------------------
+# the declaration: which variables are circular, which pair is a location
+# ---------------------------------------------------------------------------
+
+@dataclass
+class DirectionalSpec:
+    """Indices of the circular variables (with periods), of the spherical pair and of
+    the linear variables, in the data's column order."""
+
+    periods: list                      # one entry per variable: period or None
+    sphere: tuple | None = None        # (lat index, lon index)
+    circular: list = field(default_factory=list)
+    linear: list = field(default_factory=list)
+
+    @property
+    def directional(self) -> list:
+        out = list(self.circular)
+        if self.sphere is not None:
+            out += list(self.sphere)
+        return sorted(out)
+
+
+def parse(periods, sphere, names, d) -> DirectionalSpec | None:
+    """Validate ``periods`` and ``sphere``; None when every variable is linear."""
+    plist = [None] * d
+    if periods is not None:
+        try:
+            items = list(periods)
+        except TypeError:
+            raise InputError("periods must be a list with one entry (None or a period) per variable") from None
+        if len(items) != d:
+            raise InputError(f"periods has {len(items)} entries but the data have {d} variables "
+                             f"({', '.join(names)}): give None for each linear variable")
+        plist = [None if p is None else _dir.check_period(p, names[j]) for j, p in enumerate(items)]
+    pair = None
+    if sphere is not None:
+        if isinstance(sphere, str) or len(list(sphere)) != 2:
+            raise InputError(f"sphere must name two variables (latitude, longitude), got {sphere!r}")
+        lat, lon = [str(s) for s in sphere]
+        missing = [s for s in (lat, lon) if s not in names]
+        if missing:
+            raise InputError(f"sphere names {', '.join(repr(m) for m in missing)}, not among the variables "
+                             f"{names}: give the latitude and longitude variables' names")
+        if lat == lon:
+            raise InputError(f"sphere must name two different variables, got {lat!r} twice")
+        pair = (names.index(lat), names.index(lon))
+        both = [names[j] for j in pair if plist[j] is not None]
+        if both:
+            raise InputError(f"{', '.join(both)} is part of the spherical location and has a period: "
+                             "drop the period (longitude wraps on the sphere anyway)")
+    if pair is None and all(p is None for p in plist):
+        return None
+    circular = [j for j, p in enumerate(plist) if p is not None]
+    linear = [j for j in range(d) if j not in circular and (pair is None or j not in pair)]
+    return DirectionalSpec(plist, pair, circular, linear)
+
+
+def check_support(spec: DirectionalSpec, values, box, names, point_masses, mask) -> None:
+    """Refuse what a directional estimate cannot honour, before any selection."""
+    for j in spec.directional:
+        lo, hi = box[j]
+        if math.isfinite(lo) or math.isfinite(hi):
+            kind = "circular" if j in spec.circular else "part of the spherical location"
+            raise InputError(f"{names[j]} is {kind} and cannot have bounds: remove its entry in bounds= "
+                             "(use None)")
+    if point_masses is not None and any(point_masses[j] is not None for j in spec.directional
+                                        if j < len(point_masses)):
+        raise InputError("point_masses on a circular or spherical variable is not supported: "
+                         "declare the point mass on a linear variable")
+    if point_masses is not None and any(t is not None for t in point_masses):
+        raise InputError("point_masses together with circular variables or a spherical location is not "
+                         "supported yet: fit the wet part separately (select rows above the threshold)")
+    if mask is not None:
+        raise InputError("mask= with circular variables or a spherical location is not supported: "
+                         "use bounds= on the linear variables")
+    if spec.sphere is not None:
+        ilat, _ = spec.sphere
+        lat = values[:, ilat]
+        bad = (lat < -90.0) | (lat > 90.0)
+        if bad.any():
+            worst = lat[bad][np.argmax(np.abs(lat[bad]))]
+            raise InputError(f"latitude {names[ilat]} must lie in [-90, 90] degrees: {int(bad.sum())} value(s) "
+                             f"outside (worst {worst:g}); check the order in sphere=(latitude, longitude)")
+
+
+def wrap(values, spec: DirectionalSpec) -> np.ndarray:
+    """Circular variables taken modulo their period into [0, period); longitudes into [-180, 180)."""
+    out = np.array(values, dtype=float, copy=True)
+    for j in spec.circular:
+        out[:, j] = np.mod(out[:, j], spec.periods[j])
+    if spec.sphere is not None:
+        out[:, spec.sphere[1]] = np.mod(out[:, spec.sphere[1]] + 180.0, 360.0) - 180.0
+    return out
+
+
+# ---------------------------------------------------------------------------
+# bandwidths and concentrations
+# ---------------------------------------------------------------------------
+
+@dataclass
+class Smoothing:
+    """Concentrations of the directional factors and the linear block's bandwidth."""
+
+    kappas: dict                       # circular index -> kappa
+    kappa_sphere: float | None
+    lin: BandwidthResult | None        # q x q, for the linear kernel
+    method: str
+    notes: dict = field(default_factory=dict)
+    criterion: float = float("nan")
+    converged: bool = True
+    at_edge: bool = False
+
+
+def equivalent_variance_sphere(kappa: float) -> float:
+    """(180/pi)^2 / kappa: small-angle variance (degrees^2) of each tangent coordinate of a
+    vMF kernel (the kernel is close to N(0, I/kappa) in radians near its mean)."""
+    return (180.0 / math.pi) ** 2 / kappa
+
+
+def full_matrix(spec: DirectionalSpec, sm: Smoothing, d: int) -> np.ndarray:
+    """The d x d matrix reported as ``H``: equivalent variances on the directional diagonal."""
+    H = np.zeros((d, d))
+    for j, k in sm.kappas.items():
+        H[j, j] = _dir.equivalent_variance(k, spec.periods[j])
+    if spec.sphere is not None:
+        for j in spec.sphere:
+            H[j, j] = equivalent_variance_sphere(sm.kappa_sphere)
+    if spec.linear:
+        H[np.ix_(spec.linear, spec.linear)] = sm.lin.H
+    return H
+
+
+def _angles(values, spec):
+    return np.column_stack([_dir.to_angle(values[:, j], spec.periods[j]) for j in spec.circular]) \
+        if spec.circular else np.zeros((values.shape[0], 0))
+
+
+def _units(values, spec):
+    if spec.sphere is None:
+        return None
+    ilat, ilon = spec.sphere
+    return _dir.lonlat_to_unit(values[:, ilat], values[:, ilon])
+
+
+def from_matrix(H, spec: DirectionalSpec, names, d, parametrization) -> Smoothing:
+    """Read a given d x d matrix: directional diagonal entries are equivalent variances."""
+    try:
+        H = np.asarray(H, dtype=float)
+    except (TypeError, ValueError):
+        raise InputError("bandwidth must be a selector name or a d x d matrix of numbers") from None
+    if H.shape != (d, d):
+        raise InputError(f"bandwidth matrix has shape {H.shape}, expected ({d}, {d})")
+    for j in spec.directional:
+        off = np.delete(H[j], j)
+        if np.any(off != 0.0) or np.any(np.delete(H[:, j], j) != 0.0):
+            raise InputError(f"bandwidth matrix: the row and column of {names[j]} (directional) must be zero "
+                             "off the diagonal; its diagonal entry is the kernel's equivalent variance")
+        if not (math.isfinite(H[j, j]) and H[j, j] > 0):
+            raise InputError(f"bandwidth matrix: the diagonal entry of {names[j]} must be a positive "
+                             "equivalent variance (period/2pi)^2 / kappa")
+    kappas = {j: _dir.kappa_from_variance(H[j, j], spec.periods[j]) for j in spec.circular}
+    ks = None
+    if spec.sphere is not None:
+        a, b = spec.sphere
+        if not math.isclose(H[a, a], H[b, b], rel_tol=1e-9):
+            raise InputError(f"bandwidth matrix: {names[a]} and {names[b]} form one spherical location and need "
+                             f"the same diagonal entry (180/pi)^2 / kappa, got {H[a, a]:g} and {H[b, b]:g}")
+        ks = (180.0 / math.pi) ** 2 / H[a, a]
+    lin = None
+    if spec.linear:
+        q = len(spec.linear)
+        lin = BandwidthResult(BandwidthMatrix.from_matrix(H[np.ix_(spec.linear, spec.linear)], q), "given",
+                              parametrization)
+    notes = {names[j]: "given (equivalent variance)" for j in spec.directional}
+    return Smoothing(kappas, ks, lin, "given", notes)
+
+
+def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form, parametrization, names,
+           lin_values) -> Smoothing:
+    """Concentrations and the linear bandwidth for selector ``method``.
+
+    ``"normal"``: Taylor (2008) for each circular variable, Garcia-Portugues (2013)
+    for the sphere, the normal-scale matrix for the linear block.
+    ``"mlcv"`` / ``"lscv"``: joint cross-validation of every concentration and the
+    linear (Gaussian) H, transferred to another linear kernel by the canonical
+    rescaling.  Other selectors (``"plugin"``, ``"scv"``, ...): the rule of thumb on
+    the circle, likelihood CV on the sphere, and that selector on the linear block.
+    ``lin_values`` are the linear columns the selector sees (transformed for
+    ``boundary="transform"``).
+    """
+    q = len(spec.linear)
+    theta = _angles(values, spec)
+    units = _units(values, spec)
+    n_eff = values.shape[0] if weights is None else 1.0 / float(np.sum(weights ** 2))
+    notes = {}
+    kappas, ks = {}, None
+    crit, converged, at_edge = float("nan"), True, False
+    lin_result = None
+    if method in ("mlcv", "lscv"):
+        r = _dir.cross_validate(method, theta=theta, units=units, lin=lin_values if q else None, weights=weights,
+                                parametrization=parametrization)
+        kappas = {j: float(k) for j, k in zip(spec.circular, r.kappas)}
+        ks = r.kappa_sphere
+        crit, converged, at_edge = r.criterion, r.converged, r.at_edge
+        label = "joint likelihood cross-validation" if method == "mlcv" else "joint least-squares cross-validation"
+        if r.n_used < values.shape[0]:
+            label += f" on a seeded subsample of {r.n_used}"
+        for j in spec.directional:
+            notes[names[j]] = label
+        if q:
+            H = r.H_lin * (kernel_rescaling(kernel, form, q) if kernel != "gaussian" else 1.0)
+            lin_result = BandwidthResult(BandwidthMatrix.from_matrix(H, q), method, parametrization,
+                                         criterion=r.criterion, converged=r.converged, at_edge=r.at_edge,
+                                         details={"selected_jointly_with": "directional concentrations"})
+    else:
+        for col, j in enumerate(spec.circular):
+            kappas[j] = _dir.taylor_rule(theta[:, col], weights)
+            notes[names[j]] = "Taylor (2008) rule of thumb"
+        if spec.sphere is not None:
+            if method == "normal":
+                k_mle = _dir.vmf_mle_kappa(units, weights)
+                ks = 1.0 / _dir.sphere_rule_h_from_kappa(k_mle, n_eff) ** 2
+                label = "Garcia-Portugues (2013) rule of thumb"
+            else:
+                r = _dir.cross_validate("mlcv", units=units, weights=weights)
+                ks, at_edge = r.kappa_sphere, r.at_edge
+                label = "likelihood cross-validation (locations alone)"
+            for j in spec.sphere:
+                notes[names[j]] = label
+        if q:
+            lin_result = select(method, lin_values, weights, kernel=kernel, form=form,
+                                parametrization=parametrization, names=[names[j] for j in spec.linear])
+    for j, k in list(kappas.items()):
+        if not (math.isfinite(k) and k > 0):
+            raise InputError(f"the concentration of {names[j]} could not be chosen (got {k}); the sample may "
+                             "be concentrated on a few directions: give the bandwidth matrix explicitly")
+    return Smoothing(kappas, ks, lin_result, method, notes, crit, converged, at_edge)
+
+
+# ---------------------------------------------------------------------------
+# the model: evaluation and sampling
+# ---------------------------------------------------------------------------
+
+class DirectionalModel:
+    """Directional factors x the linear block with its boundary method (a 'boundary model'
+    with the interface of :mod:`mvkde.boundary.methods`)."""
+
+    def __init__(self, data, weights, spec: DirectionalSpec, sm: Smoothing, kernel_name, form, box, method,
+                 names):
+        self.data = data
+        n = data.shape[0]
+        self.n = n
+        self.w = np.full(n, 1.0 / n) if weights is None else np.asarray(weights, dtype=float)
+        self.logw = np.log(np.maximum(self.w, 1e-300))
+        self.spec = spec
+        self.sm = sm
+        self.box = box
+        self.name = method
+        self.names = names
+        self.theta = _angles(data, spec)
+        self.cos_t, self.sin_t = np.cos(self.theta), np.sin(self.theta)
+        self.kap = np.array([sm.kappas[j] for j in spec.circular])
+        self.periods = np.array([spec.periods[j] for j in spec.circular])
+        self.units = _units(data, spec)
+        lin = spec.linear
+        self.q = len(lin)
+        self.box_lin = [box[j] for j in lin]
+        self.groups = []
+        self.mk = None
+        if self.q:
+            self.mk = get_multivariate_kernel(kernel_name, form, self.q)
+            self.bw = sm.lin.matrix
+            x = data[:, lin]
+            if method == "transform":
+                x = forward_transform(x, self.box_lin)
+            self.centre = x.mean(axis=0)
+            self.groups = self._images(x) if method == "reflect" else [(self.bw, x, np.arange(n))]
+        kinds = []
+        if spec.circular:
+            kinds.append("von Mises (circular: " + ", ".join(names[j] for j in spec.circular) + ")")
+        if spec.sphere is not None:
+            kinds.append("von Mises-Fisher (sphere: " + ", ".join(names[j] for j in spec.sphere) + ")")
+        if self.q:
+            kinds.append(f"{form} {kernel_name} (linear: " + ", ".join(names[j] for j in lin) + ")")
+        self.choice = EngineChoice(
+            "exact", "direct sums of the product kernel " + " x ".join(kinds)
+            + "; directional axes are periodic, which the binned engines do not handle")
+        self.attrs = {"boundary_sampling": self._sample_note(), "directional_kernel": " x ".join(kinds)}
+        if method == "reflect":
+            self.attrs["reflected_copies"] = int(sum(g[1].shape[0] for g in self.groups) - n)
+
+    def _sample_note(self):
+        return {"none": "smoothed bootstrap; draws outside the bounds redrawn (rejection)",
+                "reflect": "smoothed bootstrap folded back into the bounds by reflection (exact)",
+                "transform": "smoothed bootstrap in the transformed space, mapped back (exact)"}[self.name]
+
+    # -- reflection images of the linear block, with the row each image comes from
+    def _images(self, x):
+        per_axis = []
+        for a in range(self.q):
+            lo, hi = self.box_lin[a]
+            reach = axis_reach(self.bw, self.mk, a)
+            if not (math.isfinite(lo) or math.isfinite(hi)):
+                images = [(1.0, 0.0)]
+            elif not math.isfinite(hi):
+                images = [(1.0, 0.0), (-1.0, 2.0 * lo)]
+            elif not math.isfinite(lo):
+                images = [(1.0, 0.0), (-1.0, 2.0 * hi)]
+            else:
+                width = hi - lo
+                k = int(math.ceil(reach / (2.0 * width))) + 1
+                images = [im for m in range(-k, k + 1) for im in ((1.0, 2.0 * m * width),
+                                                                  (-1.0, 2.0 * lo + 2.0 * m * width))]
+            entries = []
+            for sign, offset in images:
+                y = sign * x[:, a] + offset
+                keep = np.maximum(lo - y, y - hi) < reach
+                if keep.any():
+                    entries.append((sign, y, keep))
+            per_axis.append(entries)
+        groups = []
+        H = self.bw.matrix
+        for combo in itertools.product(*per_axis):
+            keep = np.logical_and.reduce([c[2] for c in combo])
+            if not keep.any():
+                continue
+            r = np.array([c[0] for c in combo])
+            bw = self.bw if np.all(r > 0) else BandwidthMatrix.from_matrix(H * np.outer(r, r), self.q)
+            groups.append((bw, np.column_stack([c[1][keep] for c in combo]), np.flatnonzero(keep)))
+        return groups
+
+    # -- kernel matrices ------------------------------------------------------
+    def _log_directional(self, pts_dir_cols):
+        """(m, n) log of the directional kernels (in the variables' units), plus log w."""
+        circ, units = pts_dir_cols
+        m = (circ if circ is not None else units).shape[0]
+        out = np.broadcast_to(self.logw, (m, self.n)).copy()
+        for c in range(self.kap.size):
+            ang = _dir.to_angle(circ[:, c], self.periods[c])
+            cos_d = np.cos(ang)[:, None] * self.cos_t[None, :, c] + np.sin(ang)[:, None] * self.sin_t[None, :, c]
+            k = self.kap[c]
+            out += k * (cos_d - 1.0) - math.log(special_i0e(k)) - math.log(self.periods[c])
+        if units is not None:
+            dot = np.clip(units @ self.units.T, -1.0, 1.0)
+            out += _dir.log_vmf_kernel(self.sm.kappa_sphere, dot) - 2.0 * math.log(_dir.EARTH_RADIUS_KM)
+        return out
+
+    def _linear_points(self, x):
+        """Linear coordinates of evaluation points in kernel space, and log |Jacobian|."""
+        if self.name != "transform":
+            return x, np.zeros(x.shape[0])
+        y = forward_transform(x, self.box_lin)
+        logj = np.zeros(x.shape[0])
+        with np.errstate(divide="ignore", invalid="ignore"):
+            for a, (lo, hi) in enumerate(self.box_lin):
+                col = x[:, a]
+                if math.isfinite(lo) and math.isfinite(hi):
+                    logj += np.log(hi - lo) - np.log(col - lo) - np.log(hi - col)
+                elif math.isfinite(lo):
+                    logj -= np.log(col - lo)
+                elif math.isfinite(hi):
+                    logj -= np.log(hi - col)
+        return y, logj
+
+    def _linear_matrix(self, y, group, log):
+        """(m, n_g) linear kernel values (or logs) of points ``y`` against one image group."""
+        bw, x, _ = group
+        p = bw.whiten(y - self.centre)
+        z = bw.whiten(x - self.centre)
+        if log and self.mk.name == "gaussian":
+            g = p @ z.T
+            g -= 0.5 * np.einsum("ij,ij->i", p, p)[:, None]
+            g -= 0.5 * np.einsum("ij,ij->i", z, z)[None, :]
+            np.minimum(g, 0.0, out=g)
+            return g - 0.5 * self.q * math.log(2 * math.pi) - math.log(bw.sqrt_det)
+        k = kernel_matrix(self.mk, p, z) / bw.sqrt_det
+        if log:
+            with np.errstate(divide="ignore"):
+                return np.log(k)
+        return k
+
+    def _split(self, pts):
+        circ = pts[:, self.spec.circular] if self.spec.circular else None
+        units = None
+        if self.spec.sphere is not None:
+            ilat, ilon = self.spec.sphere
+            units = _dir.lonlat_to_unit(pts[:, ilat], pts[:, ilon])
+        return circ, units
+
+    # -- boundary-model interface --------------------------------------------
+    def density(self, pts, log=False):
+        pts = np.asarray(pts, dtype=float)
+        m = pts.shape[0]
+        out = np.empty(m)
+        step = max(1, CHUNK_ELEMENTS // max(self.n * max(len(self.groups), 1), 1))
+        for a in range(0, m, step):
+            chunk = pts[a:a + step]
+            ld = self._log_directional(self._split(chunk))
+            if not self.q:
+                out[a:a + step] = _lse_rows(ld) if log else np.exp(ld).sum(axis=1)
+                continue
+            y, logj = self._linear_points(chunk[:, self.spec.linear])
+            if log:
+                parts = [ld[:, g[2]] + self._linear_matrix(y, g, True) for g in self.groups]
+                out[a:a + step] = _lse_rows(np.hstack(parts)) + logj
+            else:
+                dens = np.exp(ld)
+                total = np.zeros(chunk.shape[0])
+                for g in self.groups:
+                    total += np.einsum("ij,ij->i", dens[:, g[2]], self._linear_matrix(y, g, False))
+                out[a:a + step] = total * np.exp(logj)
+        if self.name == "transform" and self.q:
+            inside = np.ones(m, dtype=bool)
+            for a, (lo, hi) in enumerate(self.box_lin):
+                col = pts[:, self.spec.linear[a]]
+                inside &= (col > lo) & (col < hi)
+            out[~inside] = -np.inf if log else 0.0
+        return out, self.choice
+
+    def grid(self, axes):
+        spec = self.spec
+        dir_idx = spec.directional
+        lin_idx = spec.linear
+        dir_mesh = np.meshgrid(*[axes[j] for j in dir_idx], indexing="ij")
+        dir_pts = np.zeros((dir_mesh[0].size, len(axes)))
+        for j, mesh in zip(dir_idx, dir_mesh):
+            dir_pts[:, j] = mesh.ravel()
+        circ, units = self._split(dir_pts)
+        m_dir = dir_pts.shape[0]
+        if lin_idx:
+            lin_mesh = np.meshgrid(*[axes[j] for j in lin_idx], indexing="ij")
+            lin_pts = np.column_stack([g.ravel() for g in lin_mesh])
+            y, logj = self._linear_points(lin_pts)
+            jac = np.exp(logj)
+            if self.name == "transform":
+                inside = np.ones(lin_pts.shape[0], dtype=bool)
+                for a, (lo, hi) in enumerate(self.box_lin):
+                    inside &= (lin_pts[:, a] > lo) & (lin_pts[:, a] < hi)
+                jac[~inside] = 0.0
+                y = np.where(inside[:, None], y, 0.0)
+            m_lin = lin_pts.shape[0]
+        else:
+            m_lin = 1
+        out = np.empty((m_dir, m_lin))
+        step_d = max(1, CHUNK_ELEMENTS // self.n)
+        step_l = max(1, CHUNK_ELEMENTS // self.n)
+        for a in range(0, m_dir, step_d):
+            sl = slice(a, a + step_d)
+            D = np.exp(self._log_directional((None if circ is None else circ[sl],
+                                              None if units is None else units[sl])))
+            if not lin_idx:
+                out[sl, 0] = D.sum(axis=1)
+                continue
+            for b in range(0, m_lin, step_l):
+                tl = slice(b, b + step_l)
+                B = np.zeros((y[tl].shape[0], self.n))
+                for g in self.groups:
+                    B[:, g[2]] += self._linear_matrix(y[tl], g, False)
+                B *= jac[tl, None]
+                out[sl, tl] = D @ B.T
+        shape_dir = [axes[j].size for j in dir_idx]
+        shape_lin = [axes[j].size for j in lin_idx]
+        values = out.reshape(shape_dir + shape_lin)
+        order = dir_idx + lin_idx
+        return np.transpose(values, np.argsort(order)), self.choice
+
+    def sample(self, n, rng):
+        spec = self.spec
+        out = np.empty((n, len(spec.periods)))
+        todo = np.arange(n)
+        for _ in range(1000):
+            if todo.size == 0:
+                break
+            k = todo.size
+            idx = rng.choice(self.n, size=k, p=self.w)
+            for c, j in enumerate(spec.circular):
+                noise = rng.vonmises(0.0, self.kap[c], k) * self.periods[c] / (2 * math.pi)
+                out[todo, j] = np.mod(self.data[idx, j] + noise, self.periods[c])
+            if spec.sphere is not None:
+                u = _dir.sample_vmf(self.units[idx], self.sm.kappa_sphere, rng)
+                lat, lon = _dir.unit_to_latlon(u)
+                out[todo, spec.sphere[0]], out[todo, spec.sphere[1]] = lat, lon
+            if not self.q:
+                todo = todo[:0]
+                break
+            base = self.data[idx][:, spec.linear]
+            if self.name == "transform":
+                base = forward_transform(base, self.box_lin)
+            y = base + self.bw.colorize(self.mk.sample(k, rng))
+            if self.name == "transform":
+                y = inverse_transform(y, self.box_lin)
+            elif self.name == "reflect":
+                y = _fold(y, self.box_lin)
+            ok = np.ones(k, dtype=bool)
+            for a, (lo, hi) in enumerate(self.box_lin):
+                ok &= (y[:, a] >= lo) & (y[:, a] <= hi)
+            out[np.ix_(todo[ok], spec.linear)] = y[ok]
+            todo = todo[~ok]
+        if todo.size:
+            raise InputError("sampling failed: the uncorrected estimate has almost no mass inside the bounds; "
+                             "use boundary='reflect'")
+        return out
+
+
+def special_i0e(k):
+    from scipy import special
+    return float(special.i0e(k))
+
+
+def _lse_rows(a):
+    top = a.max(axis=1)
+    top[~np.isfinite(top)] = 0.0
+    with np.errstate(divide="ignore", under="ignore"):
+        return np.log(np.exp(a - top[:, None]).sum(axis=1)) + top
+
+
+def _fold(y, box):
+    """Fold draws back into the box by reflection at each bound (the reflection
+    estimate's own sampling: Silverman 1986, Sec. 2.10)."""
+    y = y.copy()
+    for a, (lo, hi) in enumerate(box):
+        col = y[:, a]
+        if math.isfinite(lo) and math.isfinite(hi):
+            width = hi - lo
+            t = np.mod(col - lo, 2.0 * width)
+            y[:, a] = lo + np.where(t <= width, t, 2.0 * width - t)
+        elif math.isfinite(lo):
+            y[:, a] = lo + np.abs(col - lo)
+        elif math.isfinite(hi):
+            y[:, a] = hi - np.abs(hi - col)
+    return y
+
+
+# ---------------------------------------------------------------------------
+# fit
+# ---------------------------------------------------------------------------
+
+def fit_estimate(values, w, names, units, spec: DirectionalSpec, mk, bandwidth, parametrization, box,
+                 boundary, engine):
+    """The directional branch of :func:`mvkde.fit` (data already wrapped and checked)."""
+    from .bandwidth import SELECTORS
+    from .boundary import BOUNDARY_METHODS, check_method, has_bounds
+    from .errors import check_choice
+    from .estimator import DensityEstimate
+
+    n, d = values.shape
+    lin_box = [box[j] for j in spec.linear]
+    lin_names = [names[j] for j in spec.linear]
+    if boundary is None:
+        method = DIRECTIONAL_DEFAULT_BOUNDARY if has_bounds(lin_box) else "none"
+    else:
+        method = check_choice("boundary", boundary, BOUNDARY_METHODS)
+        if method not in DIRECTIONAL_BOUNDARY:
+            raise InputError(f"boundary={method!r} is not available with circular variables or a spherical "
+                             f"location (the correction acts on the linear variables only): use one of "
+                             f"{', '.join(DIRECTIONAL_BOUNDARY)}")
+    lin_values = values[:, spec.linear]
+    if method == "transform":
+        check_method("transform", lin_box, lin_values, lin_names)
+        sel_lin = forward_transform(lin_values, lin_box)
+    else:
+        sel_lin = lin_values
+    if isinstance(bandwidth, str):
+        method_bw = check_choice("bandwidth", bandwidth, SELECTORS)
+        sm = choose(method_bw, values, w, spec, kernel=mk.name, form=mk.form, parametrization=parametrization,
+                    names=names, lin_values=sel_lin)
+    else:
+        matrix = bandwidth.H if isinstance(bandwidth, BandwidthResult) else bandwidth
+        sm = from_matrix(matrix, spec, names, d, parametrization)
+    H = full_matrix(spec, sm, d)
+    details = {"concentration_" + names[j]: float(k) for j, k in sm.kappas.items()}
+    if sm.kappa_sphere is not None:
+        details["concentration_sphere"] = float(sm.kappa_sphere)
+    result = BandwidthResult(BandwidthMatrix.from_matrix(H, d), sm.method, parametrization,
+                             criterion=sm.criterion if sm.lin is None or sm.method in ("mlcv", "lscv")
+                             else sm.lin.criterion,
+                             converged=sm.converged and (sm.lin is None or sm.lin.converged),
+                             at_edge=sm.at_edge or (sm.lin is not None and sm.lin.at_edge),
+                             warnings=[] if sm.lin is None else list(sm.lin.warnings), details=details)
+    model = DirectionalModel(values, w, spec, sm, mk.name, mk.form, box, method, names)
+    est = DensityEstimate(values, w, names, units, mk, result, box, method, engine, model=model)
+    est.periods = list(spec.periods)
+    est.sphere = None if spec.sphere is None else (names[spec.sphere[0]], names[spec.sphere[1]])
+    conc = {names[j]: float(k) for j, k in sm.kappas.items()}
+    if spec.sphere is not None:
+        for j in spec.sphere:
+            conc[names[j]] = float(sm.kappa_sphere)
+    est.concentrations = conc
+    est.attrs["circular_variables"] = ", ".join(names[j] for j in spec.circular)
+    for j in spec.circular:
+        est.attrs[f"period_{names[j]}"] = float(spec.periods[j])
+    if spec.sphere is not None:
+        est.attrs["sphere_variables"] = ", ".join(est.sphere)
+        est.attrs["earth_radius_km"] = _dir.EARTH_RADIUS_KM
+    for j in spec.directional:
+        est.attrs[f"concentration_{names[j]}"] = conc[names[j]]
+        est.attrs[f"concentration_method_{names[j]}"] = sm.notes.get(names[j], sm.method)
+    if spec.linear:
+        if sm.method in ("mlcv", "lscv"):
+            note = f"linear block chosen jointly with the concentrations ({sm.method}, Gaussian kernel"
+            note += ", canonical rescaling to " + mk.name + ")" if mk.name != "gaussian" else ")"
+        elif sm.method == "given":
+            note = "given"
+        else:
+            note = f"{sm.method} selector on the linear variables alone"
+        est.attrs["bandwidth_linear_block"] = note
+        est.attrs["boundary_applies_to"] = ", ".join(lin_names)
+    est.attrs["bandwidth_matrix_directional_note"] = (
+        "diagonal entries of circular variables are the von Mises kernel's equivalent variance "
+        "(period/2pi)^2/kappa; of the spherical pair (180/pi)^2/kappa degrees^2")
+    return est
