@@ -73,6 +73,20 @@ def add_cell_products(ds: xr.Dataset, results: dict, settings, lead: list, squee
         ds["density_at_point"] = (lead + ["point"], squeeze(results["density_at_point"]), {
             "long_name": "density of the estimate at the requested points (continuous part)",
             "units": ds["density"].attrs["units"]})
+    if "sector_probability" in results:
+        from .gridded import _sector_names, _speed_edges
+
+        direction, speed = _sector_names(settings)
+        k = p["sectors"]
+        period = settings.periods[names.index(direction)]
+        edges = _speed_edges(settings)
+        ds.coords["sector"] = ("sector", np.arange(k) * period / k,
+                               {"long_name": f"centre of the {direction} sector", "units": ds[direction].attrs.get("units", "")})
+        ds.coords["speed_lower"] = ("speed_class", edges[:-1], {"long_name": f"lower edge of the {speed} class"})
+        ds.coords["speed_upper"] = ("speed_class", edges[1:], {"long_name": f"upper edge of the {speed} class"})
+        ds["sector_probability"] = (lead + ["sector", "speed_class"], squeeze(results["sector_probability"]), {
+            "long_name": f"joint probability per {direction} sector and {speed} class (wind-rose numbers)",
+            "units": "1"})
     for side in ("lower", "upper"):
         key = f"density_{side}"
         if key in results:

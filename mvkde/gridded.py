@@ -469,7 +469,7 @@ class CellSettings:
         """Products that need each cell's fitted estimate (not just its gridded density)."""
         p = self.products
         return bool(len(p.get("thresholds", ())) or p.get("samples") or p.get("points") is not None
-                    or p.get("bootstrap") or p.get("standard_error"))
+                    or p.get("bootstrap") or p.get("standard_error") or p.get("sectors"))
 
     @property
     def point_mass_index(self) -> int | None:
@@ -526,7 +526,8 @@ def _cell_products(wf: Workflow, plan: Plan) -> dict:
     return {"thresholds": np.asarray(prod["thresholds"], dtype=float).reshape(-1, len(plan.names)),
             "samples": int(prod["samples"]), "points": points, "bootstrap": int(prod["bootstrap"]),
             "band_level": float(prod["band_level"]), "standard_error": bool(prod["standard_error"]),
-            "seed": int(wf["estimator"]["seed"])}
+            "seed": int(wf["estimator"]["seed"]), "sectors": int(prod["sectors"]),
+            "speed_classes": list(prod["speed_classes"])}
 
 
 def _check_estimator(wf: Workflow, plan: Plan) -> None:
@@ -712,6 +713,21 @@ class CellResult:
     extras: dict = field(default_factory=dict)
 
 
+def _sector_names(settings: CellSettings):
+    """(direction, speed): the circular variable and the other one."""
+    di = next(k for k, per in enumerate(settings.periods) if per is not None)
+    return settings.names[di], settings.names[1 - di]
+
+
+def _speed_edges(settings: CellSettings) -> np.ndarray:
+    edges = settings.products.get("speed_classes") or []
+    if edges:
+        return np.asarray(edges, dtype=float)
+    di = next(k for k, per in enumerate(settings.periods) if per is not None)
+    ax = settings.axes[1 - di]
+    return np.linspace(ax[0], ax[-1], 6)
+
+
 def _cell_extras(est, settings: CellSettings, size, limits, key) -> dict:
     """Per-cell [products] from the fitted estimate (library calls only)."""
     from . import products as _products
@@ -724,6 +740,9 @@ def _cell_extras(est, settings: CellSettings, size, limits, key) -> dict:
     if p["standard_error"]:
         # R(K) / (n |H|^{1/2}): the variance of f_hat(x) divided by f(x)
         out["variance_factor"] = float(_products.standard_error(est, np.ones(1))[0] ** 2)
+    if p.get("sectors"):
+        out["sector_probability"] = est.sector_table(*_sector_names(settings), p["sectors"],
+                                                     _speed_edges(settings)).values
     seed = [p["seed"], int(key[0]), int(key[1])]
     if p["samples"]:
         out["samples"] = est.sample(p["samples"], seed=seed + [1])

@@ -195,6 +195,14 @@ def _fractions(value, where):
     return [float(v) for v in value]
 
 
+def _number_list(value, where):
+    if not isinstance(value, list) or not all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                              and math.isfinite(v) for v in value) \
+            or any(b <= a for a, b in zip(value, value[1:])):
+        raise _fail(where, value, "an increasing list of numbers, e.g. [0, 3, 6, 10, 20]")
+    return [float(v) for v in value]
+
+
 def _thresholds(value, where):
     """A list of points (one number per variable) for exceedance probabilities."""
     if not isinstance(value, list) or not all(
@@ -414,6 +422,11 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                       "(smoothed bootstrap; seeded by estimator.seed)"),
         "points": Key(None, _opt_str, "a CSV table with one column per variable: write density_at_point "
                                       "for each row"),
+        "sectors": Key(0, _int(lo=0), "wind-rose numbers: joint probability per direction sector (this many, "
+                                      "centred on 0) and speed class, for a (direction, speed) pair with one "
+                                      "circular variable; 0 = none"),
+        "speed_classes": Key([], _number_list, "class edges of the linear variable for products.sectors; "
+                                               "default: five equal classes over its grid"),
         "bootstrap": Key(0, _int(lo=0), "bootstrap replicates for percentile bands of the density "
                                         "(density_lower/upper) and of exceedance_at_threshold; 0 = none"),
         "band_level": Key(0.9, _float(positive=True), "coverage of the bootstrap bands (0 < level < 1)"),
@@ -642,6 +655,16 @@ def _cross_checks(spec: dict, source: str) -> None:
         if len(point) != d:
             raise ConfigError(f"{source}: products.thresholds[{k}] = {point} has {len(point)} numbers for "
                               f"{d} variables ({', '.join(names)}): give one per variable")
+    if prod["sectors"]:
+        circular = [v for v in names if spec["variables"][v]["period"] is not None]
+        if d != 2 or len(circular) != 1:
+            raise ConfigError(f"{source}: products.sectors needs two variables, one of them circular "
+                              f"(a period under [variables.NAME]); got {', '.join(names)} with "
+                              f"{len(circular)} circular")
+        if prod["sectors"] < 2:
+            raise ConfigError(f"{source}: products.sectors = {prod['sectors']}: give at least 2 sectors")
+    if prod["speed_classes"] and len(prod["speed_classes"]) < 2:
+        raise ConfigError(f"{source}: products.speed_classes needs at least two edges")
     if not 0 < prod["band_level"] < 1:
         raise ConfigError(f"{source}: products.band_level = {prod['band_level']} must lie strictly "
                           "between 0 and 1, e.g. 0.9")

@@ -21,7 +21,8 @@ def test_wind_example_runs_end_to_end(tmp_path, capsys):
     # the shipped example with a cheaper selector and grid for the test budget
     code = main(["run", str(REPO / "workflows" / "stations_wind.toml"), "--set", f'output.path="{out}"',
                  "--set", 'estimator.bandwidth="normal"', "--set", "grid.size=[40, 37]",
-                 "--set", "compute.scheduler=\"synchronous\""])
+                 "--set", "compute.scheduler=\"synchronous\"", "--set", "products.sectors=8",
+                 "--set", "products.speed_classes=[0, 4, 8, 30]"])
     assert code == 0, capsys.readouterr().err
     ds = xr.open_dataset(out)
     assert ds["wind_dir"].attrs["period"] == 360.0
@@ -36,6 +37,15 @@ def test_wind_example_runs_end_to_end(tmp_path, capsys):
     H = ds["bandwidth"].values
     assert np.all(H[:, 0, 1] == 0) and np.all(H[:, 1, 1] > 0)
     assert ds["density"].attrs["units"] == "1/(m s-1 degree)"
+    # wind-rose numbers: 8 sectors x 3 speed classes per station, summing to the mass inside them
+    sp = ds["sector_probability"]
+    assert sp.dims == ("station", "sector", "speed_class")
+    np.testing.assert_allclose(ds["sector"].values, np.arange(8) * 45.0)
+    inside = ds["density"].sel(wind_speed=slice(0, 30)).integrate(["wind_speed", "wind_dir"]).values
+    np.testing.assert_allclose(sp.sum(["sector", "speed_class"]).values, inside, atol=5e-3)
+    # the invented stations blow mostly from the south-west (generator: 70 % around 225 degrees)
+    by_sector = sp.sum("speed_class").mean("station")
+    assert float(by_sector.sel(sector=225.0)) == float(by_sector.max())
 
 
 def lightning_table(path):
