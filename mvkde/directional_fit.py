@@ -571,20 +571,10 @@ def _lse_rows(a):
 
 
 def _fold(y, box):
-    """Fold draws back into the box by reflection at each bound (the reflection
-    estimate's own sampling: Silverman 1986, Sec. 2.10)."""
-    y = y.copy()
-    for a, (lo, hi) in enumerate(box):
-        col = y[:, a]
-        if math.isfinite(lo) and math.isfinite(hi):
-            width = hi - lo
-            t = np.mod(col - lo, 2.0 * width)
-            y[:, a] = lo + np.where(t <= width, t, 2.0 * width - t)
-        elif math.isfinite(lo):
-            y[:, a] = lo + np.abs(col - lo)
-        elif math.isfinite(hi):
-            y[:, a] = hi - np.abs(hi - col)
-    return y
+    """Fold draws back into the box (the reflection estimate's own sampling)."""
+    from .boundary.methods import fold_into_box
+
+    return fold_into_box(y, box)
 
 
 # ---------------------------------------------------------------------------

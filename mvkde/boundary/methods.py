@@ -286,18 +286,24 @@ class Reflection(_Base):
         return total, choice
 
     def sample(self, n, rng):
-        y = self._bootstrap(n, rng)
-        for j, (lo, hi) in enumerate(self.box):
-            col = y[:, j]
-            if math.isfinite(lo) and math.isfinite(hi):
-                width = hi - lo
-                t = np.mod(col - lo, 2.0 * width)
-                y[:, j] = lo + np.where(t <= width, t, 2.0 * width - t)
-            elif math.isfinite(lo):
-                y[:, j] = lo + np.abs(col - lo)
-            elif math.isfinite(hi):
-                y[:, j] = hi - np.abs(hi - col)
-        return y
+        return fold_into_box(self._bootstrap(n, rng), self.box)
+
+
+def fold_into_box(y, box):
+    """Fold draws back into the box by reflection at each bound: the reflection
+    estimate's own sampling (Silverman 1986, Sec. 2.10)."""
+    y = np.array(y, dtype=float, copy=True)
+    for j, (lo, hi) in enumerate(box):
+        col = y[:, j]
+        if math.isfinite(lo) and math.isfinite(hi):
+            width = hi - lo
+            t = np.mod(col - lo, 2.0 * width)
+            y[:, j] = lo + np.where(t <= width, t, 2.0 * width - t)
+        elif math.isfinite(lo):
+            y[:, j] = lo + np.abs(col - lo)
+        elif math.isfinite(hi):
+            y[:, j] = hi - np.abs(hi - col)
+    return y
 
 
 # ---------------------------------------------------------------------------
