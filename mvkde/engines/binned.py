@@ -249,7 +249,9 @@ def _bin(pieces, origin, delta, lattice, nfft, cells, terms, chunk=CHUNK):
                 k, t, ws = k[:, ok], t[:, ok], ws[ok]
             if ws.size == 0:
                 continue
-            base = strides @ k + cell * size
+            # indices within the cell's own array: binning and stencils touch one
+            # cell at a time, so a block of C cells costs C times one cell (not C^2)
+            base = strides @ k
             # corner weights prod_j (1 - t_j or t_j), built axis by axis (corner order
             # matches itertools.product((0, 1), repeat=d))
             frac = np.empty((1 << d, ws.size))
@@ -268,13 +270,13 @@ def _bin(pieces, origin, delta, lattice, nfft, cells, terms, chunk=CHUNK):
                     # error-estimate terms: the nearest node is enough (2^d times cheaper)
                     if near is None:
                         near = base + strides @ (t >= 0.5).astype(np.int64)
-                        near_size = cells * size
                     wt = ws if factor is None else ws * factor(tt, ws)
-                    binned = np.bincount(near, weights=wt, minlength=near_size)
+                    binned = np.bincount(near, weights=wt, minlength=size)
                 else:
                     wt = frac if factor is None else frac * factor(tt, ws)[None, :]
-                    binned = np.bincount(idx, weights=wt.ravel(), minlength=cells * size)
-                _add_stencil(outs[target], binned.reshape(outs[target].shape), taps)
+                    binned = np.bincount(idx, weights=wt.ravel(), minlength=size)
+                view = outs[target][cell:cell + 1]
+                _add_stencil(view, binned.reshape(view.shape), taps)
     return outs, dropped
 
 
