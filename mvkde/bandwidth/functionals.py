@@ -264,6 +264,7 @@ class BinnedSums:
         self.nfreq = int(keep.sum())
         self._pairs = [(j, k) for j in range(d) for k in range(j, d)]
         self._mono2 = np.stack([kappa[:, j] * kappa[:, k] for j, k in self._pairs], axis=1)
+        self._mono2T = np.ascontiguousarray(self._mono2.T)
         self._mono = {}
 
     # -- helpers -----------------------------------------------------------
@@ -271,8 +272,10 @@ class BinnedSums:
         """w'Sw at every kept frequency, w = kappa / delta of the row's cell: (b, nf)."""
         Su = S / (self.delta[cells][:, :, None] * self.delta[cells][:, None, :])
         coef = np.stack([Su[:, j, k] * (1.0 if j == k else 2.0) for j, k in self._pairs], axis=1)
-        # einsum, not BLAS: small products pay thread wake-ups on a busy node
-        return np.einsum("bp,fp->bf", coef, self._mono2)
+        # one matrix product (b, p) x (p, nf): the output has b x nf entries, far
+        # from the tiny products whose thread wake-up dominates; einsum's loop over
+        # the short axis p took 20 x longer (5.7 vs 0.28 ms at b = 27, nf = 36,720)
+        return coef @ self._mono2T
 
     def half_exp(self, cells, S) -> np.ndarray:
         """exp(-w'Sw/2), (b, nf)."""
@@ -312,7 +315,10 @@ class BinnedSums:
                 E = EH if a == 1 else EH ** a
                 if b:
                     E = E * (EG ** b if b != 1 else EG)
-            out[t] = np.einsum("bf,bf->b", np.broadcast_to(P, E.shape), E)
+            if P.shape[0] == 1:
+                out[t] = E @ P[0]          # one matrix-vector product (rows of one cell)
+            else:
+                out[t] = np.einsum("bf,bf->b", P, E)
         return out
 
     def _monomial(self, r):
