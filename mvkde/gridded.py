@@ -988,6 +988,8 @@ class Scheduler:
         self.cluster = None
 
     def __enter__(self):
+        if self.name == "threads" and self.workers != 1:
+            self._limit_blas_threads()
         if self.name in ("threads", "processes", "synchronous"):
             return self
         try:
@@ -1013,7 +1015,26 @@ class Scheduler:
                                   f"there ({exc}); start one (dask scheduler) or use \"local-cluster\"") from None
         return self
 
+    def _limit_blas_threads(self) -> None:
+        """One BLAS/OpenMP thread per task while several dask threads run tasks.
+
+        Each dask thread already keeps a core busy; a BLAS call that wakes its
+        own pool on top would oversubscribe the cores.  Uses threadpoolctl when
+        it is installed (it is not a dependency); without it the few BLAS calls
+        of a block (most of the work is FFTs and element-wise numpy, single
+        threaded) keep their default.  Restored on exit.
+        """
+        try:
+            from threadpoolctl import threadpool_limits
+        except ImportError:
+            return
+        self._blas_limits = threadpool_limits(limits=1)
+
     def __exit__(self, *exc):
+        limits = getattr(self, "_blas_limits", None)
+        if limits is not None:
+            limits.restore_original_limits()
+            self._blas_limits = None
         if self.client is not None:
             self.client.close()
         if self.cluster is not None:
