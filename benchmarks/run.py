@@ -18,6 +18,9 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
+# measure the checkout this script lives in, not whichever mvkde the environment has
+# installed (an editable install of another worktree would otherwise be imported)
+sys.path.insert(0, str(HERE.parent))
 
 from harness import CASES, NOTES, cores, machine  # noqa: E402
 
@@ -41,7 +44,8 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     for m in MODULES:
         importlib.import_module(m)
-    print(f"machine: {machine()}", flush=True)
+    import mvkde
+    print(f"machine: {machine()}; mvkde from {Path(mvkde.__file__).parent}", flush=True)
     lines = [
         "# mvkde benchmark results",
         "",

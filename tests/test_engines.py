@@ -301,6 +301,34 @@ def test_evaluate_grid_many_matches_cell_by_cell(rng, kernel, form):
     assert any(ch.engine == "binned" for ch in choices)
 
 
+@pytest.mark.parametrize("kernel", ["gaussian", "triweight"])
+def test_grid_many_on_a_wide_grid_window(rng, kernel):
+    # Cells far apart on a shared grid much wider than each sample: the lattice covers only
+    # the nodes within the kernel's reach of the block's data (binned.data_window), so a
+    # cell evaluated with its block and alone use different lattices.  Stated tolerance:
+    # each is within 1e-3 x peak of the exact sums (the engine's default), hence within
+    # 2e-3 x peak of each other; nodes beyond every datum's reach hold 0.
+    axes = [np.linspace(-20, 20, 81), np.linspace(-10, 30, 71)]
+    mk = get_multivariate_kernel(kernel, "product", 2)
+    samples = [rng.multivariate_normal(m, [[1.0, 0.6], [0.6, 1.2]], size=4000)
+               for m in ([-12.0, -2.0], [0.0, 8.0], [12.0, 22.0])]
+    bws = [_normal_H(x, kernel, "product") for x in samples]
+    many, choices = evaluate_grid_many(axes, samples, None, bws, mk, engine="binned")
+    pts = _mesh(axes)
+    for c, x in enumerate(samples):
+        ref = exact.density(pts, x, None, BandwidthMatrix.from_matrix(bws[c]), mk).reshape(many.shape[1:])
+        alone, _ = evaluate_grid(axes, x, None, bws[c], mk, engine="binned")
+        peak = ref.max()
+        assert np.abs(many[c] - ref).max() <= 1e-3 * peak, choices[c].reason
+        assert np.abs(alone - ref).max() <= 1e-3 * peak
+        assert np.abs(many[c] - alone).max() <= 2e-3 * peak
+        window = binned.data_window(axes, [x], [BandwidthMatrix.from_matrix(bws[c])], mk, 1 / 4000, 1e-3)
+        outside = np.ones(alone.shape, dtype=bool)
+        outside[tuple(window)] = False
+        assert outside.any() and np.all(alone[outside] == 0.0)
+        assert ref[outside].max() <= 1e-5 * peak       # tol / 100 (Gaussian) or exactly 0 (compact)
+
+
 def test_evaluate_grid_many_checks_its_arguments(rng):
     mk = get_multivariate_kernel("gaussian", "product", 2)
     x = rng.normal(size=(100, 2))

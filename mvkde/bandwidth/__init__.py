@@ -88,7 +88,7 @@ def check_sample_rank(data: np.ndarray, weights, names) -> None:
     n, d = data.shape
     cov = weighted_covariance(data, weights) if n > 1 else np.zeros((d, d))
     sd = np.sqrt(np.clip(np.diag(cov), 0.0, None))
-    scale = np.maximum(np.abs(data).max(axis=0), 1.0) if n else np.ones(d)
+    scale = np.maximum([np.abs(data[:, j]).max() for j in range(d)], 1.0) if n else np.ones(d)
     const = [names[j] for j in range(d) if not sd[j] > 1e-12 * scale[j]]
     if const:
         raise BandwidthError(

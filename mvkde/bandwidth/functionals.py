@@ -193,8 +193,9 @@ class BinnedSums:
         self.prep = prep
         self.d = d
         C = prep.cells
-        lo = np.array([z.min(axis=0) for z in prep.z])
-        hi = np.array([z.max(axis=0) for z in prep.z])
+        # column by column: z.min(axis=0) on a C-ordered (n, 2) array is 30 x slower
+        lo = np.array([[z[:, j].min() for j in range(d)] for z in prep.z])
+        hi = np.array([[z[:, j].max() for j in range(d)] for z in prep.z])
         span = np.maximum(hi - lo, 1e-12)
         if delta is None:
             delta = np.sqrt(prep.c_ns) / _RESOLUTION.get(d, 2.0)
@@ -236,8 +237,14 @@ class BinnedSums:
         mult = mult.ravel()
         smin = np.asarray(min_sd, dtype=float)
         kmax2 = 80.0 / np.min(smin[:, None] / delta, axis=1) ** 2      # per cell, |kappa|^2 bound
-        keep = np.einsum("fd,fd->f", kappa, kappa) < kmax2.max()
+        k2 = np.einsum("fd,fd->f", kappa, kappa)
+        keep = k2 < kmax2.max()
+        # kept frequencies in order of |kappa|: a criterion value for a given H
+        # then reads a prefix (see _cutoff)
+        keep = np.flatnonzero(keep)
+        keep = keep[np.argsort(k2[keep], kind="stable")]
         kappa, mult = kappa[keep], mult[keep]
+        self._k2 = k2[keep]
         power = spec.reshape(C, -1)[:, keep]
         power = power.real ** 2 + power.imag ** 2
 
@@ -261,22 +268,39 @@ class BinnedSums:
         half = 0.5 * kappa
         tent = np.prod(np.where(half == 0, 1.0, np.sin(half) / np.where(half == 0, 1.0, half)), axis=1) ** 4
         self.pt = (power - self_spec) * (mult / ntot / tent) / np.prod(delta, axis=1)[:, None]
-        self.nfreq = int(keep.sum())
+        self.nfreq = int(keep.size)
         self._pairs = [(j, k) for j in range(d) for k in range(j, d)]
         self._mono2 = np.stack([kappa[:, j] * kappa[:, k] for j, k in self._pairs], axis=1)
+        self._mono2T = np.ascontiguousarray(self._mono2.T)
         self._mono = {}
 
     # -- helpers -----------------------------------------------------------
-    def _quadratic(self, cells, S) -> np.ndarray:
-        """w'Sw at every kept frequency, w = kappa / delta of the row's cell: (b, nf)."""
+    def _cutoff(self, cells, S) -> int:
+        """Number of leading (lowest |kappa|) frequencies where exp(-w'Sw/2) >= e^-40
+        for some row: beyond them w'Sw >= lambda_min(S_u) |kappa|^2 > 80 for every
+        row, so every term of the sums there is below e^-40 times the largest
+        (below double rounding), and they are skipped."""
+        Su = S / (self.delta[cells][:, :, None] * self.delta[cells][:, None, :])
+        lam = float(np.min(np.linalg.eigvalsh(Su)[:, 0]))
+        if not lam > 0:
+            return self.nfreq
+        return int(np.searchsorted(self._k2, 80.0 / lam, side="right"))
+
+    def _quadratic(self, cells, S, nf=None) -> np.ndarray:
+        """w'Sw at the first ``nf`` kept frequencies (all by default),
+        w = kappa / delta of the row's cell: (b, nf)."""
         Su = S / (self.delta[cells][:, :, None] * self.delta[cells][:, None, :])
         coef = np.stack([Su[:, j, k] * (1.0 if j == k else 2.0) for j, k in self._pairs], axis=1)
-        # einsum, not BLAS: small products pay thread wake-ups on a busy node
-        return np.einsum("bp,fp->bf", coef, self._mono2)
+        if nf is not None:
+            return coef @ self._mono2T[:, :nf]
+        # one matrix product (b, p) x (p, nf): the output has b x nf entries, far
+        # from the tiny products whose thread wake-up dominates; einsum's loop over
+        # the short axis p took 20 x longer (5.7 vs 0.28 ms at b = 27, nf = 36,720)
+        return coef @ self._mono2T
 
-    def half_exp(self, cells, S) -> np.ndarray:
+    def half_exp(self, cells, S, nf=None) -> np.ndarray:
         """exp(-w'Sw/2), (b, nf)."""
-        q = self._quadratic(cells, S)
+        q = self._quadratic(cells, S, nf)
         # exp(-150) floor: products of exponentials below it would be subnormal
         # numbers, which the CPU handles a hundred times slower, for no accuracy
         np.minimum(q, _Q_CAP, out=q)
@@ -301,9 +325,17 @@ class BinnedSums:
         return out
 
     def _gauss_chunk(self, cells, H, terms, G):
-        EH = self.half_exp(cells, H)
-        P = self.pt[cells[0]][None, :] if np.all(cells == cells[0]) else self.pt[cells]
-        EG = self.half_exp(cells, G) if G is not None else None
+        # every term is a product E_H^a E_G^b: it is below e^-40 wherever the
+        # factor with the narrowest spectrum is
+        nf = 0
+        if any(a > 0 for a, _ in terms):
+            nf = max(nf, self._cutoff(cells, H))
+        if G is not None and any(a == 0 for a, _ in terms):
+            nf = max(nf, self._cutoff(cells, G))
+        nf = max(nf, 1)
+        EH = self.half_exp(cells, H, nf)
+        P = self.pt[cells[0]][None, :nf] if np.all(cells == cells[0]) else self.pt[cells, :nf]
+        EG = self.half_exp(cells, G, nf) if G is not None else None
         out = np.empty((len(terms), len(cells)))
         for t, (a, b) in enumerate(terms):
             if a == 0:
@@ -312,7 +344,10 @@ class BinnedSums:
                 E = EH if a == 1 else EH ** a
                 if b:
                     E = E * (EG ** b if b != 1 else EG)
-            out[t] = np.einsum("bf,bf->b", np.broadcast_to(P, E.shape), E)
+            if P.shape[0] == 1:
+                out[t] = E @ P[0]          # one matrix-vector product (rows of one cell)
+            else:
+                out[t] = np.einsum("bf,bf->b", P, E)
         return out
 
     def _monomial(self, r):

@@ -21,7 +21,8 @@ __all__ = ["batch_minimize"]
 _STEPS = np.array([1.0, 0.5, 0.25, 0.1, 0.03, 0.01])
 
 
-def batch_minimize(fun, theta0, *, rows=None, h=2e-3, max_iter=40, xtol=1e-5, max_step=1.5):
+def batch_minimize(fun, theta0, *, rows=None, h=2e-3, max_iter=40, xtol=1e-5, max_step=1.5,
+                   groups=None, keep_after=None):
     """Minimise ``fun(rows, theta) -> values`` independently for each row.
 
     Parameters
@@ -34,6 +35,12 @@ def batch_minimize(fun, theta0, *, rows=None, h=2e-3, max_iter=40, xtol=1e-5, ma
         Starting points.
     rows : (b,) array, optional
         Labels of the problems (default ``arange(b)``).
+    groups, keep_after : (b,) array and int, optional
+        Rows with the same group label are starts of one problem: after
+        ``keep_after`` iterations only the row of each group with the lowest
+        value goes on; the others stop where they are (the caller picks the
+        best row of each group at the end, so a stopped row is never chosen
+        over a better one).
 
     Returns
     -------
@@ -59,6 +66,15 @@ def batch_minimize(fun, theta0, *, rows=None, h=2e-3, max_iter=40, xtol=1e-5, ma
     converged = np.zeros(b, dtype=bool)
     it = 0
     for it in range(1, max_iter + 1):
+        if groups is not None and keep_after is not None and it == keep_after + 1:
+            groups = np.asarray(groups)
+            score = np.where(np.isfinite(value), value, np.inf)
+            order = np.lexsort((score, groups))          # by group, then value
+            first = np.ones(b, dtype=bool)
+            first[1:] = groups[order][1:] != groups[order][:-1]
+            best = np.zeros(b, dtype=bool)
+            best[order[first]] = True
+            active &= best
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break

@@ -107,6 +107,10 @@ _REGION_LOW = {1: 0.02 ** 2, 2: 0.1 ** 2, 3: 0.2 ** 2}
 #: (SCV's criterion is smooth -- its pilot 2G is in every term -- and the
 #: plug-in AMISE is convex in H: one start each)
 STARTS = {"lscv": (0.25, 0.5, 1.0), "scv": (1.0,), "mlcv": (0.25, 0.5, 1.0), "plugin": (1.0,)}
+#: Newton iterations after which only the best start of each cell goes on
+#: (the starts have by then reached their basins; the others would cost as much
+#: again to finish in a basin that is not the lowest found)
+KEEP_AFTER = {"lscv": 3, "mlcv": 3}
 #: largest sample for which "auto" uses the exact O(n^2) sums
 EXACT_MAX_N = 500
 
@@ -402,7 +406,8 @@ def run_selector(method: str, prep: Prepared, parametrization: str, *, binned=No
         theta_best = theta
         iters = 0
     else:
-        theta, value, conv, iters = batch_minimize(fun, theta0)
+        theta, value, conv, iters = batch_minimize(fun, theta0, groups=row_cells,
+                                                   keep_after=KEEP_AFTER.get(method))
         vals = value.reshape(C, ns)
         pick = np.argmin(np.where(np.isfinite(vals), vals, np.inf), axis=1)
         best_rows = cells_all * ns + pick
