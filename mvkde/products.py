@@ -280,24 +280,23 @@ def _point_mass_part(est, pts, upper: bool, size) -> np.ndarray:
     return extra
 
 
+def _joint_probability(est, points, upper: bool, size, limits, what: str) -> np.ndarray:
+    pts = est._points(points)
+    _refuse_sphere(est, what)
+    if _exact_cdf_available(est):
+        return _exact_cdf(est, pts, upper=upper)
+    axes, vals, _ = _grid_cumulative(est, size, limits, upper=upper)
+    return _interp(axes, vals, pts, upper=upper) + _point_mass_part(est, pts, upper, size)
+
+
 def cdf(est, points, *, size=None, limits=None) -> np.ndarray:
     """P(X_1 <= x_1, ..., X_d <= x_d) at each point (point masses included)."""
-    pts = est._points(points)
-    _refuse_sphere(est, "the joint CDF")
-    if _exact_cdf_available(est):
-        return _exact_cdf(est, pts, upper=False)
-    axes, vals, _ = _grid_cumulative(est, size, limits, upper=False)
-    return _interp(axes, vals, pts, upper=False) + _point_mass_part(est, pts, False, size)
+    return _joint_probability(est, points, False, size, limits, "the joint CDF")
 
 
 def exceedance(est, points, *, size=None, limits=None) -> np.ndarray:
     """P(X_1 > x_1, ..., X_d > x_d) at each point (joint exceedance, point masses included)."""
-    pts = est._points(points)
-    _refuse_sphere(est, "the joint exceedance probability")
-    if _exact_cdf_available(est):
-        return _exact_cdf(est, pts, upper=True)
-    axes, vals, _ = _grid_cumulative(est, size, limits, upper=True)
-    return _interp(axes, vals, pts, upper=True) + _point_mass_part(est, pts, True, size)
+    return _joint_probability(est, points, True, size, limits, "the joint exceedance probability")
 
 
 def probability_grid(est, kind="exceedance", size=None, limits=None) -> xr.DataArray:

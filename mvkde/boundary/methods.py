@@ -699,7 +699,18 @@ class _Asymmetric(_Base):
         h = self.h[j]
         return self.kernel.kernel.unit((x[:, None] - X[None, :]) / h) / h
 
+    # True while the kernel masses are integrated in the kernel's own coordinate
+    # (unit interval for beta, offset from the bound for gamma) rather than in x
+    _native = False
+
     def _kernel_masses(self):
+        self._native = True
+        try:
+            return self._native_kernel_masses()
+        finally:
+            self._native = False
+
+    def _native_kernel_masses(self):
         out = np.ones(self.data.shape[0])
         for j in self.B:
             a, b = self._range(j)
@@ -767,7 +778,7 @@ class BetaKernel(_Asymmetric):
         width = hi - lo
         b = self.b[j]
         # the mass integral passes x already on [0, 1]; evaluation passes data units
-        z = x if self._in_unit else (x - lo) / width
+        z = x if self._native else (x - lo) / width
         Z = (X - lo) / width
         a1 = z / b + 1.0
         a2 = (1.0 - z) / b + 1.0
@@ -775,16 +786,8 @@ class BetaKernel(_Asymmetric):
             logk = special.xlogy(a1 - 1.0, Z) + special.xlog1py(a2 - 1.0, -Z) - special.betaln(a1, a2)
         out = np.exp(logk)
         out = np.where((z >= 0) & (z <= 1), out, 0.0)
-        return out if self._in_unit else out / width
+        return out if self._native else out / width
 
-    _in_unit = False
-
-    def _kernel_masses(self):
-        self._in_unit = True
-        try:
-            return super()._kernel_masses()
-        finally:
-            self._in_unit = False
 
 
 class GammaKernel(_Asymmetric):
@@ -816,18 +819,10 @@ class GammaKernel(_Asymmetric):
         b = self.b[j]
         return (0.0, top + 12.0 * math.sqrt(b * top + b * b) + 40.0 * b)
 
-    _in_offset = False
-
-    def _kernel_masses(self):
-        self._in_offset = True
-        try:
-            return super()._kernel_masses()
-        finally:
-            self._in_offset = False
 
     def _asym(self, j, x, X):
         b = self.b[j]
-        s = x if self._in_offset else self._offset(j, x)
+        s = x if self._native else self._offset(j, x)
         S = self._offset(j, X)
         rho = modified_gamma_shape(s, b)
         with np.errstate(divide="ignore", invalid="ignore"):
