@@ -110,12 +110,6 @@ def cmd_inspect(args) -> int:
     return 0
 
 
-def cmd_not_ready(name):
-    def inner(args) -> int:
-        raise MvkdeError(f"'mvkde {name}' is not available in this version")
-    return inner
-
-
 # ---------------------------------------------------------------------------
 # parser
 # ---------------------------------------------------------------------------
