@@ -97,7 +97,7 @@ overwrite = true
 def _run(wf: Path) -> float:
     import io
 
-    from mvkde.gridded import run_and_write
+    from mvkde.pipeline.run import run_and_write
 
     sink = io.StringIO()
     # compute time of the run (reading, fitting, evaluating); cluster start-up excluded

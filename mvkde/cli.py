@@ -66,7 +66,7 @@ def cmd_demo(args) -> int:
 
 
 def cmd_run(args) -> int:
-    from .gridded import run_and_write
+    from .pipeline.run import run_and_write
 
     run_and_write(args.workflow, args.set or (), overwrite=args.overwrite,
                   command_line=["mvkde", *sys.argv[1:]] if args.argv is None else ["mvkde", *args.argv])
@@ -74,11 +74,11 @@ def cmd_run(args) -> int:
 
 
 def cmd_check(args) -> int:
-    from .gridded import describe_plan, prepare
-    from .workflow import load
+    from .pipeline.run import describe_plan, plan_run
+    from .pipeline.workflow import load
 
     wf = load(args.workflow, args.set or ())
-    print(describe_plan(prepare(wf)))
+    print(describe_plan(plan_run(wf)))
     return 0
 
 
@@ -99,7 +99,7 @@ def cmd_plot(args) -> int:
 
 
 def cmd_inspect(args) -> int:
-    from .summary import format_summary, open_output, summarise, to_json
+    from .inspect import format_summary, open_output, summarise, to_json
 
     ds = open_output(args.output)
     try:

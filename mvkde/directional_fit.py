@@ -588,6 +588,7 @@ def fit_estimate(values, w, names, units, spec: DirectionalSpec, mk, bandwidth, 
     from .boundary import BOUNDARY_METHODS, check_method, has_bounds
     from .errors import check_choice
     from .estimator import DensityEstimate
+    from .support import Support
 
     n, d = values.shape
     lin_box = [box[j] for j in spec.linear]
@@ -624,14 +625,14 @@ def fit_estimate(values, w, names, units, spec: DirectionalSpec, mk, bandwidth, 
                              at_edge=sm.at_edge or (sm.lin is not None and sm.lin.at_edge),
                              warnings=[] if sm.lin is None else list(sm.lin.warnings), details=details)
     model = DirectionalModel(values, w, spec, sm, mk.name, mk.form, box, method, names)
-    est = DensityEstimate(values, w, names, units, mk, result, box, method, engine, model=model)
-    est.periods = list(spec.periods)
-    est.sphere = None if spec.sphere is None else (names[spec.sphere[0]], names[spec.sphere[1]])
     conc = {names[j]: float(k) for j, k in sm.kappas.items()}
     if spec.sphere is not None:
         for j in spec.sphere:
             conc[names[j]] = float(sm.kappa_sphere)
-    est.concentrations = conc
+    support = Support(tuple(names), tuple(tuple(b) for b in box), tuple(spec.periods),
+                      None if spec.sphere is None else (names[spec.sphere[0]], names[spec.sphere[1]]))
+    est = DensityEstimate(values, w, names, units, mk, result, box, method, engine, model=model, support=support,
+                          concentrations=conc)
     est.attrs["circular_variables"] = ", ".join(names[j] for j in spec.circular)
     for j in spec.circular:
         est.attrs[f"period_{names[j]}"] = float(spec.periods[j])

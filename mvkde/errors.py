@@ -31,9 +31,9 @@ class MvkdeWarning(UserWarning):
     """A result that is usable but deserves attention (edge of a search, negative mass)."""
 
 
-def closest_names(name: str, valid: Iterable[str]) -> str:
-    """A ' (did you mean ...?)' suffix, or '' when nothing is close."""
-    match = difflib.get_close_matches(str(name), list(valid), n=1, cutoff=0.6)
+def closest_names(name: str, valid: Iterable[str], cutoff: float = 0.6) -> str:
+    """A ' (did you mean ...?)' suffix, or '' when nothing is close (difflib's ratio >= ``cutoff``)."""
+    match = difflib.get_close_matches(str(name), [str(v) for v in valid], n=1, cutoff=cutoff)
     return f" (did you mean {match[0]!r}?)" if match else ""
 
 

@@ -25,6 +25,7 @@ from . import products as _products
 from .bandwidth import BandwidthMatrix, BandwidthResult, PARAMETRIZATIONS, select
 from .errors import InputError, MvkdeError, check_choice
 from .kernels import FORMS, get_kernel, get_multivariate_kernel
+from .support import PointMass, Support
 from .units import density_units
 
 __all__ = ["fit", "DensityEstimate", "CAUTION"]
@@ -327,8 +328,10 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
         point.fit_part(values, w, dict(kernel=mk.name, form=mk.form, bandwidth=bandwidth,
                                        parametrization=parametrization, boundary=boundary,
                                        engine=engine), box, names, units, result)
+    pm = None if point is None else PointMass(point.index, point.name, point.threshold, point.bound)
+    support = Support(tuple(names), tuple(tuple(b) for b in box), (None,) * d, None, pm)
     est = DensityEstimate(cont_values, cont_w, names, units, mk, result, cont_box, method, engine,
-                          model=model, point_mass=point, mask=mask_spec)
+                          model=model, point_mass=point, mask=mask_spec, support=support)
     est.attrs["n_dropped_outside_support"] = n_dropped
     if boundary is None and method != "none":
         est.attrs["boundary_choice"] = default_note or f"default for these bounds ({method!r})"
@@ -419,7 +422,8 @@ class DensityEstimate:
     """A fitted kernel density estimate.  Build it with :func:`mvkde.fit`."""
 
     def __init__(self, data, weights, names, units, kernel, bandwidth: BandwidthResult,
-                 bounds, boundary, engine, *, model=None, point_mass=None, mask=None):
+                 bounds, boundary, engine, *, model=None, point_mass=None, mask=None, support=None,
+                 concentrations=None):
         self.data = data
         self.weights = weights
         self.names = list(names)
@@ -434,17 +438,25 @@ class DensityEstimate:
         self._point = point_mass
         self._mask = mask
         self.attrs: dict = dict(self._model.attrs)
-        #: period per variable (None for a linear one); set by fit(periods=...)
-        self.periods: list = [None] * len(self.names)
-        #: (latitude name, longitude name) of a spherical location, or None
-        self.sphere = None
+        #: where each variable lives (bounds, period, spherical pair, point mass)
+        self.support: Support = support if support is not None else Support.linear(self.names, bounds)
         #: concentration kappa of each directional variable's kernel (name -> kappa)
-        self.concentrations: dict = {}
+        self.concentrations: dict = dict(concentrations or {})
+
+    @property
+    def periods(self) -> list:
+        """Period per variable (None for a linear one)."""
+        return list(self.support.periods)
+
+    @property
+    def sphere(self) -> tuple | None:
+        """(latitude name, longitude name) of a spherical location, or None."""
+        return self.support.sphere
 
     @property
     def is_directional(self) -> bool:
         """True when a variable is circular or a pair is a location on the sphere."""
-        return self.sphere is not None or any(p is not None for p in self.periods)
+        return self.support.is_directional
 
     # -- point mass ------------------------------------------------------
     @property
@@ -787,7 +799,17 @@ class DensityEstimate:
         return out[rng.permutation(n)]
 
     # -- products (mvkde.products) -----------------------------------------
-    def fit_options(self, idx) -> dict:
+    def _refit(self, data, idx, weights=None) -> "DensityEstimate":
+        """An estimate of the same kind on ``data`` (columns: the variables ``idx``), with H's sub-block.
+
+        Used for exact marginals and bootstrap replicates.
+        """
+        idx = list(idx)
+        return fit(data, kernel=self.kernel.name, form=self.kernel.form, bandwidth=self.H[np.ix_(idx, idx)],
+                   weights=weights, engine=self.engine, names=[self.names[j] for j in idx],
+                   units=[self.units[j] for j in idx], **self._fit_options(idx))
+
+    def _fit_options(self, idx) -> dict:
         """Keyword arguments of :func:`fit` that rebuild this estimate's support for the
         variables ``idx`` (used for marginals and bootstrap refits)."""
         bounds = [self.bounds[j] for j in idx]

@@ -39,7 +39,9 @@ import numpy as np
 import xarray as xr
 
 from .errors import InputError, MvkdeError, closest_names
-from .summary import OutputLayout, layout, open_output
+from .inspect import OutputLayout, layout, open_output
+from .products import grid as _grid
+from .products import node_weights
 
 __all__ = ["HDR_MASSES", "COLOUR_MAP", "hdr_levels", "parse_selection", "parse_size", "field_values",
            "build_figure", "plot_output", "PlotResult", "require_matplotlib"]
@@ -197,35 +199,21 @@ def _value_text(ds, dim, i) -> str:
 # numbers drawn (testable without pictures)
 # ---------------------------------------------------------------------------
 
-def _unique_nodes(axis: np.ndarray, period: float | None) -> slice:
-    """Drop the last node of a circular axis that repeats the first one period later."""
-    if period is not None and axis.size > 2 and abs((axis[-1] - axis[0]) - period) <= 1e-9 * period:
-        return slice(0, axis.size - 1)
-    return slice(None)
-
-
 def hdr_levels(density: xr.DataArray, masses=HDR_MASSES, periods=None) -> np.ndarray:
     """Density levels whose upper sets hold ``masses`` of the gridded mass (Hyndman 1996).
 
     ``density`` is one cell's density on a regular grid (any number of
-    dims).  On a circular axis that holds both 0 and the period, the
-    repeated node is counted once.  Returns one level per mass, in the
-    order of ``masses``; NaN nodes count as zero density.
+    dims); the levels are those of :func:`mvkde.products.grid.hdr_levels`
+    with the grid's node weights, so they equal the file's ``hdr_level`` and
+    ``est.hdr_levels()`` on the same grid.  ``periods`` is accepted for
+    callers that know the circular variables (the trapezoid rule on a grid
+    spanning one period already is the periodic rule).  Returns one level
+    per mass, in the order of ``masses``; NaN nodes count as zero density.
     """
-    from .products import hdr_levels_from_grid
-
-    periods = periods or {}
-    values = np.asarray(density.values, dtype=float)
-    volume = 1.0
-    for k, dim in enumerate(density.dims):
-        ax = np.asarray(density[dim].values, dtype=float)
-        keep = _unique_nodes(ax, periods.get(dim))
-        values = values[(slice(None),) * k + (keep,)]
-        if ax.size < 2:
+    for dim in density.dims:
+        if density.sizes[dim] < 2:
             raise InputError(f"the grid of {dim} has fewer than 2 nodes: no HDR levels")
-        volume *= float(ax[1] - ax[0])
-    values = np.where(np.isfinite(values), values, 0.0)
-    return hdr_levels_from_grid(values, abs(volume), masses)
+    return _grid.hdr_levels(density.values, node_weights(density), masses)
 
 
 def _upper_integral(values: np.ndarray, x: np.ndarray, t: float, axis: int) -> np.ndarray:

@@ -9,7 +9,6 @@ import pytest
 import xarray as xr
 
 from mvkde.cli import main
-from mvkde.workflow import _DOCUMENTED, _library_choices
 
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO / "sample_grids"))
@@ -76,18 +75,6 @@ def test_unknown_variable_exit_2(tmp_path, small_grid, capsys):
 
 def test_missing_workflow_exit_2(tmp_path, capsys):
     one_line_error(capsys, main(["run", str(tmp_path / "nope.toml")]), "nope.toml", "not found")
-
-
-def test_option_missing_from_this_installation(tmp_path, small_grid, capsys, monkeypatch):
-    # simulate an installation whose library lacks a documented selector
-    from mvkde import bandwidth
-
-    monkeypatch.delitem(bandwidth.SELECTORS, "scv")
-    lacking = [b for b in _DOCUMENTED["bandwidth"] if b not in _library_choices()["bandwidth"]]
-    assert lacking == ["scv"]
-    wf = workflow(tmp_path, small_grid)
-    one_line_error(capsys, main(["check", wf, "--set", f"estimator.bandwidth={lacking[0]}"]),
-                   "estimator.bandwidth", "not available in this installation")
 
 
 def test_run_refuses_to_overwrite_then_overwrites(tmp_path, small_grid, capsys):

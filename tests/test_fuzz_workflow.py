@@ -14,7 +14,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from mvkde.errors import MvkdeError
-from mvkde.workflow import SCHEMA, VARIABLE_KEYS, Workflow, load, loads
+from mvkde.pipeline.workflow import SCHEMA, VARIABLE_KEYS, Workflow, load, loads
 
 SETTINGS = settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 

@@ -9,7 +9,7 @@ import pytest
 import xarray as xr
 
 from mvkde.cli import main
-from mvkde.gridded import FLAGS
+from mvkde.pipeline.blocks import FLAGS
 
 import tiny_outputs
 

@@ -12,7 +12,7 @@ import xarray as xr
 
 import mvkde
 from mvkde.cli import main
-from mvkde.gridded import FLAGS
+from mvkde.pipeline.blocks import FLAGS
 
 from conftest import grid_integral
 

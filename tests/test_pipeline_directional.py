@@ -11,7 +11,7 @@ import xarray as xr
 from mvkde import directional as D
 from mvkde.cli import main
 from mvkde.errors import ConfigError
-from mvkde.workflow import load
+from mvkde.pipeline.workflow import load
 
 REPO = Path(__file__).resolve().parent.parent
 

@@ -12,7 +12,7 @@ from mvkde.cli import main
 from mvkde.errors import MvkdeError
 from mvkde.plot import (HDR_MASSES, build_figure, field_values, hdr_levels, parse_selection, parse_size,
                         plot_output)
-from mvkde.summary import layout
+from mvkde.inspect import layout
 
 import tiny_outputs
 
@@ -258,7 +258,7 @@ def run_python(code):
 
 def test_import_mvkde_does_not_import_matplotlib():
     # the pattern of xarray's test_lazy_import: importing the package loads no optional plotting module
-    r = run_python("import sys, mvkde, mvkde.cli, mvkde.plot, mvkde.summary, mvkde.gridded; "
+    r = run_python("import sys, mvkde, mvkde.cli, mvkde.plot, mvkde.inspect, mvkde.pipeline.run; "
                    "print(sorted(m for m in sys.modules if m.split('.')[0] == 'matplotlib'))")
     assert r.returncode == 0, r.stderr
     assert r.stdout.strip() == "[]"

@@ -35,11 +35,11 @@ def test_exact_and_grid_cdf_agree(rng):
     pts = rng.multivariate_normal([0, 0], S, size=30)
     from mvkde import products
     exact = products.cdf(diag, pts)              # closed form: sum of products of kernel CDFs
-    axes, vals, _ = products._grid_cumulative(diag, 512, None, upper=False)
-    assert np.allclose(exact, products._interp(axes, vals, pts, upper=False), atol=2e-3)
+    axes, vals, _ = products.estimate._grid_cumulative(diag, 512, None, upper=False)
+    assert np.allclose(exact, products.estimate._interp(axes, vals, pts, upper=False), atol=2e-3)
     up = products.exceedance(diag, pts)
-    axes, vals, _ = products._grid_cumulative(diag, 512, None, upper=True)
-    assert np.allclose(up, products._interp(axes, vals, pts, upper=True), atol=2e-3)
+    axes, vals, _ = products.estimate._grid_cumulative(diag, 512, None, upper=True)
+    assert np.allclose(up, products.estimate._interp(axes, vals, pts, upper=True), atol=2e-3)
 
 
 def test_marginal_equals_one_dimensional_estimate(rng):

@@ -85,12 +85,12 @@ def test_bad_input_through_the_real_command(name, tmp_path):
 
 def test_internal_error_exit_1_short_message_and_log(tmp_path, capsys, monkeypatch):
     """A bug (here: the dataset builder raising) is exit 1 with the traceback in a log, not on screen."""
-    import mvkde.gridded as gridded
+    import mvkde.pipeline.run as run_module
 
     def broken(*args, **kwargs):
         raise ZeroDivisionError("simulated bug in the runner")
 
-    monkeypatch.setattr(gridded, "build_dataset", broken)
+    monkeypatch.setattr(run_module, "build_dataset", broken)
     monkeypatch.chdir(tmp_path)
     code = main(["run", str(CORPUS / "output_exists.toml")])  # valid but for a missing setup: runs
     err = capsys.readouterr().err
@@ -120,7 +120,7 @@ def test_one_all_nan_cell_is_flagged_not_fatal(tmp_path):
     import numpy as np
     import xarray as xr
 
-    from mvkde.gridded import FLAGS
+    from mvkde.pipeline.blocks import FLAGS
 
     ds = xr.open_dataset(CORPUS / "data" / "grid.nc").load()
     ds["tasmax"][:, 1, 0] = np.nan

@@ -34,7 +34,7 @@ TIMEOUT = 90  # seconds: upper bound on any wait in this module
 LAUNCHER = r"""
 import os, sys, time
 import xarray as xr
-import mvkde.gridded as g
+import mvkde.pipeline.schedule as g
 delay = float(os.environ.get("MVKDE_TEST_DELAY", "0"))
 inner = g.process_block
 def slow_block(*args, **kwargs):
@@ -204,7 +204,7 @@ def test_resume_skips_finished_blocks_and_matches_a_clean_run(archive, clean_run
 
 def test_resume_store_of_another_run_is_replaced(archive, clean_run, tmp_path, capsys, monkeypatch):
     """A store whose fingerprint differs (another grid) is not reused: blocks are recomputed."""
-    import mvkde.gridded as gridded
+    import mvkde.pipeline.schedule as gridded
 
     out = tmp_path / "r.nc"
     wf = write_workflow(tmp_path, archive, out, extra_output="resume = true")

@@ -5,7 +5,7 @@ from pathlib import Path
 import pytest
 
 from mvkde.errors import ConfigError
-from mvkde.workflow import REQUIRED, SCHEMA, VARIABLE_KEYS, key_reference, load, loads
+from mvkde.pipeline.workflow import REQUIRED, SCHEMA, VARIABLE_KEYS, key_reference, load, loads
 
 REPO = Path(__file__).resolve().parent.parent
 EXAMPLES = sorted((REPO / "workflows").glob("*.toml"))

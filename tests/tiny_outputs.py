@@ -1,7 +1,7 @@
 """Small density outputs for the plot and inspect tests.
 
 ``run_*`` write a tiny input and run a real workflow through
-:func:`mvkde.gridded.run_and_write`; ``synthetic_*`` build an output-shaped
+:func:`mvkde.pipeline.run.run_and_write`; ``synthetic_*`` build an output-shaped
 Dataset by hand from a density with a closed form (for checks against
 outside values and for variables the library cannot fit yet, such as
 directions).
@@ -15,7 +15,8 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from mvkde.gridded import FLAGS, run_and_write
+from mvkde.pipeline.blocks import FLAGS
+from mvkde.pipeline.run import run_and_write
 
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO / "sample_grids"))

@@ -17,14 +17,14 @@ import sys
 from importlib import metadata
 from pathlib import Path
 
-from . import io as _io
+from . import readers as _io
 
 DEPENDENCIES = ("numpy", "scipy", "xarray", "netCDF4", "dask", "distributed", "pandas")
 
 
 def versions() -> dict:
     """Installed versions of mvkde and its runtime dependencies."""
-    from . import __version__
+    from .. import __version__
 
     out = {"mvkde": __version__, "python": platform.python_version()}
     for name in DEPENDENCIES:

@@ -34,7 +34,9 @@ import numpy as np
 import xarray as xr
 from scipy import integrate, interpolate
 
-from .errors import InputError
+from ..errors import InputError
+from ..units import density_units
+from . import grid as _grid
 
 DEFAULT_GRID = {1: 2048, 2: 256, 3: 64, 4: 24}
 DEFAULT_HDR_MASSES = (0.5, 0.9, 0.99)
@@ -109,34 +111,22 @@ def _directional_marginal_is_exact(est, idx) -> bool:
 def node_weights(g: xr.DataArray) -> np.ndarray:
     """Integration weight of every node of a gridded density (same shape as ``g``).
 
-    Trapezoid weights along each axis (on an axis spanning exactly one period
-    with both ends, the periodic trapezoid rule); along a latitude/longitude
-    pair carrying a ``cell_area`` coordinate, the node areas instead.
+    Trapezoid weights along each axis; along a latitude/longitude pair
+    carrying a ``cell_area`` coordinate, the node areas (see
+    :mod:`mvkde.products.grid`).
     """
-    area_dims = tuple(g["cell_area"].dims) if "cell_area" in g.coords else ()
-    w = np.ones(g.shape)
-    for ax, dim in enumerate(g.dims):
-        if dim in area_dims:
-            continue
-        x = np.asarray(g[dim].values, dtype=float)
-        t = np.zeros(x.size)
-        if x.size > 1:
-            dx = np.diff(x)
-            t[:-1] += dx / 2
-            t[1:] += dx / 2
-        shape = [1] * g.ndim
-        shape[ax] = -1
-        w = w * t.reshape(shape)
-    if area_dims:
-        w = w * g["cell_area"].transpose(*[d for d in g.dims if d in area_dims]).values.reshape(
-            [g.sizes[d] if d in area_dims else 1 for d in g.dims])
-    return w
+    return _grid.GridWeights([g[d].values for d in g.dims], _sphere_axes(g)).full()
+
+
+def _sphere_axes(g: xr.DataArray):
+    if "cell_area" not in g.coords:
+        return None
+    lat, lon = g["cell_area"].dims
+    return list(g.dims).index(lat), list(g.dims).index(lon)
 
 
 def marginal(est, names):
     """The marginal estimate of ``names`` as a new estimate (exact cases only)."""
-    from .estimator import fit
-
     idx = _names_index(est, names)
     if not marginal_is_exact(est, idx):
         raise InputError(
@@ -147,54 +137,42 @@ def marginal(est, names):
     if est.point_mass_probability:
         raise InputError("the marginal of an estimate with a point mass is not a single estimate: "
                          "use marginal_grid(...) for the continuous part and point_mass_grid(...) for the rest")
-    kw = est.fit_options(idx)
-    return fit(est.data[:, idx], kernel=est.kernel.name, form=est.kernel.form,
-               bandwidth=est.H[np.ix_(idx, idx)], weights=est.weights, engine=est.engine,
-               names=[est.names[j] for j in idx], units=[est.units[j] for j in idx], **kw)
-
-
-def _integrate_out(values: np.ndarray, axes, keep: list[int]) -> np.ndarray:
-    """Trapezoid integral over every axis not in ``keep``."""
-    out = values
-    for ax in sorted(set(range(values.ndim)) - set(keep), reverse=True):
-        out = np.trapezoid(out, axes[ax], axis=ax)
-    return out
+    return est._refit(est.data[:, idx], idx, est.weights)
 
 
 def marginal_grid(est, names, size=None, limits=None) -> xr.DataArray:
-    """Marginal density of ``names`` by integrating the joint density on a grid."""
+    """Marginal density of ``names`` by integrating the joint density on a grid.
+
+    With a point mass on a variable that is integrated out, the density of
+    the kept variables on the point mass is added, so the marginal integrates
+    to 1; a kept point-mass variable's marginal is that of its continuous part.
+    """
     idx = _names_index(est, names)
+    support = est.support
+    if support.sphere is not None and sum(est.names[j] in support.sphere for j in idx) == 1:
+        raise InputError(f"{', '.join(support.sphere)} form one location on the sphere: keep both or neither")
     full = est.grid(size or DEFAULT_GRID.get(est.d, 24), limits)
     axes = [full[n].values for n in est.names]
-    sphere = getattr(est, "sphere", None)
-    if sphere is not None and sum(est.names[j] in sphere for j in idx) == 1:
-        raise InputError(f"{', '.join(sphere)} form one location on the sphere: keep both or neither")
-    if sphere is not None and not any(est.names[j] in sphere for j in idx):
-        # integrate the location out with the node areas (density per km^2)
-        ia, ib = est.names.index(sphere[0]), est.names.index(sphere[1])
-        shape = [1] * est.d
-        shape[ia], shape[ib] = full.sizes[sphere[0]], full.sizes[sphere[1]]
-        area = full["cell_area"].transpose(*sorted(sphere, key=est.names.index)).values
-        summed = (full.values * area.reshape(shape)).sum(axis=(ia, ib), keepdims=True)
-        rest = [j for j in range(est.d) if j not in (ia, ib)]
-        vals = _integrate_out(np.squeeze(summed, axis=(ia, ib)), [axes[j] for j in rest],
-                              [rest.index(j) for j in idx])
-    else:
-        vals = _integrate_out(full.values, axes, idx)
-    # _integrate_out keeps kept axes in their original order; reorder as requested
+    vals = _grid.integrate_out(full.values, axes, idx, sphere=_sphere_axes(full))
+    pm = support.point_mass
+    if pm is not None and pm.index not in idx and est.point_mass_probability > 0 and est.d > 1:
+        others = [k for k in range(est.d) if k != pm.index]
+        on_mass = est.point_mass_grid([full.sizes[est.names[k]] for k in others],
+                                      limits=[(axes[k][0], axes[k][-1]) for k in others])
+        vals = vals + _grid.integrate_out(on_mass.values, [axes[k] for k in others],
+                                          [others.index(k) for k in idx])
+    # integration keeps the kept axes in their original order; reorder as requested
     order = np.argsort(np.argsort(idx))
     vals = np.transpose(vals, order) if vals.ndim > 1 else vals
     kept = [est.names[j] for j in idx]
     coords = {n: full[n] for n in kept}
-    if sphere is not None and sphere[0] in kept:
+    if support.sphere is not None and support.sphere[0] in kept:
         coords["cell_area"] = full["cell_area"]
     attrs = dict(full.attrs)
     attrs["long_name"] = "marginal probability density of " + ", ".join(kept)
-    from .units import density_units
-    attrs["units"] = density_units([est.units[j] for j in idx])
-    if sphere is not None and sphere[0] in kept:
-        other = density_units([est.units[j] for j in idx if est.names[j] not in sphere])
-        attrs["units"] = "km-2" if other == "1" else f"km-2 {other}"
+    attrs["units"] = support.density_units([est.units[j] for j in idx], kept)
+    if pm is not None and pm.index in idx:
+        attrs["note"] = f"continuous part of {pm.name}; its point mass is point_mass_probability"
     return xr.DataArray(vals, dims=kept, coords=coords, name="marginal_density", attrs=attrs)
 
 
@@ -234,15 +212,7 @@ def _exact_cdf(est, pts, upper: bool) -> np.ndarray:
 def _grid_cumulative(est, size, limits, upper: bool):
     g = est.grid(size or DEFAULT_GRID.get(est.d, 24), limits)
     axes = [g[n].values for n in est.names]
-    vals = g.values
-    for ax in range(est.d):
-        if upper:
-            flipped = np.flip(vals, axis=ax)
-            x = -np.flip(axes[ax])
-            vals = np.flip(integrate.cumulative_trapezoid(flipped, x, axis=ax, initial=0.0), axis=ax)
-        else:
-            vals = integrate.cumulative_trapezoid(vals, axes[ax], axis=ax, initial=0.0)
-    return axes, vals, g
+    return axes, _grid.cumulative(g.values, axes, upper=upper), g
 
 
 def _interp(axes, vals, pts, upper: bool):
@@ -315,78 +285,46 @@ def probability_grid(est, kind="exceedance", size=None, limits=None) -> xr.DataA
 # quantiles
 # ---------------------------------------------------------------------------
 
-def quantiles(est, name, probs, *, size=4096) -> np.ndarray:
-    """Marginal quantiles of one variable (inverse of its marginal CDF)."""
+def quantiles(est, name, probs, *, size=None, limits=None) -> np.ndarray:
+    """Marginal quantiles of one variable (inverse of its marginal CDF, point mass included).
+
+    With ``size`` and ``limits`` of a joint grid (per variable), the marginal
+    is integrated from that grid, exactly as a workflow's ``quantile_*``
+    products are; without them, an exact marginal is evaluated on 4096 nodes
+    where one exists, else the joint grid of the default size is integrated.
+    """
     probs = np.atleast_1d(np.asarray(probs, dtype=float))
-    if np.any((probs <= 0) | (probs >= 1)) or np.any(~np.isfinite(probs)):
-        raise InputError("quantile probabilities must lie strictly between 0 and 1")
-    _names_index(est, [name])
-    if est.d == 1:
-        m = est.grid(size)
-    elif marginal_is_exact(est, _names_index(est, [name])):
-        m = marginal(est, [name]).grid(size)
+    k = _names_index(est, [name])[0]
+    pm = est.support.point_mass
+    if size is None and limits is None and (est.d == 1 or marginal_is_exact(est, [k])) and pm is None:
+        m = (est if est.d == 1 else marginal(est, [name])).grid(4096)
     else:
-        m = marginal_grid(est, [name])
-    x = m[name].values
-    c = integrate.cumulative_trapezoid(m.values, x, initial=0.0)
-    c = c / c[-1] if c[-1] > 0 else c
-    # strictly increasing for interpolation
-    keep = np.concatenate([[True], np.diff(c) > 0])
-    return np.interp(probs, c[keep], x[keep])
+        m = marginal_grid(est, [name], size, limits)
+    base, bound = None, float("nan")
+    if pm is not None and pm.index == k:
+        base, bound = est.point_mass_probability, pm.bound
+    return _grid.quantiles(m.values, m[name].values, probs, base=base, bound=bound)
 
 
 # ---------------------------------------------------------------------------
 # highest density regions
 # ---------------------------------------------------------------------------
 
-def hdr_levels_from_grid(values: np.ndarray, cell_volume: float, masses) -> np.ndarray:
-    """Density thresholds f_a with int_{f >= f_a} f = a, from a gridded density.
-
-    Sort the node densities in decreasing order and accumulate their mass
-    (Hyndman 1996 computes the same level from the density at the data).
-    """
-    masses = np.atleast_1d(np.asarray(masses, dtype=float))
-    if np.any((masses <= 0) | (masses >= 1)):
-        raise InputError("HDR masses must lie strictly between 0 and 1")
-    values = np.asarray(values, dtype=float)
-    weight = np.broadcast_to(np.asarray(cell_volume, dtype=float), values.shape).ravel()
-    order = np.argsort(values.ravel())[::-1]
-    f = np.maximum(values.ravel()[order], 0.0)
-    cum = np.cumsum(f * weight[order])
-    total = cum[-1]
-    if total <= 0:
-        return np.full(masses.shape, np.nan)
-    cum = cum / total
-    pos = np.searchsorted(cum, masses)
-    return f[np.clip(pos, 0, f.size - 1)]
-
-
-def mass_above_from_grid(values: np.ndarray, cell_volume: float, level) -> np.ndarray:
-    v = np.maximum(np.asarray(values, dtype=float).ravel(), 0.0)
-    m = v * np.broadcast_to(np.asarray(cell_volume, dtype=float), np.shape(values)).ravel()
-    total = m.sum()
-    level = np.atleast_1d(np.asarray(level, dtype=float))
-    return np.array([m[v >= lv].sum() / total if total > 0 else np.nan for lv in level])
-
-
-def _cell_volume(g: xr.DataArray, est=None):
-    """Weight of a grid node: the uniform cell volume, or per-node weights for a
-    directional estimate (periodic axes, areas on the sphere)."""
-    if est is not None and getattr(est, "is_directional", False):
-        return node_weights(g)
-    return float(np.prod([g[n].values[1] - g[n].values[0] for n in g.dims]))
-
-
 def hdr_levels(est, masses=DEFAULT_HDR_MASSES, *, size=None, limits=None) -> np.ndarray:
-    """Density levels enclosing ``masses`` of the probability (highest-density regions)."""
+    """Density levels enclosing ``masses`` of the probability (highest-density regions).
+
+    Of the gridded density (the continuous part when there is a point mass,
+    normalised to its own mass), with the node weights of
+    :func:`mvkde.products.grid.hdr_levels`.
+    """
     g = est.grid(size or DEFAULT_GRID.get(est.d, 24), limits)
-    return hdr_levels_from_grid(g.values, _cell_volume(g, est), masses)
+    return _grid.hdr_levels(g.values, node_weights(g), masses)
 
 
 def mass_above(est, level, *, size=None, limits=None) -> np.ndarray:
     """Probability mass of the region where the density is at least ``level``."""
     g = est.grid(size or DEFAULT_GRID.get(est.d, 24), limits)
-    return mass_above_from_grid(g.values, _cell_volume(g, est), level)
+    return _grid.mass_above(g.values, node_weights(g), level)
 
 
 # ---------------------------------------------------------------------------
@@ -441,7 +379,6 @@ def conditional(est, given: dict, *, size=None, limits=None) -> xr.DataArray:
     if not total > 0:
         raise InputError(f"the estimate has no mass at the given values {given}: nothing to condition on")
     names = [est.names[j] for j in rest]
-    from .units import density_units
     attrs = {"long_name": f"conditional density of {', '.join(names)} given "
                           + ", ".join(f"{k}={v}" for k, v in given.items()),
              "units": density_units([est.units[j] for j in rest]),
@@ -473,19 +410,15 @@ def bootstrap(est, statistic, replicates=200, seed=None):
     variability of the estimate, not its smoothing bias: they cover
     E f_hat = f * K_H, Hall 1992).  Returns an array (replicates, ...).
     """
-    from .estimator import fit
-
     replicates = int(replicates)
     if replicates < 2:
         raise InputError(f"replicates must be at least 2, got {replicates}")
     rng = np.random.default_rng(seed)
     out = []
-    kw = est.fit_options(list(range(est.d)))
+    every = list(range(est.d))
     for _ in range(replicates):
         idx = rng.choice(est.n, size=est.n, replace=True, p=est.weights)
-        b = fit(est.data[idx], kernel=est.kernel.name, form=est.kernel.form, bandwidth=est.H,
-                engine=est.engine, names=est.names, units=est.units, **kw)
-        out.append(np.asarray(statistic(b)))
+        out.append(np.asarray(statistic(est._refit(est.data[idx], every))))
     return np.stack(out)
 
 
@@ -512,13 +445,38 @@ def bootstrap_bands(est, points=None, *, kind="density", level=0.9, replicates=2
     return lo, hi
 
 
+SPEED_CLASSES = 5
+
+
+def speed_class_edges(lo: float, hi: float, given=None, classes: int = SPEED_CLASSES) -> np.ndarray:
+    """Edges of the speed classes of a wind-rose table: ``given``, else ``classes`` equal classes on [lo, hi].
+
+    One rule for :func:`sector_table` (``lo, hi`` = the estimate's grid limits
+    of the speed variable) and the workflow's ``products.sectors`` (the shared
+    grid's limits), so a table computed either way has the same classes.
+    """
+    if given is not None and len(given):
+        return np.asarray(given, dtype=float)
+    return np.linspace(float(lo), float(hi), int(classes) + 1)
+
+
+def direction_and_speed(est) -> tuple[str, str]:
+    """(direction, speed): the circular variable and the linear one of a 2-variable estimate."""
+    circular = [n for n, p in zip(est.names, est.support.periods) if p is not None]
+    if est.d != 2 or len(circular) != 1:
+        raise InputError("a wind-rose table needs one circular and one linear variable, got "
+                         f"{est.names} (circular: {circular or 'none'})")
+    return circular[0], next(n for n in est.names if n != circular[0])
+
+
 def sector_table(est, direction: str, speed: str, sectors=16, speed_edges=None, *, nodes=8):
     """Joint probabilities per direction sector and speed class (the numbers of a wind rose).
 
     Sector k is centred on ``k * period / sectors`` (north = 0 for degrees) and spans
     half a sector width each side, across the wrap for sector 0.  Speed classes are
-    ``[speed_edges[c], speed_edges[c + 1])``; by default the lower bound (or the grid's
-    lower limit), the sample quartiles and the grid's upper limit.  Each sector x
+    ``[speed_edges[c], speed_edges[c + 1])``; by default five equal classes between the
+    estimate's default grid limits of the speed variable (:func:`speed_class_edges`,
+    the rule the workflow's ``products.sectors`` uses too).  Each sector x
     class cell is integrated with ``nodes``-point Gauss-Legendre rules in direction
     and (three panels) in speed, so no grid node is counted twice at the wrap.
     The estimate's other variables, if any, are refused: condition first.
@@ -529,16 +487,13 @@ def sector_table(est, direction: str, speed: str, sectors=16, speed_edges=None, 
     sectors = int(sectors)
     if sectors < 2:
         raise InputError("sectors must be at least 2")
-    periods = getattr(est, "periods", [None] * est.d)
+    periods = est.support.periods
     period = periods[di] if periods[di] is not None else 360.0
     if periods[si] is not None:
         raise InputError(f"sector_table: speed variable {speed!r} is circular; pass the linear variable as speed")
     width = period / sectors
     limits = est.default_limits()
-    if speed_edges is None:
-        speed_edges = np.quantile(est.data[:, si], [0, .25, .5, .75, 1.0])
-        speed_edges[0], speed_edges[-1] = limits[si][0], limits[si][1]
-    speed_edges = np.asarray(speed_edges, dtype=float)
+    speed_edges = speed_class_edges(limits[si][0], limits[si][1], speed_edges)
     if speed_edges.ndim != 1 or speed_edges.size < 2 or np.any(np.diff(speed_edges) <= 0) \
             or not np.all(np.isfinite(speed_edges)):
         raise InputError("speed_edges must be at least two finite, increasing values")

@@ -1,10 +1,8 @@
-"""Reading inputs and writing outputs (pipeline layer).
+"""File formats the pipeline reads (netCDF files and globs, CSV and Parquet tables).
 
 Inputs are opened lazily: netCDF files (one file, a glob or a list) through
 xarray and dask, so a cell block reads only its own hyperslab; CSV and
-Parquet tables through pandas.  Outputs are always written to a temporary
-name in the destination folder and renamed into place only when complete,
-so a reader never sees a half-written file.
+Parquet tables through pandas.  Writing lives in :mod:`mvkde.pipeline.output`.
 """
 
 from __future__ import annotations
@@ -16,15 +14,11 @@ from pathlib import Path
 
 import xarray as xr
 
-from .errors import InputError
+from ..errors import InputError
 
 NETCDF_SUFFIXES = (".nc", ".nc4", ".netcdf", ".cdf", ".h5")
 TABLE_SUFFIXES = {".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "parquet"}
 
-
-# ---------------------------------------------------------------------------
-# inputs
-# ---------------------------------------------------------------------------
 
 def expand_paths(paths) -> list[Path]:
     """Files named by ``paths`` (paths or globs), sorted within each glob."""
@@ -155,84 +149,6 @@ def sha256(path, block: int = 1 << 20) -> str:
         while chunk := fh.read(block):
             h.update(chunk)
     return h.hexdigest()
-
-
-# ---------------------------------------------------------------------------
-# outputs
-# ---------------------------------------------------------------------------
-
-def temporary_path(path: Path) -> Path:
-    """Where ``path`` is written before the rename: ``.NAME.PID.partial`` in the same folder."""
-    return path.with_name(f".{path.name}.{os.getpid()}.partial")
-
-
-def _pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:  # someone else's live process
-        return True
-    return True
-
-
-def clean_stale_partials(path) -> list[Path]:
-    """Remove temporary files of ``path`` left by runs that died (their PID is gone).
-
-    A run killed while writing (SIGKILL, a node lost) leaves
-    ``.NAME.PID.partial``; a file whose PID still runs belongs to a run in
-    progress and is kept.  Returns the files removed.
-    """
-    path = Path(path)
-    removed = []
-    prefix = f".{path.name}."
-    folder = path.parent if str(path.parent) else Path(".")
-    if not folder.is_dir():
-        return removed
-    for f in folder.glob(glob.escape(prefix) + "*.partial"):
-        pid_text = f.name[len(prefix): -len(".partial")]
-        if not pid_text.isdigit() or int(pid_text) == os.getpid() or _pid_alive(int(pid_text)):
-            continue
-        try:
-            f.unlink()
-            removed.append(f)
-        except OSError:
-            pass
-    return removed
-
-
-def check_output_path(path, *, overwrite: bool = False) -> Path:
-    """Refuse an existing output (unless ``overwrite``) or an unwritable folder, before any work."""
-    path = Path(path)
-    if path.exists() and not overwrite:
-        raise InputError(f"output {path} exists: pass --overwrite (or choose another output.path)")
-    if path.exists() and path.is_dir():
-        raise InputError(f"output.path {path} is a folder: name a file, e.g. {path / 'density.nc'}")
-    folder = path.parent if str(path.parent) else Path(".")
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise InputError(f"cannot create output folder {folder}: {exc.strerror}: choose another output.path") from None
-    if not os.access(folder, os.W_OK):
-        raise InputError(f"output folder {folder} is not writable: choose another output.path")
-    return path
-
-
-def write_netcdf_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding=None) -> Path:
-    """Write ``ds`` to ``path`` through a temporary file and an atomic rename."""
-    path = check_output_path(path, overwrite=overwrite)
-    clean_stale_partials(path)
-    tmp = temporary_path(path)
-    try:
-        ds.to_netcdf(tmp, engine="netcdf4", encoding=encoding or {})
-        os.replace(tmp, path)
-    except OSError as exc:  # disk full, quota, a folder removed under the run
-        raise InputError(f"cannot write output {path}: {exc.strerror or exc}: free space or choose another "
-                         "output.path") from None
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return path
 
 
 def read_points(path, names, source=None) -> "np.ndarray":

@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import copy
 import datetime as _dt
-import difflib
 import math
 import os
 import tomllib
@@ -24,10 +23,12 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
 
-from .errors import ConfigError
+from .. import boundary, engines, kernels
+from ..bandwidth import PARAMETRIZATIONS, SELECTORS, BandwidthMatrix
+from ..errors import ConfigError, MvkdeError, closest_names
 
 __all__ = ["SCHEMA", "Workflow", "load", "loads", "apply_override", "SEASONS", "REQUIRED",
-           "available_choices", "key_reference"]
+           "estimator_choices", "key_reference"]
 
 SEASONS = ("DJF", "MAM", "JJA", "SON")  # meteorological seasons (common practice)
 
@@ -41,43 +42,19 @@ REQUIRED = _Required()
 
 
 # ---------------------------------------------------------------------------
-# choices: the documented vocabulary, and what this installation provides
+# choices: what the library's registries hold
 # ---------------------------------------------------------------------------
 
-def _library_choices() -> dict[str, tuple[str, ...]]:
-    """Option names the installed library layer accepts, read from its registries."""
-    from . import boundary, engines, kernels
-    from .bandwidth import PARAMETRIZATIONS, SELECTORS
-
-    names = tuple(kernels.KERNEL_NAMES) + tuple(getattr(kernels, "HIGHER_ORDER_NAMES", ()))
-    methods = tuple(m for m in boundary.BOUNDARY_METHODS)
+def estimator_choices() -> dict[str, tuple[str, ...]]:
+    """Option names the library accepts, read from its registries (one source of truth)."""
     return {
-        "kernel": names,
+        "kernel": tuple(kernels.KERNEL_NAMES) + tuple(kernels.HIGHER_ORDER_NAMES),
         "form": tuple(kernels.FORMS),
         "bandwidth": tuple(SELECTORS),
         "parametrization": tuple(PARAMETRIZATIONS),
-        "boundary": methods,
+        "boundary": tuple(boundary.BOUNDARY_METHODS),
         "engine": tuple(engines.ENGINES),
     }
-
-
-# Names the design promises (shared/DESIGN.md).  A workflow naming one of these
-# is well formed even where this installation lacks it; the runner then says
-# the option is not available rather than calling it a typo.
-_DOCUMENTED = {
-    "kernel": ("uniform", "triangular", "epanechnikov", "biweight", "triweight", "cosine", "gaussian"),
-    "form": ("product", "spherical"),
-    "bandwidth": ("normal", "lscv", "scv", "plugin", "mlcv"),
-    "parametrization": ("full", "diagonal", "scalar"),
-    "boundary": ("none", "reflect", "renormalize", "linear", "transform", "beta", "gamma"),
-    "engine": ("auto", "exact"),
-}
-
-
-def available_choices(option: str) -> tuple[str, ...]:
-    """Valid names for an estimator option: the documented ones plus any the library registers."""
-    lib = _library_choices()[option]
-    return tuple(dict.fromkeys(_DOCUMENTED[option] + lib))
 
 
 # ---------------------------------------------------------------------------
@@ -99,11 +76,7 @@ class Key:
 
 
 def _fail(where: str, value, expected: str, valid=None) -> ConfigError:
-    hint = ""
-    if valid is not None and isinstance(value, str):
-        match = difflib.get_close_matches(value, [str(v) for v in valid], n=1, cutoff=0.5)
-        if match:
-            hint = f" (did you mean {match[0]!r}?)"
+    hint = closest_names(value, valid, cutoff=0.5) if valid is not None and isinstance(value, str) else ""
     return ConfigError(f"{where} = {_show(value)} is not valid: expected {expected}{hint}")
 
 
@@ -154,7 +127,7 @@ def _float(optional=False, positive=False):
 
 def _choice(option):
     def check(value, where):
-        valid = available_choices(option)
+        valid = estimator_choices()[option]
         key = value.strip().lower() if isinstance(value, str) else value
         if key not in valid:
             raise _fail(where, value, "one of " + ", ".join(valid), valid)
@@ -576,13 +549,8 @@ def _where(source, path, overridden) -> str:
 
 def _unknown(source, path, key, valid) -> ConfigError:
     full = f"{path}.{key}" if path else key
-    return ConfigError(f"{source}: unknown key {full!r}" + _closest(key, valid)
+    return ConfigError(f"{source}: unknown key {full!r}" + closest_names(key, valid)
                        + f"; valid keys here: {', '.join(sorted(valid))}")
-
-
-def _closest(name, valid) -> str:
-    match = difflib.get_close_matches(str(name), list(valid), n=1, cutoff=0.6)
-    return f" (did you mean {match[0]!r}?)" if match else ""
 
 
 def _validate(raw: dict, source: str, overridden=frozenset()) -> dict:
@@ -614,7 +582,7 @@ def _validate(raw: dict, source: str, overridden=frozenset()) -> dict:
     for v, table in given_vars.items():
         if v not in names:
             raise ConfigError(f"{source}: [variables.{v}] names a variable not in input.variables "
-                              f"{names}" + _closest(v, names))
+                              f"{names}" + closest_names(v, names))
         if not isinstance(table, dict):
             raise ConfigError(f"{source}: variables.{v} must be a table ([variables.{v}])")
         for k in table:
@@ -643,7 +611,7 @@ def _cross_checks(spec: dict, source: str) -> None:
     for v in spec["grid"]["limits"]:
         if v not in names:
             raise ConfigError(f"{source}: grid.limits.{v} names a variable not in input.variables "
-                              f"{names}" + _closest(v, names))
+                              f"{names}" + closest_names(v, names))
     overlap = set(names) & set(inp["sample_dims"])
     if overlap:
         raise ConfigError(f"{source}: input.sample_dims {inp['sample_dims']} contains variable name(s) "
@@ -678,9 +646,6 @@ def _cross_checks(spec: dict, source: str) -> None:
                           f"input.min_samples = {inp['min_samples']}")
     H = spec["estimator"]["bandwidth"]
     if isinstance(H, list):
-        from .bandwidth import BandwidthMatrix
-        from .errors import MvkdeError
-
         if len(H) != d or any(len(r) != d for r in H):
             raise ConfigError(f"{source}: estimator.bandwidth is a {len(H)} x {len(H[0])} matrix"
                               f"{'' if all(len(r) == len(H[0]) for r in H) else ' with rows of unequal length'}"
@@ -747,12 +712,12 @@ def key_reference() -> str:
         for k, key in keys.items():
             doc = key.doc
             if key.choices:
-                doc += " (one of: " + ", ".join(_DOCUMENTED[key.choices]) + ")"
+                doc += " (one of: " + ", ".join(estimator_choices()[key.choices]) + ")"
             lines.append(f"| `{sec}.{k}` | {fmt(key.default)} | {doc} |")
     for k, key in VARIABLE_KEYS.items():
         lines.append(f"| `variables.NAME.{k}` | {fmt(key.default)} | {key.doc} |")
     return "\n".join(lines)
 
 
-if __name__ == "__main__":  # python -m mvkde.workflow > table for docs/workflow_keys.md
+if __name__ == "__main__":  # python -m mvkde.pipeline.workflow > table for docs/workflow_keys.md
     print(key_reference())

@@ -1,0 +1,302 @@
+"""One block of cells: its samples as arrays, one call of the library's batch door, a typed result.
+
+:func:`process_block` is the dask task.  It drops missing values per cell
+(and counts them), splits each cell's samples by season or month, subsamples
+long records (seeded by the cell, so results never depend on the block
+layout), hands every usable sample of the block to
+:func:`mvkde.cells.fit_cells` in ONE call, and returns a :class:`BlockResult`.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..cells import CellProducts, fit_cells
+from ..errors import ConfigError, MvkdeError
+from ..estimator import fit
+from ..products.grid import node_weights
+from .readers import read_points
+
+__all__ = ["FLAGS", "GRID_MASS_TOLERANCE", "CellSettings", "BlockResult", "settings_for", "check_settings",
+           "process_block"]
+
+#: bit flags of the ``flags`` output variable (CF flag_masks / flag_meanings)
+FLAGS = {
+    "too_few_samples": 1,
+    "fit_failed": 2,
+    "bandwidth_not_converged": 4,
+    "bandwidth_at_edge": 8,
+    "grid_mass_off_by_more_than_1_percent": 16,
+    "subsampled": 32,
+}
+GRID_MASS_TOLERANCE = 0.01
+
+
+@dataclass
+class CellSettings:
+    """Everything a block task needs to fit a cell (small and picklable)."""
+
+    names: list
+    units: list
+    kernel: str
+    form: str
+    bandwidth: str
+    parametrization: str
+    bounds: list | None
+    boundary: str | None
+    point_masses: list | None
+    periods: list | None
+    engine: str
+    axes: list
+    min_samples: int
+    max_samples: int | None
+    seed: int
+    n_splits: int
+    n_cell_dims: int
+    sphere: list | None = None
+    products: CellProducts = field(default_factory=CellProducts)
+
+    @property
+    def d(self) -> int:
+        return len(self.names)
+
+    @property
+    def point_mass_index(self) -> int | None:
+        if self.point_masses is None:
+            return None
+        return next((j for j, t in enumerate(self.point_masses) if t is not None), None)
+
+    def fit_kwargs(self) -> dict:
+        """Keyword arguments of :func:`mvkde.fit` and :func:`mvkde.cells.fit_cells`."""
+        return dict(kernel=self.kernel, form=self.form, bandwidth=self.bandwidth,
+                    parametrization=self.parametrization, engine=self.engine, names=self.names,
+                    units=self.units, bounds=self.bounds, boundary=self.boundary if self.bounds else None,
+                    periods=self.periods, sphere=tuple(self.sphere) if self.sphere else None,
+                    point_masses=self.point_masses)
+
+
+def settings_for(plan, axes) -> CellSettings:
+    """The cell settings of a planned run on the shared grid ``axes``."""
+    wf = plan.workflow
+    est, inp = wf["estimator"], wf["input"]
+    vars_ = [wf.variable(v) for v in plan.names]
+    bounds = [tuple(t["bounds"]) if t["bounds"] else None for t in vars_]
+    periods = [t["period"] for t in vars_]
+    masses = [t["point_mass"] for t in vars_]
+    has_bounds = any(b is not None for b in bounds)
+    return CellSettings(
+        names=plan.names, units=plan.units, kernel=est["kernel"], form=est["form"],
+        bandwidth=est["bandwidth"], parametrization=est["parametrization"],
+        bounds=bounds if has_bounds else None,
+        boundary=est["boundary"] if has_bounds else None,
+        point_masses=masses if any(m is not None for m in masses) else None,
+        periods=periods if any(p is not None for p in periods) else None,
+        engine=est["engine"], axes=[np.asarray(a, dtype=float) for a in axes] if axes else [],
+        min_samples=inp["min_samples"], max_samples=inp["max_samples"], seed=est["seed"],
+        n_splits=plan.n_splits, n_cell_dims=len(plan.cell_dims), sphere=est.get("sphere"),
+        products=_cell_products(wf, plan))
+
+
+def _cell_products(wf, plan) -> CellProducts:
+    """The [products] that are computed per cell from its fitted estimate."""
+    prod = wf["products"]
+    points = None
+    if prod["points"] is not None:
+        points = read_points(prod["points"], plan.names, wf.source)
+    return CellProducts(
+        thresholds=np.asarray(prod["thresholds"], dtype=float).reshape(-1, len(plan.names)),
+        samples=int(prod["samples"]), points=points, bootstrap=int(prod["bootstrap"]),
+        band_level=float(prod["band_level"]), standard_error=bool(prod["standard_error"]),
+        seed=int(wf["estimator"]["seed"]), sectors=int(prod["sectors"]),
+        speed_classes=list(prod["speed_classes"]))
+
+
+def check_settings(wf, plan) -> None:
+    """Refuse, before any work, [estimator] and [variables] settings the library refuses.
+
+    A dry run of :func:`mvkde.fit` on a small synthetic sample inside the
+    declared support surfaces any combination the library refuses, named by
+    the workflow keys.
+    """
+    settings = settings_for(plan, None)
+    try:
+        fit(_probe_sample(settings), **{**settings.fit_kwargs(), "bandwidth": "normal"})
+    except MvkdeError as exc:
+        raise ConfigError(f"{wf.source}: the [estimator] and [variables] settings are refused by mvkde.fit: "
+                          f"{exc}") from None
+
+
+def _probe_sample(settings: CellSettings, n: int = 60) -> np.ndarray:
+    rng = np.random.default_rng(0)
+    cols = []
+    for j in range(settings.d):
+        lo, hi = (settings.bounds[j] if settings.bounds and settings.bounds[j] else (-math.inf, math.inf))
+        t = settings.point_masses[j] if settings.point_masses else None
+        period = settings.periods[j] if settings.periods else None
+        sphere = list(settings.sphere or [])
+        if settings.names[j] in sphere:
+            span = 60.0 if sphere.index(settings.names[j]) == 0 else 180.0
+            col = rng.uniform(-span, span, n)
+        elif period is not None:
+            col = rng.uniform(0, period, n)
+        elif math.isfinite(lo) and math.isfinite(hi):
+            base = lo if t is None else t
+            col = base + (hi - base) * rng.uniform(0.1, 0.9, n)
+        elif math.isfinite(lo):
+            col = (lo if t is None else t) + rng.exponential(1.0, n) + 1e-3
+        elif math.isfinite(hi):
+            col = hi - rng.exponential(1.0, n) - 1e-3
+        else:
+            col = rng.normal(size=n)
+        if t is not None:
+            col[: n // 4] = t
+        cols.append(col)
+    return np.column_stack(cols)
+
+
+# ---------------------------------------------------------------------------
+# the block task
+# ---------------------------------------------------------------------------
+
+@dataclass
+class BlockResult:
+    """What one block task returns.
+
+    Attributes
+    ----------
+    arrays : dict of str to ndarray
+        Output arrays over (cell of the block, split, ...): ``density``,
+        ``n_samples``, ``bandwidth``, diagnostics, point mass and per-cell
+        products.
+    failures : list of (int, int, str)
+        (cell index in the run, split index, reason) of every cell the
+        estimator refused.
+    engines : set of str
+        Evaluation engines used in the block.
+    paths : set of str
+        How the batch door computed the block (``CellBatch.path``).
+    """
+
+    arrays: dict
+    failures: list = field(default_factory=list)
+    engines: set = field(default_factory=set)
+    paths: set = field(default_factory=set)
+
+
+def _cell_samples(vals, codes, c, S, settings, first_cell, arrays):
+    """The usable samples of cell ``c`` per split, with counts and flags filled in."""
+    finite = np.isfinite(vals[c]).all(axis=1)
+    for s in range(S):
+        member = codes[c] == s
+        x = vals[c][member & finite]
+        arrays["n_missing"][c, s] = int((member & ~finite).sum())
+        if settings.max_samples is not None and len(x) > settings.max_samples:
+            rng = np.random.default_rng([settings.seed, first_cell + c, s])
+            x = x[np.sort(rng.choice(len(x), settings.max_samples, replace=False))]
+            arrays["flags"][c, s] |= FLAGS["subsampled"]
+        arrays["n_samples"][c, s] = len(x)
+        if len(x) < settings.min_samples:
+            arrays["flags"][c, s] |= FLAGS["too_few_samples"]
+            continue
+        yield s, x
+
+
+def _empty_arrays(ncell: int, S: int, settings: CellSettings) -> dict:
+    d = settings.d
+    grid_shape = tuple(len(a) for a in settings.axes)
+    j = settings.point_mass_index
+    out = {
+        "density": np.full((ncell, S) + grid_shape, np.nan),
+        "n_samples": np.zeros((ncell, S), dtype=np.int32),
+        "n_missing": np.zeros((ncell, S), dtype=np.int32),
+        "bandwidth": np.full((ncell, S, d, d), np.nan),
+        "grid_mass": np.full((ncell, S), np.nan),
+        "bandwidth_converged": np.zeros((ncell, S), dtype=np.int8),
+        "flags": np.zeros((ncell, S), dtype=np.uint8),
+    }
+    if j is not None:
+        out["point_mass_probability"] = np.full((ncell, S), np.nan)
+        if d > 1:
+            other_shape = tuple(n for k, n in enumerate(grid_shape) if k != j)
+            out["density_at_point_mass"] = np.full((ncell, S) + other_shape, np.nan)
+    return out
+
+
+def process_block(values, codes, first_cell: int, tile_shape: tuple, settings: CellSettings) -> BlockResult:
+    """One dask task: every cell (and split) of a block, fitted and evaluated.
+
+    ``values`` has shape (*tile_shape, *sample_shape, d); ``codes`` (split index
+    per sample, -1 for no sample) broadcasts to ``values.shape[:-1]``.
+    Missing values are dropped per cell and counted; a cell with fewer valid
+    samples than ``settings.min_samples`` or refused by the library gets NaN
+    and a flag.  ``first_cell`` and the cell's position seed its subsample, so
+    results do not depend on how cells are grouped into blocks.
+    """
+    values = np.asarray(values, dtype=float)
+    d = settings.d
+    ncell = int(np.prod(tile_shape)) if tile_shape else 1
+    vals = values.reshape(ncell, -1, d)
+    codes = np.broadcast_to(np.asarray(codes), values.shape[:-1]).reshape(ncell, -1)
+    S = settings.n_splits
+    arrays = _empty_arrays(ncell, S, settings)
+    todo, where = [], []
+    for c in range(ncell):
+        for s, x in _cell_samples(vals, codes, c, S, settings, first_cell, arrays):
+            todo.append(x)
+            where.append((c, s))
+
+    batch = fit_cells(todo, axes=settings.axes, products=settings.products,
+                      keys=[(first_cell + c, s) for c, s in where], **settings.fit_kwargs())
+    result = BlockResult(arrays, paths={batch.path})
+    _store_batch(result, batch, where, settings, first_cell)
+    return result
+
+
+def _store_batch(result: BlockResult, batch, where, settings: CellSettings, first_cell: int) -> None:
+    """Copy the batch's per-cell results into the block arrays, with diagnostics."""
+    arrays = result.arrays
+    j = settings.point_mass_index
+    d = settings.d
+    weights = node_weights(settings.axes, periods=settings.periods, sphere=_sphere_axes(settings))
+    other = [k for k in range(d) if k != j]
+    other_weights = node_weights([settings.axes[k] for k in other]) if (j is not None and d > 1) else None
+    ncell, S = arrays["flags"].shape
+    for k, (c, s) in enumerate(where):
+        for name, value in batch.products.items():
+            if name not in arrays:
+                arrays[name] = np.full((ncell, S) + value.shape[1:], np.nan)
+            arrays[name][c, s] = value[k]
+        if batch.errors[k] is not None:
+            arrays["flags"][c, s] |= FLAGS["fit_failed"]
+            result.failures.append((first_cell + c, s, batch.errors[k]))
+            continue
+        arrays["density"][c, s] = batch.density[k]
+        arrays["bandwidth"][c, s] = batch.H[k]
+        arrays["bandwidth_converged"][c, s] = int(batch.converged[k])
+        result.engines.add(batch.engine[k])
+        if not batch.converged[k]:
+            arrays["flags"][c, s] |= FLAGS["bandwidth_not_converged"]
+        if batch.at_edge[k]:
+            arrays["flags"][c, s] |= FLAGS["bandwidth_at_edge"]
+        mass = float(np.sum(batch.density[k] * weights))
+        if j is not None:
+            p = float(batch.point_mass_probability[k])
+            arrays["point_mass_probability"][c, s] = p
+            if d > 1:
+                arrays["density_at_point_mass"][c, s] = batch.density_at_point_mass[k]
+                mass += float(np.sum(batch.density_at_point_mass[k] * other_weights))
+            else:
+                mass += p
+        arrays["grid_mass"][c, s] = mass
+        if abs(mass - 1.0) > GRID_MASS_TOLERANCE:
+            arrays["flags"][c, s] |= FLAGS["grid_mass_off_by_more_than_1_percent"]
+
+
+def _sphere_axes(settings: CellSettings):
+    """Indices (latitude, longitude) of a spherical location among the variables, or None."""
+    if not settings.sphere:
+        return None
+    return settings.names.index(settings.sphere[0]), settings.names.index(settings.sphere[1])

@@ -1,0 +1,213 @@
+"""The output of a run: the labelled Dataset, its encoding, and writing it atomically.
+
+:func:`build_dataset` labels the gathered block arrays (CF attributes, the
+shared grid as coordinates, diagnostics, point mass and the products of
+:mod:`mvkde.pipeline.products`); :func:`write_netcdf_atomic` writes a
+temporary ``.NAME.PID.partial`` in the destination folder and renames it into
+place only when complete, so a reader never sees a half-written file.
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from ..directional import node_areas_km2
+from ..estimator import CAUTION
+from ..errors import InputError
+from ..units import density_units
+from .blocks import FLAGS, CellSettings
+from .inputs import Plan
+from .products import add_cell_products, add_grid_products
+
+
+def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Dataset:
+    """The labelled output: density, n_samples, bandwidth and diagnostics with CF attributes.
+
+    ``results`` is what :func:`~mvkde.pipeline.schedule.execute` returns.
+    """
+    results = results["arrays"]
+    names, units = plan.names, plan.units
+    cdims = list(plan.cell_dims)
+    split = [plan.split_dim] if plan.split_dim else []
+    lead = cdims + split
+
+    def squeeze(a):  # drop the split axis when there is no split
+        return a if split else a.reshape(a.shape[: len(cdims)] + a.shape[len(cdims) + 1:])
+
+    coords = {}
+    for dname in cdims:
+        if dname in plan.cell_coords:
+            c = plan.cell_coords[dname]
+            coords[dname] = (dname, np.asarray(c.values), dict(getattr(c, "attrs", {})))
+    if split:
+        coords[plan.split_dim] = (plan.split_dim, np.asarray(plan.split_labels),
+                                  {"long_name": "meteorological season (DJF, MAM, JJA, SON)"
+                                   if plan.split_dim == "season" else "month of the year"})
+    sphere = list(settings.sphere or [])
+    for j, (v, ax, u) in enumerate(zip(names, settings.axes, units)):
+        attrs = {"long_name": plan.variable_attrs.get(v, {}).get("long_name", v)}
+        if u:
+            attrs["units"] = u
+        if "standard_name" in plan.variable_attrs.get(v, {}):
+            attrs["standard_name"] = plan.variable_attrs[v]["standard_name"]
+        if settings.periods is not None and settings.periods[j] is not None:
+            attrs["period"] = float(settings.periods[j])
+        if v in sphere:
+            # no period attribute on the longitude: plot and inspect read a period as a circular
+            # variable to draw on a polar axis, and a location belongs on a map
+            attrs.setdefault("units", "degrees_north" if sphere.index(v) == 0 else "degrees_east")
+        coords[v] = (v, ax, attrs)
+    if sphere:
+        ia, ib = names.index(sphere[0]), names.index(sphere[1])
+        area = node_areas_km2(settings.axes[ia], settings.axes[ib])
+        coords["cell_area"] = (tuple(sphere), area, {
+            "units": "km2", "long_name": "area of the Earth's surface each grid node stands for (trapezoid "
+                                         "rule on the sphere)"})
+    coords["variable_row"] = ("variable_row", np.array(names))
+    coords["variable_column"] = ("variable_column", np.array(names))
+
+    j = settings.point_mass_index
+    dens_units = density_units([u for v, u in zip(names, units) if v not in sphere], per_km2=bool(sphere))
+    long = "joint probability density of " + ", ".join(names)
+    if j is not None:
+        long += f" (continuous part: {names[j]} > {settings.point_masses[j]})"
+    data_vars = {
+        "density": (lead + names, squeeze(results["density"]), {
+            "long_name": long, "units": dens_units, "caution": CAUTION,
+            "grid_note": "evaluated at the nodes of the shared grid (numpy.linspace(lo, hi, size) per variable)"}),
+        "n_samples": (lead, squeeze(results["n_samples"]), {
+            "long_name": "number of valid samples fitted in the cell", "units": "1"}),
+        "n_missing": (lead, squeeze(results["n_missing"]), {
+            "long_name": "number of samples dropped because a variable was missing", "units": "1"}),
+        "bandwidth": (lead + ["variable_row", "variable_column"], squeeze(results["bandwidth"]), {
+            "long_name": "bandwidth matrix H (covariance of the scaled kernel)",
+            "units_note": "entry (i, j) has the units of variable i times those of variable j"}),
+        "grid_mass": (lead, squeeze(results["grid_mass"]), {
+            "long_name": "integral of the density over the grid (trapezoid rule), point mass included",
+            "units": "1"}),
+        "bandwidth_converged": (lead, squeeze(results["bandwidth_converged"]), {
+            "long_name": "1 if the bandwidth selector reported convergence", "units": "1"}),
+        "flags": (lead, squeeze(results["flags"]), {
+            "long_name": "quality flags of the cell",
+            "flag_masks": np.array(list(FLAGS.values()), dtype=np.uint8),
+            "flag_meanings": " ".join(FLAGS)}),
+    }
+    if j is not None:
+        data_vars["point_mass_probability"] = (lead, squeeze(results["point_mass_probability"]), {
+            "long_name": f"probability that {names[j]} <= {settings.point_masses[j]} (the point mass)",
+            "units": "1"})
+        if "density_at_point_mass" in results:
+            others = [v for k, v in enumerate(names) if k != j]
+            data_vars["density_at_point_mass"] = (lead + others, squeeze(results["density_at_point_mass"]), {
+                "long_name": "density of " + ", ".join(others) + f" on the point mass of {names[j]} "
+                             f"(integrates to point_mass_probability)",
+                "units": density_units([u for k, u in enumerate(units) if k != j])})
+    ds = xr.Dataset(data_vars, coords=coords)
+    add_cell_products(ds, results, settings, lead, squeeze)
+    add_grid_products(ds, plan.workflow["products"], names, j,
+                      settings.bounds[j][0] if j is not None else float("nan"))
+    return ds
+
+
+def encoding_for(ds: xr.Dataset, plan: Plan, output: dict) -> dict:
+    """Compressed, chunked netCDF4 encoding: one chunk = one block of cells with its whole grid."""
+    enc = {}
+    for name, var in ds.data_vars.items():
+        chunks = []
+        for dname in var.dims:
+            if dname in plan.cell_dims:
+                chunks.append(plan.tile[plan.cell_dims.index(dname)])
+            else:
+                chunks.append(var.sizes[dname])
+        e = {"zlib": output["complevel"] > 0, "complevel": output["complevel"] or 1} if output["complevel"] else {}
+        if var.ndim:
+            e["chunksizes"] = tuple(max(1, c) for c in chunks)
+        if name in ("density", "density_at_point_mass") and output["dtype"] == "float32":
+            e["dtype"] = "float32"
+        if var.dtype.kind == "f":
+            e["_FillValue"] = np.nan
+        enc[name] = e
+    return enc
+
+
+# ---------------------------------------------------------------------------
+# writing
+# ---------------------------------------------------------------------------
+
+def temporary_path(path: Path) -> Path:
+    """Where ``path`` is written before the rename: ``.NAME.PID.partial`` in the same folder."""
+    return path.with_name(f".{path.name}.{os.getpid()}.partial")
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # someone else's live process
+        return True
+    return True
+
+
+def clean_stale_partials(path) -> list[Path]:
+    """Remove temporary files of ``path`` left by runs that died (their PID is gone).
+
+    A run killed while writing (SIGKILL, a node lost) leaves
+    ``.NAME.PID.partial``; a file whose PID still runs belongs to a run in
+    progress and is kept.  Returns the files removed.
+    """
+    path = Path(path)
+    removed = []
+    prefix = f".{path.name}."
+    folder = path.parent if str(path.parent) else Path(".")
+    if not folder.is_dir():
+        return removed
+    for f in folder.glob(glob.escape(prefix) + "*.partial"):
+        pid_text = f.name[len(prefix): -len(".partial")]
+        if not pid_text.isdigit() or int(pid_text) == os.getpid() or _pid_alive(int(pid_text)):
+            continue
+        try:
+            f.unlink()
+            removed.append(f)
+        except OSError:
+            pass
+    return removed
+
+
+def check_output_path(path, *, overwrite: bool = False) -> Path:
+    """Refuse an existing output (unless ``overwrite``) or an unwritable folder, before any work."""
+    path = Path(path)
+    if path.exists() and not overwrite:
+        raise InputError(f"output {path} exists: pass --overwrite (or choose another output.path)")
+    if path.exists() and path.is_dir():
+        raise InputError(f"output.path {path} is a folder: name a file, e.g. {path / 'density.nc'}")
+    folder = path.parent if str(path.parent) else Path(".")
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"cannot create output folder {folder}: {exc.strerror}: choose another output.path") from None
+    if not os.access(folder, os.W_OK):
+        raise InputError(f"output folder {folder} is not writable: choose another output.path")
+    return path
+
+
+def write_netcdf_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding=None) -> Path:
+    """Write ``ds`` to ``path`` through a temporary file and an atomic rename."""
+    path = check_output_path(path, overwrite=overwrite)
+    clean_stale_partials(path)
+    tmp = temporary_path(path)
+    try:
+        ds.to_netcdf(tmp, engine="netcdf4", encoding=encoding or {})
+        os.replace(tmp, path)
+    except OSError as exc:  # disk full, quota, a folder removed under the run
+        raise InputError(f"cannot write output {path}: {exc.strerror or exc}: free space or choose another "
+                         "output.path") from None
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+    return path

@@ -1,0 +1,264 @@
+"""Scheduling: the dask scheduler a workflow names, progress lines, and running the blocks.
+
+:class:`Scheduler` opens dask's embedded threads or processes scheduler, a
+local dask.distributed cluster or a connection to a running scheduler;
+:func:`execute` makes one delayed :func:`~mvkde.pipeline.blocks.process_block`
+per block, runs them, saves each finished block to the resume store when
+there is one, and gathers the block results into arrays over the cells.
+"""
+
+from __future__ import annotations
+
+import logging
+import sys
+import time
+
+import numpy as np
+
+from ..errors import ConfigError
+from .blocks import BlockResult, CellSettings, process_block
+from .inputs import Plan
+
+class Progress:
+    """A bar on a terminal; plain log lines (every 10 % or 30 s) otherwise."""
+
+    def __init__(self, total: int, stream=None, label="blocks"):
+        self.total, self.done, self.label = max(1, total), 0, label
+        self.stream = stream if stream is not None else sys.stderr
+        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.t0 = self.last = time.perf_counter()
+        self.last_tenth = -1
+
+    def update(self, n: int = 1) -> None:
+        self.done += n
+        now = time.perf_counter()
+        frac = self.done / self.total
+        if self.tty:
+            width = 30
+            fill = int(round(width * frac))
+            self.stream.write(f"\r[{'#' * fill}{'.' * (width - fill)}] {self.done}/{self.total} {self.label} "
+                              f"{now - self.t0:6.1f} s")
+            if self.done >= self.total:
+                self.stream.write("\n")
+            self.stream.flush()
+            return
+        tenth = int(frac * 10)
+        if tenth > self.last_tenth or now - self.last > 30 or self.done >= self.total:
+            self.last_tenth, self.last = tenth, now
+            print(f"mvkde run: {self.done}/{self.total} {self.label} done ({100 * frac:.0f} %), "
+                  f"{now - self.t0:.1f} s", file=self.stream, flush=True)
+
+
+def _worker_environ() -> dict:
+    """Environment of local-cluster worker processes (set before they start).
+
+    dask.distributed's default sets MALLOC_TRIM_THRESHOLD_=65536, which also
+    fixes glibc's mmap threshold at 128 kB: every array above that is then
+    mapped and unmapped afresh, page faults included, and a block of cells
+    allocates thousands of such temporaries (the workers ran 1.3-3 x slower
+    than the same code in the main process).  Here arrays up to 32 MB come
+    from the heap and up to 256 MB of freed heap is kept for reuse; BLAS and
+    OpenMP stay at one thread per single-threaded worker, as in dask's default.
+    Variables already set in the environment win (dask.distributed's rule).
+    """
+    import dask
+
+    env = dict(dask.config.get("distributed.nanny.pre-spawn-environ", {}) or {})
+    env.update({"MALLOC_TRIM_THRESHOLD_": 256 * 2**20, "MALLOC_MMAP_THRESHOLD_": 32 * 2**20,
+                "OMP_NUM_THREADS": 1, "MKL_NUM_THREADS": 1, "OPENBLAS_NUM_THREADS": 1})
+    return env
+
+
+class Scheduler:
+    """The dask scheduler named by ``compute.scheduler``; a context manager.
+
+    "threads", "processes" and "synchronous" use dask's embedded local
+    schedulers; "local-cluster" starts a dask.distributed LocalCluster with
+    ``compute.workers`` single-threaded worker processes; an address
+    ("tcp://HOST:PORT") connects to a running dask.distributed scheduler.
+    """
+
+    def __init__(self, compute: dict):
+        self.name = compute["scheduler"]
+        self.workers = compute["workers"]
+        self.memory_limit = compute["memory_limit"]
+        self.client = None
+        self.cluster = None
+
+    def __enter__(self):
+        if self.name == "threads" and self.workers != 1:
+            self._limit_blas_threads()
+        if self.name in ("threads", "processes", "synchronous"):
+            return self
+        try:
+            from distributed import Client, LocalCluster
+        except ImportError:  # pragma: no cover - distributed is a runtime dependency
+            raise ConfigError("compute.scheduler needs dask.distributed: pip install distributed") from None
+        if self.name == "local-cluster":
+            import os
+
+            import dask
+
+            n = self.workers or os.cpu_count() or 1
+            with dask.config.set({"distributed.nanny.pre-spawn-environ": _worker_environ()}):
+                self.cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                                            memory_limit=self.memory_limit, dashboard_address=None,
+                                            silence_logs=logging.ERROR)
+            self.client = Client(self.cluster)
+        else:
+            try:
+                self.client = Client(self.name, timeout="20s")
+            except (OSError, TimeoutError, ValueError) as exc:
+                raise ConfigError(f"compute.scheduler = {self.name!r}: cannot connect to a dask scheduler "
+                                  f"there ({exc}); start one (dask scheduler) or use \"local-cluster\"") from None
+        return self
+
+    def _limit_blas_threads(self) -> None:
+        """One BLAS/OpenMP thread per task while several dask threads run tasks.
+
+        Each dask thread already keeps a core busy; a BLAS call that wakes its
+        own pool on top would oversubscribe the cores.  Uses threadpoolctl when
+        it is installed (it is not a dependency); without it the few BLAS calls
+        of a block (most of the work is FFTs and element-wise numpy, single
+        threaded) keep their default.  Restored on exit.
+        """
+        try:
+            from threadpoolctl import threadpool_limits
+        except ImportError:
+            return
+        self._blas_limits = threadpool_limits(limits=1)
+
+    def __exit__(self, *exc):
+        limits = getattr(self, "_blas_limits", None)
+        if limits is not None:
+            limits.restore_original_limits()
+            self._blas_limits = None
+        if self.client is not None:
+            self.client.close()
+        if self.cluster is not None:
+            self.cluster.close()
+        return False
+
+    def describe(self) -> str:
+        if self.client is not None:
+            n = len(self.client.scheduler_info().get("workers", {}))
+            return f"{self.name} ({n} workers)"
+        return f"{self.name} ({self.workers or 'all'} workers)" if self.name != "synchronous" else self.name
+
+    def compute(self, *collections):
+        import dask
+
+        if self.client is not None:
+            return self.client.compute(list(collections), sync=True)
+        kw = {"scheduler": self.name}
+        if self.workers and self.name != "synchronous":
+            kw["num_workers"] = self.workers
+        return dask.compute(*collections, **kw)
+
+    def run_blocks(self, tasks: list, on_result) -> None:
+        """Compute delayed ``tasks``; call ``on_result(index, result)`` as each one finishes."""
+        import dask
+        from dask.callbacks import Callback
+
+        if self.client is not None:
+            from distributed import as_completed
+
+            futures = self.client.compute(tasks)
+            index = {f.key: i for i, f in enumerate(futures)}
+            for fut in as_completed(futures):
+                on_result(index[fut.key], fut.result())
+                fut.release()
+            return
+        keys = {t.key: i for i, t in enumerate(tasks)}
+
+        class _Done(Callback):
+            def _posttask(self, key, result, dsk, state, worker_id):
+                if key in keys:
+                    on_result(keys[key], result)
+
+        kw = {"scheduler": self.name}
+        if self.workers and self.name != "synchronous":
+            kw["num_workers"] = self.workers
+        with _Done():
+            dask.compute(*tasks, **kw)
+
+
+# ---------------------------------------------------------------------------
+# the blocks of a run
+# ---------------------------------------------------------------------------
+
+def block_tasks(plan: Plan, settings: CellSettings, skip=()) -> list:
+    """One delayed :func:`process_block` per block of cells (except the blocks in ``skip``)."""
+    import uuid
+
+    import dask
+
+    # a run-unique token: two runs on one shared dask cluster must never share keys
+    token = uuid.uuid4().hex[:12]
+    tasks = []
+    data = plan.values.data
+    nd = len(plan.cell_dims)
+    for b, tile in enumerate(plan.tiles()):
+        if b in skip:
+            continue
+        block = data[tile] if tile else data
+        codes = plan.codes
+        if nd:
+            # codes carry the cell dims only for tables (one row layout per group)
+            codes = codes[tuple(t if codes.shape[k] > 1 else slice(None) for k, t in enumerate(tile))]
+        tile_shape = tuple(t.stop - t.start for t in tile)
+        first = _first_cell(tile, plan.cell_shape)
+        tasks.append(dask.delayed(process_block, pure=True)(
+            block, codes, first, tile_shape, settings, dask_key_name=f"mvkde-block-{b}-{token}"))
+    return tasks
+
+
+def _first_cell(tile, shape) -> int:
+    if not tile:
+        return 0
+    return int(np.ravel_multi_index(tuple(t.start for t in tile), shape))
+
+
+def execute(plan: Plan, settings: CellSettings, scheduler: Scheduler, progress: Progress | None = None,
+            store=None) -> dict:
+    """Run every block and gather the results into arrays over (*cells, split, ...).
+
+    With a resume store (:class:`~mvkde.pipeline.resume.BlockStore`), blocks it
+    already holds are read back instead of computed, and each computed block is
+    saved to it as soon as it arrives.  Returns ``{"arrays": ..., "failures":
+    ..., "engines": ..., "paths": ..., "resumed_blocks": ...}``.
+    """
+    ncell_shape = plan.cell_shape
+    arrays: dict = {}
+    failures, engines, paths = [], set(), set()
+    tiles = list(plan.tiles())
+
+    def assemble(i, res: BlockResult):
+        tile = tiles[i]
+        tshape = tuple(t.stop - t.start for t in tile)
+        for name, arr in res.arrays.items():
+            if name not in arrays:
+                fill = np.nan if arr.dtype.kind == "f" else 0
+                arrays[name] = np.full(ncell_shape + arr.shape[1:], fill, dtype=arr.dtype)
+            arrays[name][tile] = arr.reshape(tshape + arr.shape[1:])
+        failures.extend(res.failures)
+        engines.update(e for e in res.engines if e)
+        paths.update(res.paths)
+        if progress is not None:
+            progress.update()
+
+    done = store.done_blocks() if store is not None else set()
+    for i in sorted(done):
+        assemble(i, store.read(i, tiles[i]))
+    todo = [i for i in range(len(tiles)) if i not in done]
+
+    def on_result(k, res):
+        i = todo[k]
+        if store is not None:
+            store.write(i, tiles[i], res)
+        assemble(i, res)
+
+    if todo:
+        scheduler.run_blocks(block_tasks(plan, settings, skip=done), on_result)
+    return {"arrays": arrays, "failures": sorted(failures), "engines": sorted(engines), "paths": sorted(paths),
+            "resumed_blocks": len(done)}

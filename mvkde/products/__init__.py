@@ -1,0 +1,19 @@
+"""Products for downstream risk models: on a fitted estimate, and on gridded densities.
+
+:mod:`mvkde.products.grid` integrates densities on a regular grid (node
+weights, marginals, CDF/exceedance, HDR levels, quantiles) for one cell or
+many; :mod:`mvkde.products.estimate` holds the products of one estimate
+(exact marginals and CDFs where a closed form exists, conditionals,
+uncertainty, wind-rose tables), computed through the grid functions where
+they integrate a grid.
+"""
+
+from .estimate import (DEFAULT_GRID, DEFAULT_HDR_MASSES, bootstrap, bootstrap_bands, cdf, conditional,
+                       direction_and_speed, exceedance, hdr_levels, marginal, marginal_grid, marginal_is_exact,
+                       mass_above, node_weights, probability_grid, quantiles, sector_table, speed_class_edges,
+                       standard_error)
+
+__all__ = ["DEFAULT_GRID", "DEFAULT_HDR_MASSES", "bootstrap", "bootstrap_bands", "cdf", "conditional",
+           "direction_and_speed", "exceedance", "hdr_levels", "marginal", "marginal_grid", "marginal_is_exact",
+           "mass_above", "node_weights", "probability_grid", "quantiles", "sector_table", "speed_class_edges",
+           "standard_error"]
