@@ -239,7 +239,7 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
     ``"normal"`` -- the Garcia-Portugues (2013) AMISE rule under a von Mises
     reference (quick; oversmooths several peaks); ``"plugin"`` and the other
     plug-in selectors (``"scv"``, ``"sj"``, ``"isj"``) -- the von Mises mixture
-    plug-in (Oliveira, Crujeiras and Rodriguez-Casal 2012; components by AIC).
+    plug-in (Oliveira, Crujeiras and Rodriguez-Casal 2012; components by BIC).
     Sphere (vMF kernel): ``"normal"`` -- Garcia-Portugues (2013) rule;
     ``"plugin"`` and the others -- likelihood cross-validation of the locations
     alone with KD-tree neighbours.  Linear block: that selector on the linear
@@ -302,7 +302,7 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
                 kappas[j], mixture = _sel.mixture_plugin_concentration(theta[:, col], weights,
                                                                        return_mixture=True)
                 notes[names[j]] = (f"von Mises mixture plug-in (Oliveira et al. 2012), "
-                                   f"{mixture.components} component(s) by AIC")
+                                   f"{mixture.components} component(s) by BIC")
         if spec.sphere is not None:
             if method == "normal":
                 k_mle = _dir.vmf_mle_kappa(units, weights)
