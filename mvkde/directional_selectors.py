@@ -575,7 +575,11 @@ def sphere_likelihood_cv(units, weights=None, *, search=7.0):
     of it: steps of 0.7 downhill, then bounded Brent to 1 % in kappa.  Each
     evaluation costs the number of pairs within the cut-off: about n for spread-out
     locations, but up to (cluster size)^2 / 2 when a cluster is narrower than the
-    cut-off radius (7.4 kernel standard deviations).
+    cut-off radius (7.4 kernel standard deviations).  Measured: two clusters of
+    1,000 locations (kappa 400 and 100) took 0.55 s against 0.77 s for the dense
+    sums -- the cut-off saves little when the chosen kernel is not much narrower
+    than the clusters; a binned (lattice on the sphere) criterion would be needed
+    for O(n) cost there.
     """
     units = np.asarray(units, dtype=float)
     w = _normalised(weights, units.shape[0])
