@@ -82,3 +82,38 @@ def joint_cv(smoke: bool):
             rows.append(Row(f"{method} joint (kappa, h), n={n}", time.perf_counter() - t0,
                             notes="exact O(n^2) sums, Nelder-Mead"))
     return rows
+
+
+@case("directional")
+def circular_selectors(smoke: bool):
+    """One circular variable: binned FFT LSCV/MLCV against the exact O(n^2) pair sums
+    (``directional.cross_validate``); the von Mises mixture plug-in and the KD-tree
+    likelihood CV on the sphere against the dense one.  "max error" is the relative
+    difference of the chosen concentrations."""
+    from mvkde import directional_selectors as sel
+
+    rows = []
+    n = 500 if smoke else 2000
+    rng = np.random.default_rng(6)
+    comp = rng.random(n) < 0.5
+    theta = np.mod(np.where(comp, rng.vonmises(0.0, 8.0, n), rng.vonmises(2.5, 8.0, n)), 2 * math.pi)
+    for method in ("lscv", "mlcv"):
+        t_m, fast = best_of(lambda: sel.circular_cv(method, theta), repeat=3)
+        t_r, exact = best_of(lambda: D.cross_validate(method, theta=theta[:, None]), repeat=1)
+        rows.append(Row(f"{method} one circular variable, n={n}, two peaks", t_m,
+                        "exact pair sums (directional.cross_validate)", t_r,
+                        abs(fast.kappa / float(exact.kappas[0]) - 1)))
+    m = 3650
+    big = np.mod(np.concatenate([rng.vonmises(0.0, 8.0, m // 2), rng.vonmises(2.5, 8.0, m - m // 2)]), 2 * math.pi)
+    t_p, _ = best_of(lambda: sel.mixture_plugin_concentration(big), repeat=3)
+    t_t, _ = best_of(lambda: D.taylor_rule(big), repeat=3)
+    rows.append(Row(f"plugin (von Mises mixture, EM, BIC), n={m}", t_p, "Taylor (2008) rule, same data", t_t,
+                    target="a few ms"))
+    k = 600 if smoke else 2000
+    u = np.vstack([D.sample_vmf(np.tile(D.lonlat_to_unit(20.0, 100.0), (k // 2, 1)), 400.0, rng),
+                   D.sample_vmf(np.tile(D.lonlat_to_unit(-30.0, -60.0), (k - k // 2, 1)), 100.0, rng)])
+    t_m, fast = best_of(lambda: sel.sphere_likelihood_cv(u), repeat=1)
+    t_r, exact = best_of(lambda: D.cross_validate("mlcv", units=u), repeat=1)
+    rows.append(Row(f"sphere likelihood CV, KD-tree, n={k}", t_m, "dense pair sums", t_r,
+                    abs(fast.kappa / exact.kappa_sphere - 1)))
+    return rows

@@ -235,15 +235,25 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
            lin_values) -> Smoothing:
     """Concentrations and the linear bandwidth for selector ``method``.
 
-    ``"normal"``: Taylor (2008) for each circular variable, Garcia-Portugues (2013)
-    for the sphere, the normal-scale matrix for the linear block.
-    ``"mlcv"`` / ``"lscv"``: joint cross-validation of every concentration and the
-    linear (Gaussian) H, transferred to another linear kernel by the canonical
-    rescaling.  Other selectors (``"plugin"``, ``"scv"``, ...): the rule of thumb on
-    the circle, likelihood CV on the sphere, and that selector on the linear block.
+    Circular variables (von Mises kernel; :mod:`mvkde.directional_selectors`):
+    ``"normal"`` -- the Garcia-Portugues (2013) AMISE rule under a von Mises
+    reference (quick; oversmooths several peaks); ``"plugin"`` and the other
+    plug-in selectors (``"scv"``, ``"sj"``, ``"isj"``) -- the von Mises mixture
+    plug-in (Oliveira, Crujeiras and Rodriguez-Casal 2012; components by BIC).
+    Sphere (vMF kernel): ``"normal"`` -- Garcia-Portugues (2013) rule;
+    ``"plugin"`` and the others -- likelihood cross-validation of the locations
+    alone with KD-tree neighbours.  Linear block: that selector on the linear
+    variables alone.
+    ``"mlcv"`` / ``"lscv"``: one circular variable alone -- binned FFT
+    cross-validation on the periodic lattice; locations alone by ``"mlcv"`` --
+    the KD-tree likelihood CV; otherwise joint cross-validation of every
+    concentration and the linear (Gaussian) H by exact pair sums, transferred to
+    another linear kernel by the canonical rescaling.
     ``lin_values`` are the linear columns the selector sees (transformed for
     ``boundary="transform"``).
     """
+    from . import directional_selectors as _sel
+
     q = len(spec.linear)
     theta = _angles(values, spec)
     units = _units(values, spec)
@@ -252,7 +262,21 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
     kappas, ks = {}, None
     crit, converged, at_edge = float("nan"), True, False
     lin_result = None
-    if method in ("mlcv", "lscv"):
+    alone_circle = method in ("mlcv", "lscv") and len(spec.circular) == 1 and spec.sphere is None and not q
+    alone_sphere = method == "mlcv" and not spec.circular and spec.sphere is not None and not q
+    if alone_circle:
+        r = _sel.circular_cv(method, theta[:, 0], weights)
+        j = spec.circular[0]
+        kappas[j] = r.kappa
+        crit, converged, at_edge = r.criterion, r.converged, r.at_edge
+        notes[names[j]] = ("likelihood" if method == "mlcv" else "least-squares") + \
+            " cross-validation (binned on a periodic lattice, FFT)"
+    elif alone_sphere:
+        r = _sel.sphere_likelihood_cv(units, weights)
+        ks, crit, converged, at_edge = r.kappa, r.criterion, r.converged, r.at_edge
+        for j in spec.sphere:
+            notes[names[j]] = "likelihood cross-validation (KD-tree neighbours)"
+    elif method in ("mlcv", "lscv"):
         r = _dir.cross_validate(method, theta=theta, units=units, lin=lin_values if q else None, weights=weights,
                                 parametrization=parametrization)
         kappas = {j: float(k) for j, k in zip(spec.circular, r.kappas)}
@@ -270,17 +294,24 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
                                          details={"selected_jointly_with": "directional concentrations"})
     else:
         for col, j in enumerate(spec.circular):
-            kappas[j] = _dir.taylor_rule(theta[:, col], weights)
-            notes[names[j]] = "Taylor (2008) rule of thumb"
+            if method == "normal":
+                kappas[j] = _sel.normal_concentration(theta[:, col], weights)
+                notes[names[j]] = ("Garcia-Portugues (2013) rule, von Mises reference "
+                                   "(oversmooths several peaks)")
+            else:
+                kappas[j], mixture = _sel.mixture_plugin_concentration(theta[:, col], weights,
+                                                                       return_mixture=True)
+                notes[names[j]] = (f"von Mises mixture plug-in (Oliveira et al. 2012), "
+                                   f"{mixture.components} component(s) by BIC")
         if spec.sphere is not None:
             if method == "normal":
                 k_mle = _dir.vmf_mle_kappa(units, weights)
                 ks = 1.0 / _dir.sphere_rule_h_from_kappa(k_mle, n_eff) ** 2
                 label = "Garcia-Portugues (2013) rule of thumb"
             else:
-                r = _dir.cross_validate("mlcv", units=units, weights=weights)
-                ks, at_edge = r.kappa_sphere, r.at_edge
-                label = "likelihood cross-validation (locations alone)"
+                r = _sel.sphere_likelihood_cv(units, weights)
+                ks, at_edge = r.kappa, r.at_edge
+                label = "likelihood cross-validation (locations alone, KD-tree neighbours)"
             for j in spec.sphere:
                 notes[names[j]] = label
         if q:

@@ -254,7 +254,7 @@ def test_selectors_near_mise_optimal_concentration():
         for method in chosen:
             est = mvkde.fit(x[:, None], periods=[360.0], bandwidth=method, names=["d"])
             chosen[method].append(est.concentrations["d"])
-    # Taylor (2008) is the AMISE rule for exactly this target: close to the optimum
+    # "normal" is the Garcia-Portugues (2013) AMISE rule for exactly this target: close to the optimum
     assert abs(math.log(np.median(chosen["normal"]) / nu_opt)) < math.log(1.5)
     # cross-validation is noisy: within a factor of 2 of the optimum (median of 3 samples)
     for method in ("mlcv", "lscv"):
@@ -378,6 +378,7 @@ def test_grid_attributes_name_circular_variables_and_concentrations(rng):
     assert g.attrs["circular_variables"] == "direction"
     assert g.attrs["period_direction"] == 360.0
     assert g.attrs["concentration_direction"] > 0
-    assert "Taylor (2008)" in g.attrs["concentration_method_direction"]
+    # fit's default selector "normal" on a circle: the Garcia-Portugues (2013) AMISE rule
+    assert "Garcia-Portugues (2013)" in g.attrs["concentration_method_direction"]
     assert "von Mises" in g.attrs["engine_reason"]
     assert g["direction"].attrs["period"] == 360.0 and "period" not in g["speed"].attrs

@@ -1,0 +1,592 @@
+"""Concentration selectors for circular variables and locations on the sphere.
+
+Library layer: numpy, scipy and :mod:`mvkde.directional` only.
+
+Circle (von Mises kernel of concentration ``nu``)
+-------------------------------------------------
+* :func:`normal_concentration` -- the AMISE rule under a von Mises reference
+  (Garcia-Portugues 2013, Electron. J. Statist. 7, 1655-1685, circle case):
+  quick, exact for one von Mises peak, **oversmooths several peaks**.
+* :func:`mixture_plugin_concentration` -- the plug-in of Oliveira, Crujeiras and
+  Rodriguez-Casal (2012, Comput. Statist. Data Anal. 56, 3898-3908): a von Mises
+  mixture fitted by EM (components chosen by BIC by default, AIC as in the paper
+  on request) stands in for the density in the AMISE, whose curvature
+  functional is computed exactly for the mixture.
+* :func:`circular_cv` -- least-squares and likelihood cross-validation on a
+  binned periodic lattice (FFT), milliseconds where the O(n^2) pair sums took
+  seconds.
+
+AMISE of the von Mises kernel estimate (derivation)
+---------------------------------------------------
+Write a density on the circle as its Fourier series
+``f(t) = (1/2 pi) sum_k phi_f(k) e^{ikt}``, ``phi_f(k) = int f(t) e^{-ikt} dt``.
+The von Mises kernel ``K_nu(t) = e^{nu cos t} / (2 pi I0(nu))`` has
+``phi_K(k) = I_k(nu) / I0(nu)`` (the generating function
+``e^{nu cos t} = sum_k I_k(nu) e^{ikt}``).  For ``f_hat = n^{-1} sum_i K_nu(t - T_i)``,
+Parseval gives
+
+    MISE = (1/2 pi) sum_k [ n^{-1} (1 - |phi_f(k)|^2) phi_K(k)^2 + |phi_f(k)|^2 (1 - phi_K(k))^2 ].
+
+Large-concentration expansions (Hankel's expansion
+``I_k(nu) = e^nu (2 pi nu)^{-1/2} [1 - (4k^2 - 1)/(8 nu) + O(nu^-2)]``):
+
+* bias: ``1 - phi_K(k) = k^2 / (2 nu) + O(nu^-2)``, so the integrated squared bias
+  is ``(1/2 pi) sum_k k^4 |phi_f(k)|^2 / (4 nu^2) = R(f'') / (4 nu^2)``, where
+  ``R(f'') = int f''(t)^2 dt = (1/2 pi) sum_k k^4 |phi_f(k)|^2``;
+* variance: ``n^{-1} int K_nu^2 = n^{-1} I0(2 nu) / (2 pi I0(nu)^2)
+  = n^{-1} nu^{1/2} / (2 pi^{1/2}) (1 + O(nu^-1))``; the remaining
+  ``-n^{-1} int (K*f)^2`` is O(1/n), of lower order.
+
+Hence ``AMISE(nu) = R(f'') / (4 nu^2) + nu^{1/2} / (2 pi^{1/2} n)``, minimised at
+
+    nu_AMISE = (2 pi^{1/2} n R(f''))^{2/5}.
+
+For one von Mises density of concentration ``kappa``,
+``R(f'') = kappa [2 I1(2 kappa) + 3 kappa I2(2 kappa)] / (8 pi I0(kappa)^2)``
+(checked against quadrature), which turns ``nu_AMISE`` into Garcia-Portugues'
+(2013) circle rule ``h = nu^{-1/2}``.  Taylor's (2008) rule uses
+``3 kappa^2 I2(2 kappa) / (8 pi I0(kappa)^2)``, without the ``2 kappa I1(2 kappa)``
+term: a smaller ``R`` and so a smaller ``nu`` (more smoothing), markedly at
+small kappa (0.70 x the exact-MISE optimum at kappa = 1).
+
+For a mixture ``sum_m p_m VM(mu_m, kappa_m)``,
+``phi_f(k) = sum_m p_m e^{-ik mu_m} I_k(kappa_m) / I0(kappa_m)``, and the series for
+``R(f'')`` is summed exactly (to double precision) up to the ``k`` where the
+terms vanish.
+
+Sphere (von Mises-Fisher kernel of concentration ``kappa``)
+-----------------------------------------------------------
+* :func:`sphere_likelihood_cv` -- likelihood cross-validation (Hall, Watson and
+  Cabrera 1987, Biometrika 74, 751-762) with neighbours found by a KD-tree on
+  unit vectors and cut off where the kernel is below ``1e-12`` of its peak;
+  a point with no neighbour inside the cut-off gets its nearest neighbour's
+  term (exact to a factor of at most the number of points at that distance).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import optimize, special
+
+from . import directional as _dir
+
+TWO_PI = 2.0 * math.pi
+
+
+# ---------------------------------------------------------------------------
+# small helpers
+# ---------------------------------------------------------------------------
+
+def _normalised(weights, n):
+    if weights is None:
+        return np.full(n, 1.0 / n)
+    w = np.asarray(weights, dtype=float)
+    return w / w.sum()
+
+
+def effective_size(w) -> float:
+    """Kish's effective sample size 1 / sum w_i^2 of normalised weights."""
+    return 1.0 / float(np.sum(w * w))
+
+
+def bessel_ratio(k, nu):
+    """I_k(nu) / I0(nu) (the von Mises kernel's Fourier coefficients), stable for large nu."""
+    nu = np.asarray(nu, dtype=float)
+    return special.ive(k, nu) / special.i0e(nu)
+
+
+def a1_inverse(r, steps=6):
+    """Vectorised solution of I1(k)/I0(k) = r (Best and Fisher 1981 start, Newton steps)."""
+    r = np.clip(np.asarray(r, dtype=float), 1e-12, 1.0 - 1e-12)
+    k = np.where(r < 0.53, 2 * r + r ** 3 + 5 * r ** 5 / 6,
+                 np.where(r < 0.85, -0.4 + 1.39 * r + 0.43 / (1 - r), 1 / (r ** 3 - 4 * r ** 2 + 3 * r)))
+    for _ in range(steps):
+        a = special.i1e(k) / special.i0e(k)
+        k = np.maximum(k - (a - r) / np.maximum(1 - a / k - a * a, 1e-300), 1e-12)
+    return k
+
+
+def von_mises_kernel_at(delta, nu):
+    """K_nu(delta) = e^{nu cos delta} / (2 pi I0(nu)) per radian."""
+    return np.exp(nu * (np.cos(delta) - 1.0)) / (TWO_PI * special.i0e(nu))
+
+
+# ---------------------------------------------------------------------------
+# rules
+# ---------------------------------------------------------------------------
+
+def amise_concentration(curvature, n) -> float:
+    """nu minimising R(f'') / (4 nu^2) + nu^{1/2} / (2 pi^{1/2} n): (2 pi^{1/2} n R(f''))^{2/5}
+    (derivation in the module docstring)."""
+    return float((2.0 * math.sqrt(math.pi) * n * curvature) ** 0.4)
+
+
+def von_mises_curvature(kappa):
+    """R(f'') = int f''^2 of one von Mises density:
+    kappa [2 I1(2 kappa) + 3 kappa I2(2 kappa)] / (8 pi I0(kappa)^2)
+    (Garcia-Portugues 2013, circle case; exponentially scaled Bessel functions)."""
+    k = np.asarray(kappa, dtype=float)
+    return k * (2 * special.ive(1, 2 * k) + 3 * k * special.ive(2, 2 * k)) / (8 * math.pi * special.i0e(k) ** 2)
+
+
+def normal_concentration(theta, weights=None) -> float:
+    """Concentration of the von Mises kernel by the AMISE rule under a von Mises reference
+    (Garcia-Portugues 2013, EJS 7, circle rule ``nu = 1/h^2``), the reference's
+    concentration being the maximum-likelihood estimate.  A quick rule: exact
+    to first order for one von Mises peak, it **oversmooths several peaks**
+    (use :func:`mixture_plugin_concentration` or cross-validation there)."""
+    theta = np.asarray(theta, dtype=float).ravel()
+    w = _normalised(weights, theta.size)
+    return 1.0 / _dir.circle_rule_h(theta, None if weights is None else w) ** 2
+
+
+# ---------------------------------------------------------------------------
+# von Mises mixtures by EM
+# ---------------------------------------------------------------------------
+
+@dataclass
+class VonMisesMixture:
+    """A von Mises mixture fitted by EM: proportions, mean directions (radians),
+    concentrations, log-likelihood (weights summing to the effective size) and AIC."""
+
+    proportions: np.ndarray
+    means: np.ndarray
+    kappas: np.ndarray
+    loglik: float
+    aic: float
+    details: dict = field(default_factory=dict)
+
+    @property
+    def bic(self) -> float:
+        """-2 loglik + (3M - 1) log n_eff."""
+        return float(self.aic + (3 * self.components - 1) * (math.log(self.details["n_eff"]) - 2.0))
+
+    @property
+    def components(self) -> int:
+        return int(self.proportions.size)
+
+    def pdf(self, theta):
+        theta = np.asarray(theta, dtype=float)
+        return sum(p * np.exp(k * (np.cos(theta - m) - 1.0)) / (TWO_PI * special.i0e(k))
+                   for p, m, k in zip(self.proportions, self.means, self.kappas))
+
+    def fourier(self, k):
+        """phi_f(k) = sum_m p_m e^{-ik mu_m} I_k(kappa_m)/I0(kappa_m) for integer k (array)."""
+        k = np.asarray(k, dtype=float)
+        return (self.proportions[:, None] * bessel_ratio(k[None, :], self.kappas[:, None])
+                * np.exp(-1j * self.means[:, None] * k[None, :])).sum(axis=0)
+
+    def curvature(self) -> float:
+        """R(f'') = int f''^2 = (1/pi) sum_{k>=1} k^4 |phi_f(k)|^2, summed until the terms vanish
+        (I_k(kappa)/I0(kappa) < e^{-k^2/(2 kappa)} roughly; 9 sqrt(kappa) + 30 terms reach 1e-17)."""
+        kmax = int(9.0 * math.sqrt(float(self.kappas.max())) + 30)
+        k = np.arange(1, kmax + 1)
+        return float(np.sum(k.astype(float) ** 4 * np.abs(self.fourier(k)) ** 2) / math.pi)
+
+
+def _linear_bins(theta, w, bins):
+    """Linear binning of angles on the periodic lattice 2 pi j / bins: (counts, lower index, fraction)."""
+    pos = np.mod(theta, TWO_PI) * (bins / TWO_PI)
+    lower = np.floor(pos).astype(np.int64)
+    frac = pos - lower
+    lower %= bins
+    counts = np.bincount(lower, weights=w * (1.0 - frac), minlength=bins)
+    counts += np.bincount((lower + 1) % bins, weights=w * frac, minlength=bins)
+    return counts, lower, frac
+
+
+def _circular_quantile_starts(theta, w, m):
+    """Deterministic start with m components: cut the circle at the largest gap between
+    sorted angles, split the data into m groups of equal weight; each group's mean
+    direction and concentration."""
+    order = np.argsort(theta)
+    t, ww = theta[order], w[order]
+    gaps = np.diff(np.concatenate([t, [t[0] + TWO_PI]]))
+    cut = (int(np.argmax(gaps)) + 1) % t.size
+    t, ww = np.roll(t, -cut), np.roll(ww, -cut)
+    edges = np.searchsorted(np.cumsum(ww), np.arange(1, m) / m)
+    means, kappas, props = [], [], []
+    for part_t, part_w in zip(np.split(t, edges), np.split(ww, edges)):
+        if part_t.size == 0:
+            part_t, part_w = t, ww
+        s = part_w.sum()
+        c, sn = np.sum(part_w * np.cos(part_t)) / s, np.sum(part_w * np.sin(part_t)) / s
+        means.append(math.atan2(sn, c))
+        kappas.append(float(a1_inverse(math.hypot(c, sn))))
+        props.append(s)
+    props = np.asarray(props) / np.sum(props)
+    return props, np.asarray(means), np.asarray(kappas)
+
+
+def fit_von_mises_mixtures(theta, weights=None, *, max_components=5, seed=0, bins=256, iterations=300,
+                           tol=1e-2, kappa_cap=1e4):
+    """Von Mises mixtures with 1..``max_components`` components by EM, all fitted together.
+
+    Each M gets two starts: the deterministic circular-quantile split
+    (:func:`_circular_quantile_starts`) and a seeded k-means++-like draw of means
+    among the data; the better likelihood is kept.  The EM runs on the sample
+    linearly binned on ``bins`` periodic nodes (counts as weights: the cost does
+    not grow with n), concentrations capped at ``kappa_cap``; the final
+    log-likelihoods are computed on the data themselves, scaled so the weights
+    sum to the effective size ``1 / sum w^2`` (n for equal weights),
+    ``AIC = -2 loglik + 2 (3M - 1)`` and ``BIC = -2 loglik + (3M - 1) log n_eff``.  Returns the list of fits (index M - 1).
+    """
+    theta = np.mod(np.asarray(theta, dtype=float).ravel(), TWO_PI)
+    n = theta.size
+    w = _normalised(weights, n)
+    n_eff = effective_size(w)
+    rng = np.random.default_rng(seed)
+    counts, _, _ = _linear_bins(theta, w, bins)
+    nodes = np.arange(bins) * (TWO_PI / bins)
+    cosb, sinb = np.cos(nodes), np.sin(nodes)
+    design = np.column_stack([counts, counts * cosb, counts * sinb])          # (bins, 3)
+
+    # configurations: (M, start) with M = 1..max_components, padded to max_components slots;
+    # starts are computed on the occupied lattice nodes (weights = counts), so they cost O(bins)
+    max_components = int(max(1, min(max_components, n // 3 if n >= 3 else 1)))
+    occupied = counts > 0
+    t_occ, c_occ = nodes[occupied], counts[occupied] / counts[occupied].sum()
+    configs = []
+    for m in range(1, max_components + 1):
+        configs.append((m, _circular_quantile_starts(t_occ, c_occ, m)))
+        if m > 1:
+            picks = [int(rng.choice(t_occ.size, p=c_occ))]
+            for _ in range(m - 1):
+                d = np.min(1.0 - np.cos(t_occ[:, None] - t_occ[picks][None, :]), axis=1) * c_occ
+                picks.append(int(rng.choice(t_occ.size, p=d / d.sum())) if d.sum() > 0
+                             else int(rng.choice(t_occ.size)))
+            k0 = float(a1_inverse(min(0.99, max(0.05, 1.0 - 0.5 / m))))
+            configs.append((m, (np.full(m, 1.0 / m), t_occ[picks], np.full(m, k0))))
+    C, S = len(configs), max_components
+    logp = np.full((C, S), -np.inf)
+    mu = np.zeros((C, S))
+    kap = np.ones((C, S))
+    for c, (m, (p, mm, kk)) in enumerate(configs):
+        logp[c, :m], mu[c, :m], kap[c, :m] = np.log(p), mm, np.clip(kk, 1e-3, kappa_cap)
+    active = np.isfinite(logp)
+
+    previous = np.full(C, -np.inf)
+    for it in range(iterations):
+        # E step on the lattice: log p_m + kappa_m cos(t - mu_m) - log(2 pi I0(kappa_m))
+        lin = (kap * np.cos(mu))[..., None] * cosb + (kap * np.sin(mu))[..., None] * sinb
+        logd = lin + (logp - kap - np.log(TWO_PI * special.i0e(kap)))[..., None]
+        top = logd.max(axis=1, keepdims=True)
+        dens = np.exp(logd - top)
+        total = dens.sum(axis=1, keepdims=True)
+        resp = dens / total
+        loglik = (np.log(total[:, 0, :]) + top[:, 0, :]) @ counts
+        # M step: weighted resultant of each component
+        sums = resp @ design                                                  # (C, S, 3)
+        prop = sums[..., 0]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rbar = np.hypot(sums[..., 1], sums[..., 2]) / prop
+            new_logp = np.log(prop)
+        ok = active & (prop > 1e-12)
+        mu = np.where(ok, np.arctan2(sums[..., 2], sums[..., 1]), mu)
+        kap = np.where(ok, np.clip(a1_inverse(np.where(ok, rbar, 0.5), 3), 1e-3, kappa_cap), kap)
+        logp = np.where(ok, new_logp, -np.inf)
+        if np.all(np.abs(loglik - previous) * n_eff < tol):
+            break
+        previous = loglik
+
+    # the best start of each M by the lattice log-likelihood; its log-likelihood on the data themselves
+    fits = []
+    cos_t, sin_t = np.cos(theta), np.sin(theta)
+    for m in range(1, max_components + 1):
+        best = max((c for c, cfg in enumerate(configs) if cfg[0] == m), key=lambda c: loglik[c])
+        keep = np.isfinite(logp[best])
+        p, mm, kk = np.exp(logp[best][keep]), mu[best][keep], kap[best][keep]
+        logd = np.outer(kk * np.cos(mm), cos_t) + np.outer(kk * np.sin(mm), sin_t)
+        logd += (np.log(p) - kk - np.log(TWO_PI * special.i0e(kk)))[:, None]
+        top = logd.max(axis=0)
+        data_loglik = n_eff * float((np.log(np.exp(logd - top).sum(axis=0)) + top) @ w)
+        params = 3 * int(keep.sum()) - 1
+        fits.append(VonMisesMixture(p, np.mod(mm, TWO_PI), kk, data_loglik, -2.0 * data_loglik + 2 * params,
+                                    {"iterations": it + 1, "n_eff": n_eff}))
+    return fits
+
+
+def mixture_plugin_concentration(theta, weights=None, *, max_components=5, seed=0, criterion="bic",
+                                 return_mixture=False):
+    """Plug-in concentration of the von Mises kernel from a von Mises mixture reference
+    (Oliveira, Crujeiras and Rodriguez-Casal 2012, CSDA 56, 3898-3908).
+
+    Mixtures with 1..``max_components`` components are fitted by EM
+    (:func:`fit_von_mises_mixtures`), the one with the smallest information
+    criterion is the reference ``f``, its ``R(f'')`` is summed exactly
+    (:meth:`VonMisesMixture.curvature`) and ``nu = (2 pi^{1/2} n R(f''))^{2/5}``
+    (the AMISE minimiser derived in the module docstring; n the effective size).
+    With one component this is the Garcia-Portugues (2013) circle rule.
+
+    ``criterion="bic"`` (default) or ``"aic"`` (the paper's choice).  Measured
+    here on 30 samples of n = 500 each: AIC picks spurious narrow components
+    (one to three points with kappa in the thousands) in 2-8 samples out of 30,
+    whose huge R(f'') drives the mean selected concentration to 1.8-2.9 x the
+    exact-MISE optimum (MISE 1.2-1.4 x the optimum) on one von Mises (kappa 0.5,
+    2) and on two peaks; BIC chose the true number of components in every
+    sample (one, two and three peaks, n = 500 and 2000), with the mean
+    selection at 0.98-1.20 x the optimum and its MISE within 1.015 x.
+    """
+    fits = fit_von_mises_mixtures(theta, weights, max_components=max_components, seed=seed)
+    best = min(fits, key=lambda f: f.aic if criterion == "aic" else f.bic)
+    nu = amise_concentration(best.curvature(), best.details["n_eff"])
+    return (nu, best) if return_mixture else nu
+
+
+# ---------------------------------------------------------------------------
+# cross-validation on the periodic lattice
+# ---------------------------------------------------------------------------
+
+@dataclass
+class CircularCVResult:
+    """Concentration chosen by binned cross-validation on the circle."""
+
+    kappa: float
+    criterion: float
+    converged: bool
+    at_edge: bool
+    evaluations: int
+
+
+class _PeriodicLattice:
+    """Binned sample on lattices of several sizes (cached), with what the criteria need."""
+
+    def __init__(self, theta, w, oversampling):
+        self.theta = np.mod(np.asarray(theta, dtype=float), TWO_PI)
+        self.w = w
+        self.a = w / (1.0 - w)                  # leave-one-out renormalisation
+        self.oversampling = oversampling
+        self.cache = {}
+        # circular nearest neighbour of every point (the fallback of a vanishing leave-one-out density)
+        order = np.argsort(self.theta)
+        t = self.theta[order]
+        nxt = np.roll(np.arange(t.size), -1)
+        prv = np.roll(np.arange(t.size), 1)
+        dn = np.mod(t[nxt] - t, TWO_PI)
+        dp = np.mod(t - t[prv], TWO_PI)
+        use_next = (dn < dp) | ((dn == dp) & (w[order][nxt] >= w[order][prv]))
+        nn_sorted = np.where(use_next, nxt, prv)
+        self.nn_dist = np.empty(t.size)
+        self.nn_w = np.empty(t.size)
+        self.nn_dist[order] = np.where(use_next, dn, dp)
+        self.nn_w[order] = w[order][nn_sorted]
+
+    def size_for(self, nu):
+        target = self.oversampling * TWO_PI * math.sqrt(max(nu, 1.0))
+        return int(max(256, 2 ** math.ceil(math.log2(target))))
+
+    def binned(self, L):
+        if L not in self.cache:
+            c_w, lower, frac = _linear_bins(self.theta, self.w, L)
+            c_a, _, _ = _linear_bins(self.theta, self.a, L)
+            self.cache[L] = (np.fft.rfft(c_w), np.fft.rfft(c_a), lower, frac)
+        return self.cache[L]
+
+    def _spectrum(self, nu, L):
+        kmax = min(L // 2, int(9.0 * math.sqrt(nu) + 30))
+        k = np.arange(kmax + 1)
+        rho = bessel_ratio(k, nu)
+        double = np.full(kmax + 1, 2.0)         # k and -k, except k = 0 (and the Nyquist term)
+        double[0] = 1.0
+        if kmax == L // 2:
+            double[-1] = 1.0
+        return k, rho, double
+
+    def self_term(self, nu, L, frac):
+        """The binned self-pair of each point: ((1-f)^2 + f^2) K(0) + 2 f (1-f) K(delta)."""
+        k0 = von_mises_kernel_at(0.0, nu)
+        kd = von_mises_kernel_at(TWO_PI / L, nu)
+        return ((1 - frac) ** 2 + frac ** 2) * k0 + 2 * frac * (1 - frac) * kd
+
+    def lscv(self, nu):
+        L = self.size_for(nu)
+        W, A, _, frac = self.binned(L)
+        k, rho, double = self._spectrum(nu, L)
+        Wk, Ak = W[k], A[k]
+        square = float(np.sum(double * rho * rho * np.abs(Wk) ** 2)) / TWO_PI
+        pairs = float(np.sum(double * rho * np.real(np.conj(Ak) * Wk))) / TWO_PI
+        pairs -= float(np.sum(self.a * self.w * self.self_term(nu, L, frac)))
+        return square - 2.0 * pairs
+
+    def leave_one_out(self, nu):
+        """log f_{-i}(theta_i) from the lattice density interpolated at the data, self term removed."""
+        L = self.size_for(nu)
+        W, _, lower, frac = self.binned(L)
+        k, rho, _ = self._spectrum(nu, L)
+        spec = np.zeros(L // 2 + 1, dtype=complex)
+        spec[k] = W[k] * rho
+        g = np.fft.irfft(spec, L) * (L / TWO_PI)
+        at = (1 - frac) * g[lower] + frac * g[(lower + 1) % L]
+        loo = (at - self.w * self.self_term(nu, L, frac)) / (1.0 - self.w)
+        log_nn = (np.log(self.nn_w) + nu * (np.cos(self.nn_dist) - 1.0)
+                  - math.log(TWO_PI * special.i0e(nu)) - np.log1p(-self.w))
+        # below 1e-9 of the peak the binned value is round-off: the nearest neighbour's term instead
+        floor = 1e-9 * float(g.max())
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.where(loo > floor, np.log(np.maximum(loo, floor)), np.maximum(log_nn, np.log(np.maximum(loo, 1e-300))))
+
+    def mlcv(self, nu):
+        return -float(np.sum(self.w * self.leave_one_out(nu)))
+
+
+def _bracket_then_brent(fun, start, lo, hi, step=0.7, xatol=1e-3):
+    """Minimise fun(log nu) on [lo, hi]: walk from ``start`` in steps of ``step`` until the
+    criterion rises on both sides (or an end is reached), then bounded Brent on the bracket."""
+    cache = {}
+
+    def f(v):
+        v = float(min(max(v, lo), hi))
+        if v not in cache:
+            cache[v] = fun(v)
+        return cache[v]
+
+    x = min(max(start, lo), hi)
+    fx = f(x)
+    # which way is down
+    right = min(x + step, hi)
+    left = max(x - step, lo)
+    direction = 1.0 if f(right) < fx else (-1.0 if f(left) < fx else 0.0)
+    if direction:
+        while True:
+            nxt = min(max(x + direction * step, lo), hi)
+            if nxt == x or f(nxt) >= fx:
+                break
+            x, fx = nxt, f(nxt)
+    a, b = max(x - step, lo), min(x + step, hi)
+    res = optimize.minimize_scalar(f, bounds=(a, b), method="bounded", options={"xatol": xatol})
+    best = min(cache, key=cache.get)
+    at_edge = best - lo < 1e-2 or hi - best < 1e-2
+    return best, cache[best], bool(res.success), at_edge, len(cache)
+
+
+def circular_cv(criterion, theta, weights=None, *, oversampling=16.0, search=7.0):
+    """Least-squares (``"lscv"``) or likelihood (``"mlcv"``) cross-validation of the von
+    Mises kernel's concentration for one circular variable, on a binned periodic lattice.
+
+    LSCV(nu) = int f_hat^2 - 2 sum_i w_i f_{-i}(t_i) with, by Parseval,
+
+        int f_hat^2 = (1/2 pi) sum_k rho_k^2 |W_k|^2,
+        sum_i w_i f_{-i}(t_i) = (1/2 pi) sum_k rho_k Re(conj(A_k) W_k) - sum_i a_i w_i s_i,
+
+    rho_k = I_k(nu)/I0(nu), W and A the discrete Fourier transforms of the
+    weights ``w`` and of ``a = w / (1 - w)`` linearly binned on a periodic lattice
+    of L nodes (L a power of two with at least ``oversampling`` nodes per kernel
+    standard deviation 1/sqrt(nu)), ``s_i`` the binned self-pair of point i
+    removed exactly.  MLCV maximises ``sum_i w_i log f_{-i}(t_i)``, the lattice
+    density (one inverse FFT) interpolated linearly at the data minus the self
+    term; where that leaves less than 1e-9 of the peak (round-off) the nearest
+    neighbour's exact term is used.  Binning error falls as (lattice step)^2.
+
+    The search runs over log nu within ``search`` of the Garcia-Portugues rule:
+    steps of 0.7 downhill from the rule, then bounded Brent.  Costs O(n + L log L)
+    per evaluation.
+    """
+    theta = np.asarray(theta, dtype=float).ravel()
+    w = _normalised(weights, theta.size)
+    lat = _PeriodicLattice(theta, w, oversampling)
+    nu0 = max(normal_concentration(theta, None if weights is None else w), 1e-2)
+    lo = math.log(nu0) - search
+    hi = min(math.log(nu0) + search, 2.0 * math.log(2 ** 18 / (oversampling * TWO_PI)))
+    crit = lat.lscv if criterion == "lscv" else lat.mlcv
+    x, fx, ok, at_edge, evals = _bracket_then_brent(lambda v: crit(math.exp(v)), math.log(nu0), lo, hi)
+    return CircularCVResult(math.exp(x), fx, ok, at_edge, evals)
+
+
+# ---------------------------------------------------------------------------
+# sphere: likelihood cross-validation with neighbours from a KD-tree
+# ---------------------------------------------------------------------------
+
+#: the kernel's cut-off: terms below this fraction of the peak are dropped
+SPHERE_CUTOFF = 1e-12
+
+
+@dataclass
+class SphereCVResult:
+    kappa: float
+    criterion: float
+    converged: bool
+    at_edge: bool
+    evaluations: int
+
+
+class _SphereNeighbours:
+    def __init__(self, units, w):
+        from scipy.spatial import cKDTree
+
+        self.units = np.asarray(units, dtype=float)
+        self.w = w
+        self.n = self.units.shape[0]
+        self.tree = cKDTree(self.units)
+        d, idx = self.tree.query(self.units, k=2)
+        # nearest other point (a duplicate may be listed first instead of the point itself)
+        own = idx[:, 0] == np.arange(self.n)
+        self.nn = np.where(own, idx[:, 1], idx[:, 0])
+        self.nn_dot = np.clip(np.einsum("ij,ij->i", self.units, self.units[self.nn]), -1.0, 1.0)
+        self.pairs_radius = -1.0
+        self.pairs = None
+
+    def _pairs(self, radius):
+        if radius > self.pairs_radius:
+            ij = self.tree.query_pairs(radius, output_type="ndarray")
+            dot = np.clip(np.einsum("ij,ij->i", self.units[ij[:, 0]], self.units[ij[:, 1]]), -1.0, 1.0)
+            self.pairs, self.pairs_radius = (ij[:, 0], ij[:, 1], dot), radius
+        i, j, dot = self.pairs
+        if radius < self.pairs_radius:
+            keep = dot >= 1.0 - 0.5 * radius * radius
+            return i[keep], j[keep], dot[keep]
+        return i, j, dot
+
+    def loglik(self, kappa):
+        """sum_i w_i log f_{-i}(u_i) with f_{-i} = sum_{j != i} w_j vMF_kappa(u_i'u_j) / (1 - w_i)."""
+        reach = -math.log(SPHERE_CUTOFF) / kappa          # kappa (1 - cos) beyond which the kernel is dropped
+        logc = float(_dir.log_vmf_kernel(kappa, 1.0))     # log of the kernel's peak
+        if reach >= 2.0 or self.n <= 400:                 # the cut-off covers the sphere: dense, chunked
+            sums = np.empty(self.n)
+            step = max(1, 2_000_000 // self.n)
+            for a in range(0, self.n, step):
+                e = np.exp(kappa * (np.clip(self.units[a:a + step] @ self.units.T, -1, 1) - 1.0))
+                e[np.arange(e.shape[0]), np.arange(a, a + e.shape[0])] = 0.0
+                sums[a:a + step] = e @ self.w
+        else:
+            i, j, dot = self._pairs(math.sqrt(2.0 * reach))
+            e = np.exp(kappa * (dot - 1.0))
+            sums = np.bincount(i, weights=e * self.w[j], minlength=self.n)
+            sums += np.bincount(j, weights=e * self.w[i], minlength=self.n)
+        log_nn = np.log(self.w[self.nn]) + kappa * (self.nn_dot - 1.0)
+        with np.errstate(divide="ignore"):
+            logs = np.where(sums > 0, np.log(np.maximum(sums, 1e-300)), log_nn)
+        return float(np.sum(self.w * (logs + logc - np.log1p(-self.w))))
+
+
+def sphere_likelihood_cv(units, weights=None, *, search=7.0):
+    """Likelihood cross-validation of the vMF concentration for locations on S^2 (Hall,
+    Watson and Cabrera 1987), maximising ``sum_i w_i log f_{-i}(u_i)``.
+
+    Pairs are found with a KD-tree on the unit vectors within the chord where
+    ``kappa (1 - cos) = log(1e12)`` (the kernel is 1e-12 of its peak there); the
+    list found for the smallest kappa tried is filtered for larger ones.  A point
+    with no neighbour inside the cut-off gets its nearest neighbour's exact term.
+    Where the cut-off covers the whole sphere (kappa < 14) the sums are dense.
+    The search runs over log kappa, starting from ``1 / (median squared chord to
+    the nearest neighbour)`` (the scale of the local spacing), within ``search``
+    of it: steps of 0.7 downhill, then bounded Brent to 1 % in kappa.  Each
+    evaluation costs the number of pairs within the cut-off: about n for spread-out
+    locations, but up to (cluster size)^2 / 2 when a cluster is narrower than the
+    cut-off radius (7.4 kernel standard deviations).  Measured: two clusters of
+    1,000 locations (kappa 400 and 100) took 0.55 s against 0.77 s for the dense
+    sums -- the cut-off saves little when the chosen kernel is not much narrower
+    than the clusters; a binned (lattice on the sphere) criterion would be needed
+    for O(n) cost there.
+    """
+    units = np.asarray(units, dtype=float)
+    w = _normalised(weights, units.shape[0])
+    nb = _SphereNeighbours(units, w)
+    chord2 = np.maximum(2.0 * (1.0 - nb.nn_dot), 1e-12)
+    start = math.log(max(1.0 / float(np.median(chord2)), 1e-2))
+    lo, hi = start - search, start + search
+    x, fx, ok, at_edge, evals = _bracket_then_brent(lambda v: -nb.loglik(math.exp(v)), start, lo, hi,
+                                                    xatol=1e-2)
+    return SphereCVResult(math.exp(x), fx, ok, at_edge, evals)
