@@ -90,7 +90,7 @@ def circular_selectors(smoke: bool):
     (``directional.cross_validate``); the von Mises mixture plug-in and the KD-tree
     likelihood CV on the sphere against the dense one.  "max error" is the relative
     difference of the chosen concentrations."""
-    from mvkde import directional_selectors as sel
+    from mvkde.directional import selectors as sel
 
     rows = []
     n = 500 if smoke else 2000

@@ -19,13 +19,14 @@ import pandas as pd
 import xarray as xr
 
 from . import boundary as _boundary
-from . import directional_fit as _directional
+from .boundary import point_mass as _point_mass
+from .directional import model as _directional
 from . import engines as _engines
 from . import products as _products
 from .bandwidth import BandwidthMatrix, BandwidthResult, PARAMETRIZATIONS, select
 from .errors import InputError, MvkdeError, check_choice
 from .kernels import FORMS, get_kernel, get_multivariate_kernel
-from .support import PointMass, Support
+from .support import Support
 from .units import density_units
 
 __all__ = ["fit", "DensityEstimate", "CAUTION"]
@@ -146,7 +147,7 @@ def _check_weights(weights, n):
 # fit
 # ---------------------------------------------------------------------------
 
-def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametrization="full",
+def fit(data, *, kernel="gaussian", form="product", bandwidth="plugin", parametrization="full",
         bounds=None, boundary=None, weights=None, periods=None, engine="auto",
         names=None, units=None, point_masses=None, mask=None, outside="error",
         sphere=None) -> "DensityEstimate":
@@ -234,52 +235,125 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
     True
     """
     values, names, units = _as_table(data, names, units)
+    values, w = _check_sample(values, names, weights)
+    d = values.shape[1]
+    mk = get_multivariate_kernel(get_kernel(kernel).name, check_choice("form", form, FORMS), d)
+    parametrization = check_choice("parametrization", parametrization, PARAMETRIZATIONS)
+    engine = _engines.validate_engine(engine)
+    outside = check_choice("outside", outside, _boundary.OUTSIDE_OPTIONS)
+
+    # 1. the support of each variable, described once
+    support, spec, mask_spec = _declare_support(names, values, bounds, periods, sphere, point_masses, mask)
+    if spec is not None:
+        values = _directional.wrap(values, spec)
+    values, w, n_dropped = _drop_outside(values, w, support, mask_spec, outside, names)
+    box = list(support.bounds)
+
+    # 2. a point mass: the continuous part lies above the threshold
+    point = _point_mass.split(support.point_mass, values, w)
+    cont_values, cont_w, cont_box = _continuous_part(values, w, box, point, names)
+
+    # 3. smoothing and the model of the continuous part
+    options = dict(kernel=mk.name, form=mk.form, bandwidth=bandwidth, parametrization=parametrization,
+                   engine=engine, boundary=boundary)
+    concentrations, attrs = {}, {}
+    if cont_values.shape[0] == 0:
+        method, result, model = "none", _no_bandwidth(d), _EmptyModel(d)
+    elif spec is not None:
+        model, result, method, concentrations, attrs = _directional.fit_model(
+            cont_values, cont_w, names, spec, mk, bandwidth, parametrization, cont_box, boundary)
+    else:
+        method, result, model, note = _fit_linear(cont_values, cont_w, cont_box, mask_spec, names, mk, options)
+        if note:
+            attrs["boundary_choice"] = note
+
+    # 4. the other variables' density on the point mass
+    if point is not None:
+        _fit_point_part(point, values, w, support, names, units, options, result)
+
+    est = DensityEstimate(cont_values, cont_w, names, units, mk, result, cont_box, method, engine, model=model,
+                          point_mass=point, mask=mask_spec, support=support, concentrations=concentrations)
+    est.attrs.update(attrs)
+    est.attrs["n_dropped_outside_support"] = n_dropped
+    return est
+
+
+def _check_sample(values, names, weights):
     n, d = values.shape
     _check_finite(values, names)
     if n < d + 1:
         raise InputError(f"data have {n} samples for {d} variables: at least {d + 1} are needed")
-    w = _check_weights(weights, n)
-    mk = get_multivariate_kernel(get_kernel(kernel).name, check_choice("form", form, FORMS), d)
-    parametrization = check_choice("parametrization", parametrization, PARAMETRIZATIONS)
-    engine = _engines.validate_engine(engine)
+    return values, _check_weights(weights, n)
 
+
+def _declare_support(names, values, bounds, periods, sphere, point_masses, mask):
+    """(Support, directional spec or None, mask or None) from fit's arguments, checked."""
+    d = len(names)
     box = _boundary.parse_bounds(bounds, d, names)
-    outside = check_choice("outside", outside, _boundary.OUTSIDE_OPTIONS)
     mask_spec = _boundary.parse_mask(mask, names) if mask is not None else None
     spec = _directional.parse(periods, sphere, names, d)
     if spec is not None:
         _directional.check_support(spec, values, box, names, point_masses, mask)
-        values = _directional.wrap(values, spec)
+    declared = _point_mass.declare(point_masses, box, names)
+    pair = None if spec is None or spec.sphere is None else (names[spec.sphere[0]], names[spec.sphere[1]])
+    support = Support(tuple(names), tuple(tuple(b) for b in box),
+                      tuple(spec.periods) if spec is not None else (None,) * d, pair, declared)
+    return support, spec, mask_spec
 
-    # data outside the support: refuse, or drop and record how many
+
+def _drop_outside(values, w, support: Support, mask_spec, outside, names):
+    """Refuse data outside the support, or drop them and return how many were dropped."""
+    d = values.shape[1]
+    box = list(support.bounds)
     out_rows = _boundary.outside_rows(values, box)
     if mask_spec is not None:
         out_rows |= ~_boundary.in_mask(values, *mask_spec)
-    n_dropped = 0
-    if out_rows.any():
-        if outside == "error":
-            _boundary.check_inside(values, box, names)
-            raise InputError(f"{int(out_rows.sum())} sample(s) lie outside the mask: fix the mask or the "
-                             "data, or pass outside='drop' to drop them (the count dropped is recorded)")
-        n_dropped = int(out_rows.sum())
-        values = values[~out_rows]
-        w = None if w is None else w[~out_rows]
-        if w is not None:
-            if w.sum() <= 0:
-                raise InputError("every sample with weight lies outside the support")
-            w = w / w.sum()
-        n = values.shape[0]
-        if n < d + 1:
-            raise InputError(f"only {n} samples remain after dropping {n_dropped} outside the support: "
-                             f"at least {d + 1} are needed")
+    if not out_rows.any():
+        return values, w, 0
+    if outside == "error":
+        _boundary.check_inside(values, box, names)
+        raise InputError(f"{int(out_rows.sum())} sample(s) lie outside the mask: fix the mask or the "
+                         "data, or pass outside='drop' to drop them (the count dropped is recorded)")
+    n_dropped = int(out_rows.sum())
+    values = values[~out_rows]
+    if w is not None:
+        w = w[~out_rows]
+        if w.sum() <= 0:
+            raise InputError("every sample with weight lies outside the support")
+        w = w / w.sum()
+    if values.shape[0] < d + 1:
+        raise InputError(f"only {values.shape[0]} samples remain after dropping {n_dropped} outside the support: "
+                         f"at least {d + 1} are needed")
+    return values, w, n_dropped
 
-    if spec is not None:
-        est = _directional.fit_estimate(values, w, names, units, spec, mk, bandwidth, parametrization, box,
-                                        boundary, engine)
-        if n_dropped:
-            est.attrs["n_dropped_outside_support"] = n_dropped
-        return est
 
+def _continuous_part(values, w, box, point, names):
+    """The samples above a point mass (all samples without one), their weights and support."""
+    if point is None:
+        return values, w, box
+    d = values.shape[1]
+    keep = ~point.rows
+    cont_values = values[keep]
+    cont_box = list(box)
+    cont_box[point.index] = (point.threshold, box[point.index][1])
+    n_cont = cont_values.shape[0]
+    if 0 < n_cont < d + 1:
+        raise InputError(f"only {n_cont} value(s) of {names[point.index]} exceed the point-mass "
+                         f"threshold {point.threshold}: at least {d + 1} are needed for the continuous part")
+    cont_w = None if (w is None or n_cont == 0) else w[keep] / w[keep].sum()
+    return cont_values, cont_w, cont_box
+
+
+def _fit_linear(values, w, box, mask_spec, names, mk, options):
+    """Boundary method, bandwidth and model for linear variables: (method, result, model, note).
+
+    ``boundary=None`` and ``"linear"`` ask for the linear boundary kernel
+    (Jones 1993); where it cannot apply (a kernel or H that does not
+    factorise over the bounded variables) reflection is used and the note
+    says why.
+    """
+    boundary, bandwidth = options["boundary"], options["bandwidth"]
+    d = values.shape[1]
     if mask_spec is not None:
         if boundary not in (None, "renormalize", "mask"):
             raise InputError(f"with mask= the edge correction is the kernel mass inside the mask; "
@@ -287,123 +361,77 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="normal", parametr
         method = "mask"
     else:
         method = _boundary.validate_method(boundary, box)
-
-    # a point mass at the lower bound of one variable
-    point = _point_mass_split(point_masses, values, w, box, names)
-    if point is not None:
-        keep = ~point.rows
-        cont_values = values[keep]
-        cont_w = None if w is None else w[keep] / w[keep].sum()
-        cont_box = list(box)
-        cont_box[point.index] = (point.threshold, box[point.index][1])
-        if cont_values.shape[0] < d + 1:
-            raise InputError(f"only {cont_values.shape[0]} value(s) of {names[point.index]} exceed the point-mass "
-                             f"threshold {point.threshold}: at least {d + 1} are needed for the continuous part")
-    else:
-        cont_values, cont_w, cont_box = values, w, box
-
-    if method != "mask":
-        _boundary.check_method(method, cont_box, cont_values, names)
-    sel_values = _boundary.selection_data(method, cont_values, cont_box) if method != "mask" else cont_values
+        _boundary.check_method(method, box, values, names)
+    sel_values = _boundary.selection_data(method, values, box) if method != "mask" else values
     if isinstance(bandwidth, str):
-        result = select(bandwidth, sel_values, cont_w, kernel=mk.name, form=mk.form,
-                        parametrization=parametrization, names=names)
+        result = select(bandwidth, sel_values, w, kernel=mk.name, form=mk.form,
+                        parametrization=options["parametrization"], names=names)
     elif isinstance(bandwidth, BandwidthResult):
         result = bandwidth
     else:
-        result = BandwidthResult(BandwidthMatrix.from_matrix(bandwidth, d), "given", parametrization)
-
-    default_note = ""
+        result = BandwidthResult(BandwidthMatrix.from_matrix(bandwidth, d), "given", options["parametrization"])
+    note = ""
+    if method not in ("none", "mask") and boundary in (None, "linear"):
+        note = f"linear boundary kernel ({'default' if boundary is None else 'asked for'})"
     try:
-        model = _boundary.build_model(method, cont_values, cont_w, result.matrix, mk, cont_box, engine, names,
+        model = _boundary.build_model(method, values, w, result.matrix, mk, box, options["engine"], names,
                                       mask=mask_spec)
     except InputError as err:
-        if boundary is not None or method in ("none", "mask"):
+        if boundary not in (None, "linear") or method in ("none", "mask"):
             raise
-        # the default cannot honour this kernel and H: fall back to the method that always can
-        default_note = f"default {method!r} not applicable ({err}); used {_boundary.DEFAULT_FALLBACK!r}"
+        note = f"linear boundary kernel not applicable ({err}); used {_boundary.DEFAULT_FALLBACK!r}"
         method = _boundary.DEFAULT_FALLBACK
-        model = _boundary.build_model(method, cont_values, cont_w, result.matrix, mk, cont_box, engine, names)
-    if point is not None:
-        point.fit_part(values, w, dict(kernel=mk.name, form=mk.form, bandwidth=bandwidth,
-                                       parametrization=parametrization, boundary=boundary,
-                                       engine=engine), box, names, units, result)
-    pm = None if point is None else PointMass(point.index, point.name, point.threshold, point.bound)
-    support = Support(tuple(names), tuple(tuple(b) for b in box), (None,) * d, None, pm)
-    est = DensityEstimate(cont_values, cont_w, names, units, mk, result, cont_box, method, engine,
-                          model=model, point_mass=point, mask=mask_spec, support=support)
-    est.attrs["n_dropped_outside_support"] = n_dropped
-    if boundary is None and method != "none":
-        est.attrs["boundary_choice"] = default_note or f"default for these bounds ({method!r})"
-    return est
+        model = _boundary.build_model(method, values, w, result.matrix, mk, box, options["engine"], names)
+    return method, result, model, note
 
 
-class _PointMass:
-    """The point mass of one variable at its lower bound (values <= threshold)."""
-
-    def __init__(self, index, name, threshold, bound, rows, probability):
-        self.index, self.name, self.threshold, self.bound = index, name, threshold, bound
-        self.rows, self.probability = rows, probability
-        self.count = int(rows.sum())
-        self.estimate = None
-        self.problem = ""
-
-    def fit_part(self, values, w, options, box, names, units, result):
-        """The density of the other variables on the point-mass part."""
-        d = values.shape[1]
-        if d == 1 or self.count == 0:
-            return
-        others = [k for k in range(d) if k != self.index]
-        sub = values[self.rows][:, others]
-        sub_w = None if w is None else w[self.rows]
-        bandwidth = options["bandwidth"]
-        if not isinstance(bandwidth, str):
-            bandwidth = np.asarray(result.H)[np.ix_(others, others)]
-        try:
-            self.estimate = fit(sub, kernel=options["kernel"], form=options["form"], bandwidth=bandwidth,
-                                parametrization=options["parametrization"],
-                                bounds=[box[k] for k in others], boundary=options["boundary"],
-                                weights=sub_w, engine=options["engine"],
-                                names=[names[k] for k in others], units=[units[k] for k in others])
-        except MvkdeError as err:
-            self.problem = str(err)
-
-    def as_attrs(self) -> dict:
-        return {"point_mass_variable": self.name, "point_mass_threshold": float(self.threshold),
-                "point_mass_bound": float(self.bound), "point_mass_probability": float(self.probability),
-                "point_mass_count": self.count}
-
-
-def _point_mass_split(point_masses, values, w, box, names):
-    if point_masses is None:
-        return None
-    try:
-        items = list(point_masses)
-    except TypeError:
-        raise InputError("point_masses must be a list with one entry (None or a threshold) per variable") from None
+def _fit_point_part(point, values, w, support: Support, names, units, options, result) -> None:
+    """The density of the other variables on the point mass (``point.estimate``)."""
     d = values.shape[1]
-    if len(items) != d:
-        raise InputError(f"point_masses has {len(items)} entries but the data have {d} variables ({', '.join(names)})")
-    given = [j for j, t in enumerate(items) if t is not None]
-    if not given:
-        return None
-    if len(given) > 1:
-        raise InputError(f"point_masses: at most one variable may carry a point mass, got "
-                         f"{', '.join(names[j] for j in given)}")
-    j = given[0]
+    if d == 1 or point.count == 0:
+        return
+    others = [k for k in range(d) if k != point.index]
+    sub_support = support.subset(others)
+    bandwidth = options["bandwidth"]
+    if not isinstance(bandwidth, str):
+        bandwidth = np.asarray(result.H)[np.ix_(others, others)]
+    periods = list(sub_support.periods) if any(p is not None for p in sub_support.periods) else None
     try:
-        t = float(items[j])
-    except (TypeError, ValueError):
-        raise InputError(f"point_masses for {names[j]} must be a number (the threshold), got {items[j]!r}") from None
-    lo, hi = box[j]
-    if not math.isfinite(lo):
-        raise InputError(f"point_masses for {names[j]}: the point mass sits at the lower bound, so {names[j]} "
-                         "needs a finite lower bound in bounds= (e.g. (0, None) for precipitation)")
-    if not (math.isfinite(t) and lo <= t < hi):
-        raise InputError(f"point_masses threshold for {names[j]} must lie in [{lo}, {hi}), got {t}")
-    rows = values[:, j] <= t
-    wn = np.full(values.shape[0], 1.0 / values.shape[0]) if w is None else w
-    return _PointMass(j, names[j], t, lo, rows, float(wn[rows].sum()))
+        point.estimate = fit(values[point.rows][:, others], kernel=options["kernel"], form=options["form"],
+                             bandwidth=bandwidth, parametrization=options["parametrization"],
+                             bounds=[None if periods and periods[i] is not None else b
+                                     for i, b in enumerate(sub_support.bounds)],
+                             boundary=options["boundary"], periods=periods, sphere=sub_support.sphere,
+                             weights=None if w is None else w[point.rows], engine=options["engine"],
+                             names=[names[k] for k in others], units=[units[k] for k in others])
+    except MvkdeError as err:
+        point.problem = str(err)
+
+
+def _no_bandwidth(d: int) -> BandwidthResult:
+    """The bandwidth of an empty continuous part (every value at the point mass)."""
+    nan = np.full((d, d), np.nan)
+    return BandwidthResult(BandwidthMatrix(nan, nan), "none: every value is at the point mass", "full")
+
+
+class _EmptyModel:
+    """The continuous part when every value lies at the point mass: zero density."""
+
+    attrs = {"boundary": "none", "continuous_part": "empty: every value is at the point mass"}
+
+    def __init__(self, d: int):
+        self.d = d
+
+    def density(self, pts, log=False):
+        return np.full(pts.shape[0], -np.inf if log else 0.0), None
+
+    def grid(self, axes):
+        return np.zeros([len(a) for a in axes]), None
+
+    def sample(self, n, rng):
+        if n:
+            raise InputError("the continuous part is empty (every value is at the point mass): nothing to draw")
+        return np.empty((0, self.d))
 
 
 # ---------------------------------------------------------------------------

@@ -130,14 +130,14 @@ def test_asymmetric_kernels_equal_scipy_sums(rng):
     # Chen (1999): Beta(x/b + 1, (1 - x)/b + 1) density at the data; Chen (2000) modified gamma kernel.
     # Reference library: scipy.stats.beta / scipy.stats.gamma densities.
     z = rng.beta(2, 5, size=(300, 1))
-    est = mvkde.fit(z, bounds=[(0, 1)], boundary="beta")
+    est = mvkde.fit(z, bounds=[(0, 1)], boundary="beta", bandwidth="normal")
     b, c = est.attrs["beta_b_x0"], est.attrs["boundary_mass_before_normalisation"]
     pts = np.linspace(0, 1, 21)
     ref = np.array([stats.beta(t / b + 1, (1 - t) / b + 1).pdf(z[:, 0]).mean() for t in pts]) / c
     np.testing.assert_allclose(est.pdf(pts[:, None]), ref, rtol=1e-8)
     assert abs(c - 1) < 0.05
     x = rng.exponential(size=(300, 1))
-    est = mvkde.fit(x, bounds=[(0, None)], boundary="gamma")
+    est = mvkde.fit(x, bounds=[(0, None)], boundary="gamma", bandwidth="normal")
     b, c = est.attrs["gamma_b_x0"], est.attrs["boundary_mass_before_normalisation"]
     pts = np.linspace(0, 3, 31)
     ref = np.array([stats.gamma(modified_gamma_shape(t, b), scale=b).pdf(x[:, 0]).mean() for t in pts]) / c
@@ -153,7 +153,7 @@ TWO_SIDED = ["reflect", "renormalize", "renormalize-kernel", "linear", "transfor
 @pytest.mark.parametrize("method", ONE_SIDED)
 def test_mass_one_sided(rng, method):
     x = rng.exponential(size=(500, 1)) + 2.0
-    est = mvkde.fit(x, bounds=[(2.0, None)], boundary=method)
+    est = mvkde.fit(x, bounds=[(2.0, None)], boundary=method, bandwidth="normal")
     nodes, w = support_nodes(2.0, None, top=2.0 + 50 * (x.max() - 2.0))
     mass = float(w @ est.pdf(nodes[:, None]))
     assert np.all(est.pdf(np.array([[1.999], [0.0], [-5.0]])) == 0.0)
@@ -170,7 +170,7 @@ def test_mass_one_sided(rng, method):
 @pytest.mark.parametrize("method", TWO_SIDED)
 def test_mass_two_sided(rng, method):
     x = 10 + 5 * rng.beta(1.0, 3.0, size=(500, 1))  # density positive and steep at 10, zero at 15
-    est = mvkde.fit(x, bounds=[(10, 15)], boundary=method)
+    est = mvkde.fit(x, bounds=[(10, 15)], boundary=method, bandwidth="normal")
     nodes, w = support_nodes(10, 15)
     assert float(w @ est.pdf(nodes[:, None])) == pytest.approx(1.0, abs=1e-3)
     assert np.all(est.pdf(np.array([[9.99], [15.01]])) == 0.0)
@@ -182,7 +182,7 @@ def test_mass_bivariate_correlated(rng, method):
     x1 = rng.exponential(size=400)
     x = np.column_stack([x1, x1 - 1 + rng.normal(size=400)])
     opts = {"parametrization": "diagonal"} if method == "gamma" else {}
-    est = mvkde.fit(x, bounds=[(0, None), None], boundary=method, **opts)
+    est = mvkde.fit(x, bounds=[(0, None), None], boundary=method, **opts, bandwidth="normal")
     n1, w1 = support_nodes(0.0, None, top=30 * x1.max(), k=60)
     n2, w2 = panels(x[:, 1].min() - 4, x[:, 1].max() + 4, 16)
     A, B = np.meshgrid(n1, n2, indexing="ij")
@@ -194,7 +194,7 @@ def test_mass_bivariate_correlated(rng, method):
 @pytest.mark.parametrize("method", ["reflect", "renormalize", "linear", "beta"])
 def test_mass_box_with_corners(rng, method):
     x = rng.random((400, 2)) ** 1.5
-    est = mvkde.fit(x, bounds=[(0, 1), (0, 1)], boundary=method, parametrization="diagonal")
+    est = mvkde.fit(x, bounds=[(0, 1), (0, 1)], boundary=method, parametrization="diagonal", bandwidth="normal")
     nodes, w = support_nodes(0.0, 1.0, k=60)
     A, B = np.meshgrid(nodes, nodes, indexing="ij")
     f = est.pdf(np.column_stack([A.ravel(), B.ravel()])).reshape(A.shape)
@@ -254,7 +254,7 @@ def _zero_inflated(rng, n, p_dry):
 def test_point_mass_zero_inflated_gamma(rng):
     n, p_dry = 3000, 0.35
     pr, tas = _zero_inflated(rng, n, p_dry)
-    est = mvkde.fit(pr, bounds=[(0, None)], point_masses=[1.0])
+    est = mvkde.fit(pr, bounds=[(0, None)], point_masses=[1.0], bandwidth="normal")
     # Monte Carlo error of a binomial proportion (common practice: 3 standard errors)
     assert abs(est.point_mass_probability - p_dry) < 3 * math.sqrt(p_dry * (1 - p_dry) / n)
     nodes, w = support_nodes(1.0, None, top=pr.max() + 40)
@@ -273,7 +273,7 @@ def test_point_mass_bivariate_integrates_to_one(rng):
     n, p_dry = 2000, 0.3
     pr, tas = _zero_inflated(rng, n, p_dry)
     est = mvkde.fit(np.column_stack([pr, tas]), bounds=[(0, None), None], point_masses=[1.0, None],
-                    names=["pr", "tas"], units=["mm", "degC"])
+                    names=["pr", "tas"], units=["mm", "degC"], bandwidth="normal")
     n1, w1 = support_nodes(1.0, None, top=pr.max() + 40, k=60)
     n2, w2 = panels(tas.min() - 8, tas.max() + 8, 16)
     A, B = np.meshgrid(n1, n2, indexing="ij")
@@ -290,11 +290,11 @@ def test_point_mass_bivariate_integrates_to_one(rng):
 def test_point_mass_bad_input(rng):
     x = rng.exponential(size=(100, 2))
     with pytest.raises(mvkde.InputError, match="at most one variable"):
-        mvkde.fit(x, bounds=[(0, None), (0, None)], point_masses=[0.1, 0.1])
+        mvkde.fit(x, bounds=[(0, None), (0, None)], point_masses=[0.1, 0.1], bandwidth="normal")
     with pytest.raises(mvkde.InputError, match="needs a finite lower bound"):
-        mvkde.fit(x, point_masses=[0.1, None])
+        mvkde.fit(x, point_masses=[0.1, None], bandwidth="normal")
     with pytest.raises(mvkde.InputError, match="point_masses has 1 entries"):
-        mvkde.fit(x, bounds=[(0, None), None], point_masses=[0.1])
+        mvkde.fit(x, bounds=[(0, None), None], point_masses=[0.1], bandwidth="normal")
 
 
 # -- disc mask ------------------------------------------------------------------------
@@ -309,9 +309,9 @@ def test_disc_mask_uniform_is_flat_to_the_edge(rng):
     # uniform on the support the mask defines: the union of its cells (a disc up to the cell size)
     cells = np.column_stack([X[inside], Y[inside]])
     x = cells[rng.integers(0, cells.shape[0], n)] + step * (rng.random((n, 2)) - 0.5)
-    est = mvkde.fit(x, mask=mask, parametrization="diagonal")
+    est = mvkde.fit(x, mask=mask, parametrization="diagonal", bandwidth="normal")
     g = est.grid()
-    plain = mvkde.fit(x, parametrization="diagonal").grid(limits=[(-1.2, 1.2)] * 2, size=81)
+    plain = mvkde.fit(x, parametrization="diagonal", bandwidth="normal").grid(limits=[(-1.2, 1.2)] * 2, size=81)
     cell = (ax[1] - ax[0]) ** 2
     level = 1.0 / (mask.values.sum() * cell)  # uniform density on the mask's cells (~ 1/pi)
     assert float(g.sum()) * cell == pytest.approx(1.0, rel=1e-9)
@@ -330,11 +330,11 @@ def test_disc_mask_uniform_is_flat_to_the_edge(rng):
 def test_mask_bad_input(rng):
     x = rng.random((50, 2))
     with pytest.raises(mvkde.InputError, match="xarray.DataArray"):
-        mvkde.fit(x, mask=np.ones((5, 5), bool))
+        mvkde.fit(x, mask=np.ones((5, 5), bool), bandwidth="normal")
     ax = np.linspace(0, 1, 5)
     m = xr.DataArray(np.ones((5, 5), bool), coords={"a": ax, "x1": ax}, dims=["a", "x1"])
     with pytest.raises(mvkde.InputError, match="one dimension per variable"):
-        mvkde.fit(x, mask=m)
+        mvkde.fit(x, mask=m, bandwidth="normal")
 
 
 # -- data outside the bounds, refusals, defaults, sampling -------------------------------------
@@ -343,47 +343,50 @@ def test_outside_bounds_error_and_drop(rng):
     x = np.column_stack([rng.exponential(size=100), rng.normal(size=100)])
     x[[3, 7], 0] = [-0.5, -2.25]
     with pytest.raises(mvkde.InputError, match=r"2 value\(s\) of x0 .*worst -2.25.*outside='drop'"):
-        mvkde.fit(x, bounds=[(0, None), None])
-    est = mvkde.fit(x, bounds=[(0, None), None], outside="drop")
+        mvkde.fit(x, bounds=[(0, None), None], bandwidth="normal")
+    est = mvkde.fit(x, bounds=[(0, None), None], outside="drop", bandwidth="normal")
     assert est.attrs["n_dropped_outside_support"] == 2 and est.n == 98
     with pytest.raises(mvkde.InputError, match="outside given an invalid value"):
-        mvkde.fit(x, bounds=[(0, None), None], outside="clip")
+        mvkde.fit(x, bounds=[(0, None), None], outside="clip", bandwidth="normal")
 
 
 def test_refusals_name_a_method_that_works(rng):
     z = rng.beta(2, 3, size=(200, 2))
     z[:, 1] = 0.5 * z[:, 0] + 0.5 * z[:, 1]
     with pytest.raises(mvkde.InputError, match="correlated.*boundary='reflect'"):
-        mvkde.fit(z, bounds=[(0, 1), (0, 1)], boundary="beta")
+        mvkde.fit(z, bounds=[(0, 1), (0, 1)], boundary="beta", bandwidth="normal")
     with pytest.raises(mvkde.InputError, match="boundary='gamma'"):
-        mvkde.fit(z, bounds=[(0, None), (0, 1)], boundary="beta", parametrization="diagonal")
+        mvkde.fit(z, bounds=[(0, None), (0, 1)], boundary="beta", parametrization="diagonal", bandwidth="normal")
     with pytest.raises(mvkde.InputError, match="boundary='beta'"):
-        mvkde.fit(z, bounds=[(0, 1), None], boundary="gamma")
-    with pytest.raises(mvkde.InputError, match="spherical.*boundary='reflect'"):
-        mvkde.fit(z, bounds=[(0, 1), None], boundary="linear", kernel="epanechnikov", form="spherical")
+        mvkde.fit(z, bounds=[(0, 1), None], boundary="gamma", bandwidth="normal")
+    # the linear boundary kernel falls back to reflection (and says why) where it cannot apply
+    spherical = mvkde.fit(z, bounds=[(0, 1), None], boundary="linear", kernel="epanechnikov", form="spherical",
+                          bandwidth="normal")
+    assert spherical.boundary == "reflect"
+    assert "spherical" in spherical.attrs["boundary_choice"] and "'reflect'" in spherical.attrs["boundary_choice"]
     with pytest.raises(mvkde.InputError, match="product epanechnikov.*boundary='reflect'"):
-        mvkde.fit(z, bounds=[None, (0, 1)], boundary="renormalize", kernel="epanechnikov")
+        mvkde.fit(z, bounds=[None, (0, 1)], boundary="renormalize", kernel="epanechnikov", bandwidth="normal")
     zero = np.r_[0.0, rng.exponential(size=50)]
     with pytest.raises(mvkde.InputError, match="point_masses=.*boundary='reflect'"):
-        mvkde.fit(zero, bounds=[(0, None)], boundary="transform")
+        mvkde.fit(zero, bounds=[(0, None)], boundary="transform", bandwidth="normal")
     with pytest.raises(mvkde.InputError, match="did you mean 'reflect'"):
-        mvkde.fit(zero, bounds=[(0, None)], boundary="reflekt")
+        mvkde.fit(zero, bounds=[(0, None)], boundary="reflekt", bandwidth="normal")
 
 
 def test_default_method_and_fallback(rng):
     x = np.column_stack([rng.exponential(size=200), rng.normal(size=200)])
-    est = mvkde.fit(x, bounds=[(0, None), None])
+    est = mvkde.fit(x, bounds=[(0, None), None], bandwidth="normal")
     assert est.boundary == "linear" and est.grid(16).attrs["boundary"] == "linear"
-    est = mvkde.fit(x, bounds=[(0, None), None], kernel="epanechnikov", form="spherical")
+    est = mvkde.fit(x, bounds=[(0, None), None], kernel="epanechnikov", form="spherical", bandwidth="normal")
     assert est.boundary == "reflect" and "not applicable" in est.attrs["boundary_choice"]
-    assert mvkde.fit(x).boundary == "none"
+    assert mvkde.fit(x, bandwidth="normal").boundary == "none"
 
 
 @pytest.mark.parametrize("method", ["none", "reflect", "renormalize", "renormalize-kernel", "linear",
                                     "transform", "gamma"])
 def test_sample_respects_bounds_and_law(rng, method):
     x = rng.exponential(size=(400, 1))
-    est = mvkde.fit(x, bounds=[(0, None)], boundary=method)
+    est = mvkde.fit(x, bounds=[(0, None)], boundary=method, bandwidth="normal")
     s = est.sample(3000, seed=11)[:, 0]
     assert np.all(s >= 0.0)
     # the draws follow the estimate: compare the mean with the estimate's own mean (quadrature)
@@ -396,6 +399,6 @@ def test_sample_respects_bounds_and_law(rng, method):
 
 def test_sample_box_reflection_folds_into_box(rng):
     x = rng.random((300, 2))
-    est = mvkde.fit(x, bounds=[(0, 1), (0, 1)], boundary="reflect")
+    est = mvkde.fit(x, bounds=[(0, 1), (0, 1)], boundary="reflect", bandwidth="normal")
     s = est.sample(5000, seed=2)
     assert s.min() >= 0.0 and s.max() <= 1.0

@@ -14,7 +14,7 @@ from scipy import integrate, special
 
 import mvkde
 from mvkde import directional as D
-from mvkde import directional_selectors as S
+from mvkde.directional import selectors as S
 
 from circular_mise import exact_mise, optimal_concentration, sample
 

@@ -324,7 +324,7 @@ def test_data_taken_modulo_the_period(rng):
 
 def test_sector_table_and_grid_products(rng):
     df = wind_sample(rng, 400)
-    est = mvkde.fit(df, periods=[None, 360.0], bounds=[(0, None), None])
+    est = mvkde.fit(df, periods=[None, 360.0], bounds=[(0, None), None], bandwidth="normal")
     table = sector_table(est, "direction", "speed", sectors=8, speed_edges=[0, 3, 6, 10, 80])
     assert table.shape == (8, 4)
     assert float(table.sum()) == pytest.approx(1.0, abs=2e-3)
@@ -364,8 +364,11 @@ def test_bad_input_gives_clear_errors(rng):
         mvkde.fit(x, sphere=("x0", "x1"))
     with pytest.raises(InputError, match="circular and cannot have bounds"):
         mvkde.fit(x, periods=[None, 360.0], bounds=[None, (0, 360)])
-    with pytest.raises(InputError, match="boundary='linear' is not available with circular"):
-        mvkde.fit(x, periods=[None, 360.0], bounds=[(0, None), None], boundary="linear")
+    with pytest.raises(InputError, match="boundary='renormalize' is not available with circular"):
+        mvkde.fit(x, periods=[None, 360.0], bounds=[(0, None), None], boundary="renormalize")
+    # the linear boundary kernel (the default) falls back to reflection on the linear block, and says so
+    est = mvkde.fit(x, periods=[None, 360.0], bounds=[(0, None), None], boundary="linear", bandwidth="normal")
+    assert est.boundary == "reflect" and "reflection used" in est.attrs["boundary_choice"]
     with pytest.raises(InputError, match="must be zero off the diagonal"):
         mvkde.fit(x, periods=[None, 360.0], bandwidth=[[1.0, 0.1], [0.1, 50.0]])
     with pytest.raises(InputError, match="part of the spherical location and has a period"):
@@ -374,11 +377,11 @@ def test_bad_input_gives_clear_errors(rng):
 
 def test_grid_attributes_name_circular_variables_and_concentrations(rng):
     df = wind_sample(rng, 100)
-    g = mvkde.fit(df, periods=[None, 360.0]).grid(16)
+    g = mvkde.fit(df, periods=[None, 360.0], bandwidth="normal").grid(16)
     assert g.attrs["circular_variables"] == "direction"
     assert g.attrs["period_direction"] == 360.0
     assert g.attrs["concentration_direction"] > 0
-    # fit's default selector "normal" on a circle: the Garcia-Portugues (2013) AMISE rule
+    # the selector "normal" on a circle: the Garcia-Portugues (2013) AMISE rule
     assert "Garcia-Portugues (2013)" in g.attrs["concentration_method_direction"]
     assert "von Mises" in g.attrs["engine_reason"]
     assert g["direction"].attrs["period"] == 360.0 and "period" not in g["speed"].attrs

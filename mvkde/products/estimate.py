@@ -396,10 +396,14 @@ def standard_error(est, density_values) -> np.ndarray:
 
     Wand & Jones (1995, Sec. 4.3): Var f_hat(x) ~ n^{-1} |H|^{-1/2} R(K) f(x),
     with R(K) of the unit-covariance d-variate kernel and n the effective
-    sample size.  Asymptotic: it overstates the variance at small n.
+    sample size (every row, the point mass's included, for the continuous
+    part of an estimate with a point mass).  Asymptotic: it overstates the variance at small n.
     """
     f = np.maximum(np.asarray(density_values, dtype=float), 0.0)
-    var = f * est.kernel.roughness / (est.n_effective * est.bandwidth.matrix.sqrt_det)
+    # with a point mass, f is the continuous part (1 - p) f_c = n^{-1} sum over ALL n rows of
+    # 1{above} K_H(x - X_i): its variance has the whole sample size, n_above / (1 - p)
+    n = est.n_effective / (1.0 - est.point_mass_probability) if est.point_mass_probability < 1 else np.inf
+    var = f * est.kernel.roughness / (n * est.bandwidth.matrix.sqrt_det)
     return np.sqrt(var)
 
 

@@ -39,14 +39,18 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy import special
 
-from . import directional as _dir
-from .bandwidth import BandwidthMatrix, BandwidthResult, kernel_rescaling, select
-from .boundary.methods import axis_reach, forward_transform, inverse_transform
-from .engines import EngineChoice
-from .engines.exact import CHUNK_ELEMENTS, kernel_matrix
-from .errors import InputError
-from .kernels import get_multivariate_kernel
+from . import cv as _cv
+from . import kernels as _dir
+from . import selectors as _sel
+from ..bandwidth import SELECTORS, BandwidthMatrix, BandwidthResult, kernel_rescaling, select
+from ..boundary import BOUNDARY_METHODS, check_method, has_bounds
+from ..boundary.methods import axis_reach, fold_into_box, forward_transform, inverse_transform
+from ..engines import EngineChoice
+from ..engines.exact import CHUNK_ELEMENTS, kernel_matrix
+from ..errors import InputError, check_choice
+from ..kernels import get_multivariate_kernel
 
 #: boundary methods available for the linear block of a directional estimate
 DIRECTIONAL_BOUNDARY = ("none", "reflect", "transform")
@@ -123,9 +127,6 @@ def check_support(spec: DirectionalSpec, values, box, names, point_masses, mask)
                                         if j < len(point_masses)):
         raise InputError("point_masses on a circular or spherical variable is not supported: "
                          "declare the point mass on a linear variable")
-    if point_masses is not None and any(t is not None for t in point_masses):
-        raise InputError("point_masses together with circular variables or a spherical location is not "
-                         "supported yet: fit the wet part separately (select rows above the threshold)")
     if mask is not None:
         raise InputError("mask= with circular variables or a spherical location is not supported: "
                          "use bounds= on the linear variables")
@@ -252,7 +253,6 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
     ``lin_values`` are the linear columns the selector sees (transformed for
     ``boundary="transform"``).
     """
-    from . import directional_selectors as _sel
 
     q = len(spec.linear)
     theta = _angles(values, spec)
@@ -277,7 +277,7 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
         for j in spec.sphere:
             notes[names[j]] = "likelihood cross-validation (KD-tree neighbours)"
     elif method in ("mlcv", "lscv"):
-        r = _dir.cross_validate(method, theta=theta, units=units, lin=lin_values if q else None, weights=weights,
+        r = _cv.cross_validate(method, theta=theta, units=units, lin=lin_values if q else None, weights=weights,
                                 parametrization=parametrization)
         kappas = {j: float(k) for j, k in zip(spec.circular, r.kappas)}
         ks = r.kappa_sphere
@@ -590,7 +590,6 @@ class DirectionalModel:
 
 
 def special_i0e(k):
-    from scipy import special
     return float(special.i0e(k))
 
 
@@ -603,8 +602,6 @@ def _lse_rows(a):
 
 def _fold(y, box):
     """Fold draws back into the box (the reflection estimate's own sampling)."""
-    from .boundary.methods import fold_into_box
-
     return fold_into_box(y, box)
 
 
@@ -612,26 +609,19 @@ def _fold(y, box):
 # fit
 # ---------------------------------------------------------------------------
 
-def fit_estimate(values, w, names, units, spec: DirectionalSpec, mk, bandwidth, parametrization, box,
-                 boundary, engine):
-    """The directional branch of :func:`mvkde.fit` (data already wrapped and checked)."""
-    from .bandwidth import SELECTORS
-    from .boundary import BOUNDARY_METHODS, check_method, has_bounds
-    from .errors import check_choice
-    from .estimator import DensityEstimate
-    from .support import Support
+def fit_model(values, w, names, spec: DirectionalSpec, mk, bandwidth, parametrization, box, boundary):
+    """The directional smoothing and model of :func:`mvkde.fit` (data already wrapped and checked).
 
-    n, d = values.shape
+    Returns ``(model, result, method, concentrations, attrs)``: the
+    :class:`DirectionalModel`, the :class:`~mvkde.bandwidth.BandwidthResult`
+    (H with the circular variables' equivalent variances), the boundary
+    method of the linear block, kappa per directional variable and the
+    attributes that describe the choice.
+    """
+    d = values.shape[1]
     lin_box = [box[j] for j in spec.linear]
     lin_names = [names[j] for j in spec.linear]
-    if boundary is None:
-        method = DIRECTIONAL_DEFAULT_BOUNDARY if has_bounds(lin_box) else "none"
-    else:
-        method = check_choice("boundary", boundary, BOUNDARY_METHODS)
-        if method not in DIRECTIONAL_BOUNDARY:
-            raise InputError(f"boundary={method!r} is not available with circular variables or a spherical "
-                             f"location (the correction acts on the linear variables only): use one of "
-                             f"{', '.join(DIRECTIONAL_BOUNDARY)}")
+    method, note = _linear_block_method(boundary, lin_box)
     lin_values = values[:, spec.linear]
     if method == "transform":
         check_method("transform", lin_box, lin_values, lin_names)
@@ -660,30 +650,52 @@ def fit_estimate(values, w, names, units, spec: DirectionalSpec, mk, bandwidth, 
     if spec.sphere is not None:
         for j in spec.sphere:
             conc[names[j]] = float(sm.kappa_sphere)
-    support = Support(tuple(names), tuple(tuple(b) for b in box), tuple(spec.periods),
-                      None if spec.sphere is None else (names[spec.sphere[0]], names[spec.sphere[1]]))
-    est = DensityEstimate(values, w, names, units, mk, result, box, method, engine, model=model, support=support,
-                          concentrations=conc)
-    est.attrs["circular_variables"] = ", ".join(names[j] for j in spec.circular)
+    return model, result, method, conc, _attrs(spec, sm, mk, names, conc, lin_names, note)
+
+
+def _linear_block_method(boundary, lin_box) -> tuple[str, str]:
+    """Boundary method of the linear block and a note on how it was chosen.
+
+    The default (None) and ``"linear"`` ask for the linear boundary kernel;
+    the directional model corrects its linear block by reflection, so both
+    resolve to ``"reflect"`` and say so.
+    """
+    if not has_bounds(lin_box):
+        return "none", ""
+    if boundary is None or boundary == "linear":
+        return DIRECTIONAL_DEFAULT_BOUNDARY, ("linear boundary kernel not available for the linear block of a "
+                                              "directional estimate: reflection used")
+    method = check_choice("boundary", boundary, BOUNDARY_METHODS)
+    if method not in DIRECTIONAL_BOUNDARY:
+        raise InputError(f"boundary={method!r} is not available with circular variables or a spherical "
+                         f"location (the correction acts on the linear variables only): use one of "
+                         f"{', '.join(DIRECTIONAL_BOUNDARY)}")
+    return method, ""
+
+
+def _attrs(spec, sm, mk, names, conc, lin_names, note) -> dict:
+    attrs = {"circular_variables": ", ".join(names[j] for j in spec.circular)}
     for j in spec.circular:
-        est.attrs[f"period_{names[j]}"] = float(spec.periods[j])
+        attrs[f"period_{names[j]}"] = float(spec.periods[j])
     if spec.sphere is not None:
-        est.attrs["sphere_variables"] = ", ".join(est.sphere)
-        est.attrs["earth_radius_km"] = _dir.EARTH_RADIUS_KM
+        attrs["sphere_variables"] = ", ".join(names[j] for j in spec.sphere)
+        attrs["earth_radius_km"] = _dir.EARTH_RADIUS_KM
     for j in spec.directional:
-        est.attrs[f"concentration_{names[j]}"] = conc[names[j]]
-        est.attrs[f"concentration_method_{names[j]}"] = sm.notes.get(names[j], sm.method)
+        attrs[f"concentration_{names[j]}"] = conc[names[j]]
+        attrs[f"concentration_method_{names[j]}"] = sm.notes.get(names[j], sm.method)
     if spec.linear:
         if sm.method in ("mlcv", "lscv"):
-            note = f"linear block chosen jointly with the concentrations ({sm.method}, Gaussian kernel"
-            note += ", canonical rescaling to " + mk.name + ")" if mk.name != "gaussian" else ")"
+            text = f"linear block chosen jointly with the concentrations ({sm.method}, Gaussian kernel"
+            text += ", canonical rescaling to " + mk.name + ")" if mk.name != "gaussian" else ")"
         elif sm.method == "given":
-            note = "given"
+            text = "given"
         else:
-            note = f"{sm.method} selector on the linear variables alone"
-        est.attrs["bandwidth_linear_block"] = note
-        est.attrs["boundary_applies_to"] = ", ".join(lin_names)
-    est.attrs["bandwidth_matrix_directional_note"] = (
+            text = f"{sm.method} selector on the linear variables alone"
+        attrs["bandwidth_linear_block"] = text
+        attrs["boundary_applies_to"] = ", ".join(lin_names)
+    if note:
+        attrs["boundary_choice"] = note
+    attrs["bandwidth_matrix_directional_note"] = (
         "diagonal entries of circular variables are the von Mises kernel's equivalent variance "
         "(period/2pi)^2/kappa; of the spherical pair (180/pi)^2/kappa degrees^2")
-    return est
+    return attrs

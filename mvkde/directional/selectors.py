@@ -71,7 +71,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import optimize, special
 
-from . import directional as _dir
+from . import kernels as _dir
 
 TWO_PI = 2.0 * math.pi
 
