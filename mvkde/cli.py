@@ -107,7 +107,9 @@ def cmd_plot(args) -> int:
     size = parse_size(args.size, args.width, args.height)
     result = plot_output(args.output, cell=selection, field=args.field, variables=args.variables,
                          out=args.out, size=size)
-    print(f"mvkde plot: wrote {result.path} ({result.kind}, {size[0]}x{size[1]} pixels)")
+    for note in result.notes:
+        print(f"mvkde plot: {note}")
+    print(f"mvkde plot: wrote {result.path} ({result.kind}, {result.size[0]}x{result.size[1]} pixels)")
     return 0
 
 
@@ -178,15 +180,19 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("output", metavar="OUTPUT.nc", help="a density file written by mvkde run")
     p.add_argument("--cell", action="append", metavar="DIM=VALUE[,DIM=VALUE]",
                    help="choose the cell: any cell dimension (lat, lon, season, station ...); nearest value "
-                        "for numeric coordinates, exact for labels (repeatable)")
+                        "for numeric coordinates and dates (the value used is printed), exact for labels "
+                        "(repeatable)")
     p.add_argument("--season", metavar="LABEL", help="same as --cell season=LABEL")
     p.add_argument("--field", metavar="NAME",
                    help="map a per-cell value: n_samples, grid_mass, flags, bandwidth[A,B], "
-                        "exceedance[A>VALUE,B>VALUE] ...")
+                        "exceedance[A>VALUE,B>VALUE] (always computed from the density) ...; or draw one "
+                        "cell's grid product (cdf, exceedance, marginal_A) with every cell dim chosen")
     p.add_argument("--variables", metavar="A[,B]",
                    help="the one or two variables to draw (the others are integrated out; default: the first two)")
     p.add_argument("-o", "--out", metavar="FILE.png", help="picture to write (default: beside OUTPUT.nc)")
-    p.add_argument("--size", metavar="WxH", help="picture size in pixels (default 900x700)")
+    p.add_argument("--size", metavar="WxH",
+                   help="picture size in pixels (1200x900) or inches (12x9in, 100 pixels per inch); default "
+                        "900x700, a map's canvas shaped like the map")
     p.add_argument("--width", metavar="PIXELS", help="picture width in pixels")
     p.add_argument("--height", metavar="PIXELS", help="picture height in pixels")
     p.set_defaults(func=cmd_plot)
