@@ -53,6 +53,7 @@ NO_DATA = "#c8c8c8"       # map background where a cell has no value
 FRAME = "#8a8a8a"         # axis frame and ticks: quiet grey
 GRID = "#ebebeb"          # faint grid behind lines and points
 FIT_MASS = 0.999          # axis ranges hold at least this share of the grid mass ...
+CONSTANT_DIGITS = 6       # a field equal to this many significant digits everywhere is called constant
 FIT_MARGIN = 0.05         # ... plus this share of their span (and one grid step) on each side
 DEFAULT_SIZE = (900, 700)
 MIN_PIXELS, MAX_PIXELS = 200, 8000
@@ -652,6 +653,7 @@ def _colour_bar(fig, mappable, levels, label, **kw):
     ticks = levels if len(levels) <= 8 else levels[::2]
     bar = fig.colorbar(mappable, label=label, ticks=ticks, **kw)
     bar.outline.set_edgecolor(FRAME)
+    bar.formatter.set_useOffset(False)          # plain round numbers, never "1e-8 + 1" above the bar
     return bar
 
 
@@ -771,6 +773,12 @@ def _level_texts(ax, levels, x_text, fontsize, polar=False):
     return texts
 
 
+def _runs(mask: np.ndarray) -> list:
+    """(first, last) index of each run of True in ``mask``."""
+    edges = np.diff(np.concatenate([[0], mask.astype(int), [0]]))
+    return list(zip(np.flatnonzero(edges == 1), np.flatnonzero(edges == -1) - 1))
+
+
 def _draw_line(fig, cd: CellDensity, lay, levels, title, fontsize, polar: bool):
     (x,) = cd.names
     X, F = cd.axes[x], cd.values
@@ -800,18 +808,29 @@ def _draw_line(fig, cd: CellDensity, lay, levels, title, fontsize, polar: bool):
         ax.plot(X, F, color=LINE, linewidth=1.4)
         box = fitted_limits(F, {x: X}, [x])
         ax.set_xlim(*box[x])
-        for m, lv in levels.items():
-            if np.isfinite(lv):
-                ax.axhline(lv, color=LINE, linewidth=0.9)
-        texts = _level_texts(ax, levels, box[x][1] - 0.01 * (box[x][1] - box[x][0]), fontsize)
+        texts = []
+        for m, lv in sorted(levels.items()):
+            if not (np.isfinite(lv) and lv > 0):
+                continue
+            # the region itself: a bar at its level over every stretch where the density reaches it
+            runs = _runs(F >= lv)
+            ax.hlines([lv] * len(runs), [X[i] for i, _ in runs], [X[j] for _, j in runs], color=LINE,
+                      linewidth=1.6)
+            ax.vlines([X[i] for i, _ in runs] + [X[j] for _, j in runs], 0, lv, color=LINE, linewidth=0.6,
+                      linestyle=(0, (1, 2)))
+            i, j = max(runs, key=lambda r: X[r[1]] - X[r[0]])
+            t = ax.annotate(_mass_label(m), (X[j], lv), xytext=(4, 0), textcoords="offset points",
+                            fontsize=fontsize * 0.85, color=LINE, ha="left", va="center")
+            t.set_path_effects(_halo(2.5))
+            texts.append(t)
         if cd.point_mass_probability is not None and cd.point_mass_var == x:
             ax.text(0.98, 0.97, f"P({x} <= {lay.point_mass[x]:g}) = {cd.point_mass_probability:.3f} "
                                 f"(not drawn)", transform=ax.transAxes, ha="right", va="top", fontsize=fontsize * 0.85)
         ax.set_ylim(bottom=0)
         ax.set_xlabel(lay.label(x))
         ax.set_ylabel(f"density [{cd_units(lay, [x])}]")
-        ax.set_title("horizontal lines: levels of the highest-density regions, labelled with the "
-                     "probability inside", fontsize=fontsize * 0.8, color=LINE)
+        ax.set_title("bars: highest-density regions, labelled with the probability inside",
+                     fontsize=fontsize * 0.8, color=LINE)
         _house_style(ax)
     fig.suptitle(title, fontsize=fontsize * 1.1)
     return {"axes": ax, "level_texts": texts}
@@ -856,24 +875,27 @@ def _extent(v: np.ndarray) -> float:
     return float(np.nanmax(v) - np.nanmin(v)) + float(np.nanmin(np.abs(np.diff(np.sort(v)))) or 1.0)
 
 
-def _map_margins(ds, da, label, fontsize) -> tuple:
+def _map_margins(ds, da, label, fontsize, title="") -> tuple:
     """Pixels (left, right, bottom, top) around a 2-D map: tick labels, axis labels, colour bar or legend."""
     scale = fontsize / 10.0
     _, xdim, _, _, numeric, _ = _map_axes(ds, da)
     left = 95 * scale
     bottom = (60 if numeric else 60 + 6 * max(len(str(v)) for v in ds[xdim].values)) * scale
-    top = 55 * scale
+    values = np.asarray(da.values, dtype=float)
+    lines = _wrap(title + ": constant = 0.000000").count("\n") + 1 if title else 1
+    lines += 1 if np.isnan(values).any() else 0                     # the note on cells without a value
+    top = (30 + 22 * lines) * scale
     categories = flag_categories(da)
     if categories is not None:
         right = (70 + 6.5 * max(len(t) for _, t in categories + [(0, label.split(":")[0])])) * scale
-    elif np.nanmin(da.values) == np.nanmax(da.values):
+    elif is_constant(float(np.nanmin(da.values)), float(np.nanmax(da.values))):
         right = 25 * scale                                        # constant: no colour bar
     else:
         right = 125 * scale
     return left, right, bottom, top
 
 
-def map_size(ds, da, label="") -> tuple[int, int]:
+def map_size(ds, da, label="", title="") -> tuple[int, int]:
     """A canvas in pixels shaped like the map (plus its margins), so no side of it is left blank."""
     if da.ndim != 2:
         return DEFAULT_SIZE
@@ -885,7 +907,7 @@ def map_size(ds, da, label="") -> tuple[int, int]:
     else:
         h = 580.0
         w = max(240.0, h / ratio)
-    left, right, bottom, top = _map_margins(ds, da, label, _font_size(DEFAULT_SIZE))
+    left, right, bottom, top = _map_margins(ds, da, label, _font_size(DEFAULT_SIZE), title)
     size = (int(round(w + left + right)), int(round(h + bottom + top)))
     return tuple(int(np.clip(s, MIN_PIXELS, MAX_PIXELS)) for s in size)
 
@@ -923,14 +945,14 @@ def _draw_map(fig, ds, da: xr.DataArray, label, title, fontsize):
     if da.ndim == 2:
         # placed by hand, not by the layout engine: the map keeps its aspect and fills the canvas
         W, H = fig.get_size_inches() * DPI
-        left, right, bottom, top = _map_margins(ds, da, label, fontsize)
+        left, right, bottom, top = _map_margins(ds, da, label, fontsize, title)
         ax = fig.add_axes((left / W, bottom / H, 1 - (left + right) / W, 1 - (bottom + top) / H))
     else:
         ax = fig.add_subplot()
     ax.set_facecolor(NO_DATA)
     categories = flag_categories(da)
     lo, hi = float(np.nanmin(values)), float(np.nanmax(values))
-    constant = categories is None and lo == hi
+    constant = categories is None and is_constant(lo, hi)
     artists: dict = {"axes": ax}
     if categories is not None:
         flagged = [c for c in categories if c[0] != 0]
@@ -961,7 +983,7 @@ def _draw_map(fig, ds, da: xr.DataArray, label, title, fontsize):
             box = ax.get_position()
             W, H = fig.get_size_inches() * DPI
             cax = fig.add_axes((box.x1 + 14 / W, box.y0, 16 / W, box.height))
-            artists["colour_bar"] = _colour_bar(fig, mesh, levels, label, cax=cax)
+            artists["colour_bar"] = _colour_bar(fig, mesh, levels, _short_label(label), cax=cax)
         if not numeric:
             ax.set_xticks(xs, [str(v) for v in ds[xdim].values], rotation=60)
             ax.set_yticks(ys, [str(v) for v in ds[ydim].values])
@@ -984,24 +1006,27 @@ def _draw_map(fig, ds, da: xr.DataArray, label, title, fontsize):
         ax.set_facecolor("white")
         if categories is not None:
             colours_pts = [cmap(int(c)) if np.isfinite(c) else NO_DATA for c in coded]
-            artists["mesh"] = ax.scatter(xs, values, c=colours_pts, edgecolors=LINE, linewidths=0.6, s=40,
+            artists["mesh"] = ax.scatter(xs, coded, c=colours_pts, edgecolors=LINE, linewidths=0.6, s=50,
                                          zorder=3)
-            ax.set_yticks(sorted({v for v, _ in categories}))
+            ax.set_yticks(range(len(categories)), [t for _, t in categories])
+            ax.set_ylim(-0.6, len(categories) - 0.4)
         else:
             artists["mesh"] = ax.plot(xs, values, marker="o", linestyle="none", color=LINE, markersize=5)[0]
         if not numeric:
             ax.set_xticks(pos, [str(v) for v in coord], rotation=45, ha="right")
         ax.set_xlabel(_coord_label(ds, dim))
-        ax.set_ylabel(label)
+        ax.set_ylabel(label if categories is None else "")
         _house_style(ax)
     if categories is not None:
         artists["legend"] = ax.legend(handles=handles, title=label.split(":")[0], loc="upper left",
                                       bbox_to_anchor=(1.01, 1.0), frameon=False, fontsize=fontsize * 0.85,
                                       title_fontsize=fontsize * 0.9, alignment="left")
     if constant:
+        exact = "" if lo == hi else f" (to {CONSTANT_DIGITS} significant digits: {lo:.10g} to {hi:.10g})"
+        lo = float(f"{(lo + hi) / 2:.{CONSTANT_DIGITS}g}")
         text = f"{label.split(' [')[0].split(':')[0]} is constant = {lo:g}" + \
                (f" {label.split(' [')[1].rstrip(']')}" if " [" in label else "") + \
-               f" in all {int(np.isfinite(values).sum())} cells"
+               f" in all {int(np.isfinite(values).sum())} cells" + ("\n" + exact.strip() if exact else "")
         artists["constant"] = ax.text(0.5, 0.5, text, transform=ax.transAxes, ha="center", va="center",
                                       fontsize=fontsize, color=LINE,
                                       bbox=dict(facecolor="white", edgecolor=FRAME, boxstyle="round,pad=0.4"))
@@ -1009,6 +1034,17 @@ def _draw_map(fig, ds, da: xr.DataArray, label, title, fontsize):
     fig.suptitle(_wrap(title), fontsize=fontsize * 1.1)
     artists["title"] = title
     return artists
+
+
+def is_constant(lo: float, hi: float) -> bool:
+    """Equal to ``CONSTANT_DIGITS`` significant digits: a colour bar would only show rounding noise."""
+    return hi - lo <= 10.0 ** (-CONSTANT_DIGITS) * max(abs(lo), abs(hi))
+
+
+def _short_label(label: str) -> str:
+    """``name: long name [units]`` -> ``name [units]`` (the long name is in the title)."""
+    units = " [" + label.split(" [", 1)[1] if " [" in label else ""
+    return label.split(" [", 1)[0].split(": ", 1)[0] + units
 
 
 def _wrap(title: str, width: int = 80) -> str:
@@ -1143,11 +1179,11 @@ def build_figure(ds: xr.Dataset, *, cell=None, field=None, variables=None, size=
             raise InputError(f"--field {field}: the selection leaves one cell ({label} = {value:g}); "
                              "drop a --cell choice to get a map")
         da = da.compute() if hasattr(da, "compute") else da
-        size = tuple(size) if size is not None else map_size(ds, da, label)
+        title = label.split(" [")[0] + (f" ({_where(chosen)})" if chosen else "")
+        size = tuple(size) if size is not None else map_size(ds, da, label, title)
         fontsize = _font_size(size)
         with matplotlib.rc_context({"font.size": fontsize}):
             fig = _new_figure(size, constrained=da.ndim != 2)
-            title = label.split(" [")[0] + (f" ({_where(chosen)})" if chosen else "")
             artists = _draw_map(fig, ds, da, label, title, fontsize)
         return fig, PlotResult(None, "map", size, artists["title"], None, artists, notes)
     size = tuple(size) if size is not None else DEFAULT_SIZE
