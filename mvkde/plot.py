@@ -4,22 +4,25 @@ Four kinds of picture, chosen from the file and the request:
 
 * ``joint``: one cell of a 2-variable output (or two variables of a larger
   one, the rest integrated out): filled contours of the joint density, the
-  50 / 90 / 99 % highest-density-region (HDR) contour lines and the two
-  marginal densities on the sides;
+  50 / 90 / 99 % highest-density-region (HDR) contour lines, each labelled in
+  place with its probability, and the two marginal densities on the sides;
 * ``line``: one cell of a 1-variable output (or one variable of a larger
-  one): the density with its HDR levels;
+  one): the density with its HDRs as labelled bars;
 * ``polar``: the same when a variable is circular (a ``period`` on its
   coordinate or in the provenance): the direction goes round the circle;
 * ``map``: a per-cell field (``n_samples``, ``grid_mass``, a bandwidth
   entry, an exceedance probability ...) over the two remaining cell
-  dimensions, or as points over one (stations).
+  dimensions, or as points over one (stations); bit flags as categories;
+* ``grid``: one cell of a grid product in the file (``cdf``,
+  ``exceedance``, ``marginal_A`` ...), drawn like the cell's density.
 
 matplotlib is an optional extra: it is imported inside the functions that
 draw, never at module import, and only its Agg canvas is used (no display,
-no pyplot global state).  Colours come from ``cividis``, a perceptually
-uniform colour map designed to read the same with red-green colour vision
-deficiency (Nunez, Anderton & Renslow 2018, PLoS ONE 13, e0199239); HDR
-contours are told apart by line style, not colour.
+no pyplot global state).  Colours come from ``cividis`` (reversed: pale for
+little, dark for much), a perceptually uniform colour map designed to read
+the same with red-green colour vision deficiency (Nunez, Anderton & Renslow
+2018, PLoS ONE 13, e0199239); HDR contours share one line style and are
+told apart by the label written on each.
 
 HDR levels follow Hyndman (1996, The American Statistician 50, 120-126):
 the level f_a is the density value for which the region {f >= f_a} holds
