@@ -763,19 +763,6 @@ def _draw_joint_polar(fig, cd: CellDensity, lay, levels, title, fontsize):
     return {"contours": lines, "fill": fill, "axes": ax, "colour_bar": bar}
 
 
-def _level_texts(ax, levels, x_text, fontsize, polar=False):
-    """Write each HDR level's probability beside its line, in the picture."""
-    texts = []
-    for m, lv in sorted(levels.items()):
-        if not np.isfinite(lv) or lv <= 0:
-            continue
-        t = ax.text(x_text, lv, _mass_label(m), fontsize=fontsize * 0.8, color=LINE,
-                    ha="right" if not polar else "left", va="bottom")
-        t.set_path_effects(_halo(2.5))
-        texts.append(t)
-    return texts
-
-
 def _runs(mask: np.ndarray) -> list:
     """(first, last) index of each run of True in ``mask``."""
     edges = np.diff(np.concatenate([[0], mask.astype(int), [0]]))
@@ -795,16 +782,25 @@ def _draw_line(fig, cd: CellDensity, lay, levels, title, fontsize, polar: bool):
         theta = 2 * np.pi * X / period
         ax.fill(theta, F, color=shade, alpha=0.45, linewidth=0)
         ax.plot(theta, F, color=LINE, linewidth=1.4)
-        circle = np.linspace(0, 2 * np.pi, 361)
-        for m, lv in levels.items():
-            if np.isfinite(lv):
-                ax.plot(circle, np.full_like(circle, lv), color=LINE, linewidth=0.9)
+        texts = []
+        for m, lv in sorted(levels.items()):
+            if not (np.isfinite(lv) and lv > 0):
+                continue
+            # the region itself: an arc at its level over the directions where the density reaches it
+            runs = _runs(F >= lv)
+            for i, j in runs:
+                arc = np.linspace(theta[i], theta[j], max(2, 4 * (j - i)))
+                ax.plot(arc, np.full_like(arc, lv), color=LINE, linewidth=1.6)
+            i, j = max(runs, key=lambda r: theta[r[1]] - theta[r[0]])
+            t = ax.annotate(_mass_label(m), (theta[j], lv), xytext=(4, 0), textcoords="offset points",
+                            fontsize=fontsize * 0.85, color=LINE, ha="left", va="center")
+            t.set_path_effects(_halo(2.5))
+            texts.append(t)
         ax.set_rlim(0, float(np.max(F)) * 1.05)
         ax.grid(True, color=GRID, linewidth=0.6)
         ax.spines["polar"].set_color(FRAME)
-        texts = _level_texts(ax, levels, np.pi / 8, fontsize, polar=True)
-        ax.set_title(f"angle: {lay.label(x)}; radius: density [{cd_units(lay, [x])}]; circles: "
-                     "highest-density regions by probability", fontsize=fontsize * 0.85)
+        ax.set_title(f"angle: {lay.label(x)}; radius: density [{cd_units(lay, [x])}]; arcs: "
+                     "highest-density regions, labelled with the probability inside", fontsize=fontsize * 0.85)
     else:
         ax = fig.add_subplot()
         ax.fill_between(X, F, color=shade, alpha=0.45, linewidth=0)
