@@ -32,8 +32,11 @@ def cmd_kernels(args) -> int:
     d = args.dim
     if d < 1:
         raise MvkdeError(f"--dim must be a positive integer, got {d}")
+    from .kernels import HIGHER_ORDER_NAMES, get_kernel
+
     rows = kernel_table(d)
-    head = f"{'kernel':<13}{'support':<13}{'R(K)':>9}{'mu2(K)':>9}{'R^2 mu2':>10}{'eff.':>8}"
+    w = max(len(name) for name in [r["kernel"] for r in rows] + list(HIGHER_ORDER_NAMES)) + 2
+    head = f"{'kernel':<{w}}{'support':<13}{'R(K)':>9}{'mu2(K)':>9}{'R^2 mu2':>10}{'eff.':>8}"
     if d > 1:
         head += f"{'eff. product':>14}{'eff. spherical':>16}"
     head += "  smoothness of the estimate"
@@ -42,17 +45,27 @@ def cmd_kernels(args) -> int:
     print(head)
     print("-" * len(head))
     for r in rows:
-        line = (f"{r['kernel']:<13}{r['support']:<13}{r['R']:>9.5f}{r['mu2']:>9.5f}"
+        line = (f"{r['kernel']:<{w}}{r['support']:<13}{r['R']:>9.5f}{r['mu2']:>9.5f}"
                 f"{r['R2mu2']:>10.5f}{r['efficiency']:>8.4f}")
         if d > 1:
             line += f"{r['efficiency_product']:>14.4f}{r['efficiency_spherical']:>16.4f}"
         line += f"  {r['smoothness']}"
         print(line)
+    # the opt-in fourth-order kernels: mu2 = 0, so the second-order efficiency does not apply
+    for name in HIGHER_ORDER_NAMES:
+        k = get_kernel(name)
+        support = "[-1, 1]" if k.is_compact else "(-inf, inf)"
+        line = f"{name:<{w}}{support:<13}{k.roughness:>9.5f}{k.mu2:>9.5f}{'-':>10}{'-':>8}"
+        if d > 1:
+            line += f"{'-':>14}{'-':>16}"
+        line += f"  {k.smoothness}; fourth order (opt-in): can go negative"
+        print(line)
     print()
     print("Epanechnikov has the smallest R^2 mu2 of all non-negative kernels, so it needs the fewest")
     print("samples for a given accuracy; smooth kernels cost a few per cent; a differentiable")
     print("estimate needs a differentiable kernel (biweight, triweight, gaussian). Fourth-order")
-    print("kernels (gaussian4, epanechnikov4) reduce bias but can give negative densities.")
+    print("kernels (gaussian4, epanechnikov4; mu2 = 0, so no efficiency column) reduce bias but can")
+    print("give negative densities.")
     if d > 1:
         print(f"In d = {d} the spherical form is at least as efficient as the product form; the")
         print("Gaussian kernel is the same in both forms.")
@@ -94,7 +107,9 @@ def cmd_plot(args) -> int:
     size = parse_size(args.size, args.width, args.height)
     result = plot_output(args.output, cell=selection, field=args.field, variables=args.variables,
                          out=args.out, size=size)
-    print(f"mvkde plot: wrote {result.path} ({result.kind}, {size[0]}x{size[1]} pixels)")
+    for note in result.notes:
+        print(f"mvkde plot: {note}")
+    print(f"mvkde plot: wrote {result.path} ({result.kind}, {result.size[0]}x{result.size[1]} pixels)")
     return 0
 
 
@@ -165,15 +180,19 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("output", metavar="OUTPUT.nc", help="a density file written by mvkde run")
     p.add_argument("--cell", action="append", metavar="DIM=VALUE[,DIM=VALUE]",
                    help="choose the cell: any cell dimension (lat, lon, season, station ...); nearest value "
-                        "for numeric coordinates, exact for labels (repeatable)")
+                        "for numeric coordinates and dates (the value used is printed), exact for labels "
+                        "(repeatable)")
     p.add_argument("--season", metavar="LABEL", help="same as --cell season=LABEL")
     p.add_argument("--field", metavar="NAME",
                    help="map a per-cell value: n_samples, grid_mass, flags, bandwidth[A,B], "
-                        "exceedance[A>VALUE,B>VALUE] ...")
+                        "exceedance[A>VALUE,B>VALUE] (always computed from the density) ...; or draw one "
+                        "cell's grid product (cdf, exceedance, marginal_A) with every cell dim chosen")
     p.add_argument("--variables", metavar="A[,B]",
                    help="the one or two variables to draw (the others are integrated out; default: the first two)")
     p.add_argument("-o", "--out", metavar="FILE.png", help="picture to write (default: beside OUTPUT.nc)")
-    p.add_argument("--size", metavar="WxH", help="picture size in pixels (default 900x700)")
+    p.add_argument("--size", metavar="WxH",
+                   help="picture size in pixels (1200x900) or inches (12x9in, 100 pixels per inch); default "
+                        "900x700, a map's canvas shaped like the map")
     p.add_argument("--width", metavar="PIXELS", help="picture width in pixels")
     p.add_argument("--height", metavar="PIXELS", help="picture height in pixels")
     p.set_defaults(func=cmd_plot)

@@ -549,7 +549,13 @@ class DensityEstimate:
         return float(1.0 / np.sum(self.weights ** 2))
 
     def __repr__(self) -> str:
-        return (f"DensityEstimate(names={self.names}, n={self.n}, kernel={self.kernel.name!r}, "
+        n = f"n={self.n}"
+        if self._point is not None:
+            # n counts only the continuous part: say so, with the rows at the point mass beside it
+            pm = self._point
+            n += (f" above the point mass {pm.name} <= {pm.threshold:g} ({pm.rows.size:,} rows, "
+                  f"{pm.count:,} at the point mass)")
+        return (f"DensityEstimate(names={self.names}, {n}, kernel={self.kernel.name!r}, "
                 f"form={self.kernel.form!r}, bandwidth={self.bandwidth.method!r})")
 
     # -- evaluation --------------------------------------------------------

@@ -456,6 +456,8 @@ def format_summary(s: dict) -> str:
     if s.get("caution"):
         row("caution", s["caution"])
     lines.append("  data variables")
+    # the name column is as wide as the longest name, so long names never run into their dims
+    width = max([W + 8] + [len(name) + 2 for name in s["data_variables"]])
     for name, v in s["data_variables"].items():
-        lines.append(f"    {name:<{W + 8}}({', '.join(v['dims'])})" + (f" [{v['units']}]" if v["units"] else ""))
+        lines.append(f"    {name:<{width}}({', '.join(v['dims'])})" + (f" [{v['units']}]" if v["units"] else ""))
     return "\n".join(lines)

@@ -33,3 +33,13 @@ def test_help_mentions_commands(capsys):
     out = capsys.readouterr().out
     for cmd in ("run", "check", "kernels", "plot", "inspect", "demo"):
         assert cmd in out
+
+
+def test_kernels_table_lists_the_fourth_order_kernels_as_able_to_go_negative(capsys):
+    assert main(["kernels"]) == 0
+    rows = {line.split()[0]: line for line in capsys.readouterr().out.splitlines() if line.strip()}
+    for name in ("gaussian4", "epanechnikov4"):
+        assert name in rows and "can go negative" in rows[name], rows.get(name)
+    # R(K) of the fourth-order Gaussian (3 - u^2) phi(u) / 2 is 27 / (32 sqrt(pi)) [closed form]
+    assert "0.47603" in rows["gaussian4"]
+    assert "1.25000" in rows["epanechnikov4"]   # R(K) of (15/32)(3 - 10u^2 + 7u^4) [closed form]

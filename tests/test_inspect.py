@@ -113,3 +113,33 @@ def test_bad_files_exit_2_with_one_line(tmp_path, capsys):
     junk.write_text("not netCDF")
     assert main(["inspect", str(junk)]) == 2
     assert "cannot open" in capsys.readouterr().err
+
+
+def test_estimate_summary_says_n_counts_the_part_above_the_point_mass():
+    # simulated daily rain: 850 of 1461 rows at or below 1 mm (dry), 611 above
+    import mvkde
+
+    rng = np.random.default_rng(3)
+    pr = np.concatenate([rng.uniform(0.0, 1.0, 850), 1.0 + rng.exponential(5.0, 611)])
+    tas = rng.normal(10.0, 5.0, pr.size)
+    est = mvkde.fit(np.column_stack([pr, tas]), bounds=[(0, None), None], point_masses=[1.0, None],
+                    bandwidth="normal")
+    text = repr(est)
+    assert "n=611 above the point mass x0 <= 1 (1,461 rows, 850 at the point mass)" in text, text
+    plain = mvkde.fit(tas[:, None], bandwidth="normal")
+    assert "n=1461," in repr(plain)
+
+
+def test_text_report_columns_stay_apart_for_long_variable_names(outputs, capsys, tmp_path):
+    ds = xr.open_dataset(outputs["grid"]).load()
+    ds["point_mass_probability_of_a_long_name"] = ds["n_samples"] * 0.0
+    path = tmp_path / "long.nc"
+    ds.to_netcdf(path)
+    assert main(["inspect", str(path)]) == 0
+    out = capsys.readouterr().out
+    rows = out.split("  data variables\n", 1)[1].splitlines()
+    starts = {row.index("(") for row in rows}
+    assert len(starts) == 1, rows                       # the dims column starts at one place
+    for row in rows:
+        name = row.split()[0]
+        assert row.startswith(f"    {name}  "), row     # and at least two spaces after every name

@@ -215,23 +215,28 @@ def test_parse_size_and_selection():
 @pytest.mark.parametrize("argv, needles", [
     (["--cell", "lat=60"], ["choose one cell", "lon=VALUE", "season=VALUE", "DJF"]),
     (["--cell", "lat=60,lon=20,season=JAS"], ["season", "'JJA'"]),
-    (["--cell", "lat=75,lon=20,season=JJA"], ["outside the values of lat"]),
-    (["--cell", "lat=60,lon=20,season=JJA,station=x"], ["station is not a cell dimension"]),
+    (["--cell", "lat=60,lon=20,season=JJA,station=x"], ["the file has no dimension station",
+                                                         "cell dimensions are lat, lon, season"]),
+    (["--cell", "stn=3"], ["the file has no dimension stn", "lat, lon, season"]),
+    (["--cell", "lat=60,lon=20,season=JJA,pr=3"], ["pr is not a cell dimension"]),
     (["--field", "n_sample"], ["not in the file", "n_samples"]),
     (["--field", "bandwidth[pr,wind]"], ["bandwidth[A,B]"]),
     (["--field", "exceedance[tasmax>99]", "--cell", "season=JJA"], ["outside the grid of tasmax"]),
     (["--field", "n_samples"], ["varies over lat, lon, season"]),
     (["--field", "density", "--cell", "season=JJA"], ["grid per cell"]),
-    (["--cell", "lat=60,lon=20,season=JJA", "--size", "10x10"], ["--width 10"]),
+    (["--cell", "lat=60,lon=20,season=JJA", "--size", "10x10"], ["--size 10x10", "200..8000", "10x10in"]),
+    (["--cell", "lat=60,lon=20,season=JJA", "--size", "big"], ["--size 'big'", "12x9in"]),
+    (["--field", "exceedance", "--cell", "season=JJA"], ["grid per cell", "choose one cell", "lat=VALUE"]),
     (["--cell", "lat=60,lon=20,season=JJA", "-o", "picture.jpg"], [".png"]),
 ])
 def test_bad_arguments_exit_2_with_one_line(outputs, capsys, argv, needles):
-    code = main(["plot", str(outputs["grid"]), *argv])
+    code = main(["plot", str(outputs["products"]), *argv])
     err = capsys.readouterr().err
     assert code == 2, err
     assert err.count("\n") == 1 and "Traceback" not in err, err
     for n in needles:
         assert n in err, err
+    assert "--width" not in err or "--width" in argv, err      # never name an option the user did not give
 
 
 def test_missing_file_and_non_density_file(tmp_path, capsys):
@@ -271,3 +276,143 @@ def test_missing_matplotlib_gives_the_install_hint(tmp_path):
                    "runpy.run_module('mvkde', run_name='__main__')")
     assert r.returncode == 2
     assert r.stderr.count("\n") == 1 and "pip install 'mvkde[plot]'" in r.stderr, r.stderr
+
+
+# ---------------------------------------------------------------------------
+# fields users asked for: the bracket syntax and grid products of one cell
+# ---------------------------------------------------------------------------
+
+def test_bracket_exceedance_is_computed_even_beside_an_exceedance_product(outputs, capsys):
+    ds = xr.open_dataset(outputs["products"])
+    assert "exceedance" in ds.data_vars
+    a, b = float(ds.pr.values[5]), float(ds.tasmax.values[15])
+    da, label = field_values(ds, layout(ds), f"exceedance[pr>{a!r},tasmax>{b!r}]")
+    # at a grid node the computed field equals the file's own exceedance product there
+    np.testing.assert_allclose(da.values, ds["exceedance"].sel(pr=a, tasmax=b).values, atol=1e-12)
+    assert np.nanmax(da.values) > 0.01
+    out = outputs["tmp"] / "bracket.png"
+    code = main(["plot", str(outputs["products"]), "--field", "exceedance[pr>10,tasmax>25]",
+                 "--cell", "season=JJA", "-o", str(out)])
+    assert code == 0, capsys.readouterr().err
+    assert_picture(out, *mpimg.imread(out).shape[1::-1])
+
+
+@pytest.mark.parametrize("name, dims", [("exceedance", 2), ("cdf", 2), ("marginal_pr", 1), ("density", 2)])
+def test_grid_product_of_one_cell_is_drawn(outputs, name, dims):
+    ds = xr.open_dataset(outputs["products"])
+    cell = {"lat": "60", "lon": "21", "season": "JJA"}
+    fig, res = build_figure(ds, cell=cell, field=name, size=(640, 480))
+    assert res.kind == "grid" and "lat 60" in res.title
+    values = ds[name].sel(lat=60.0, lon=21.0, season="JJA").values
+    if dims == 2:
+        fill = res.artists["fill"]
+        # the filled levels are round numbers that cover the cell's values
+        assert fill.levels[0] <= np.nanmin(values) and fill.levels[-1] >= np.nanmax(values)
+        assert all(float(f"{lv:.3g}") == pytest.approx(lv, abs=1e-15) for lv in fill.levels)
+    res = plot_output(outputs["products"], cell=cell, field=name, size=(640, 480),
+                      out=outputs["tmp"] / f"grid_{name}.png")
+    assert_picture(res.path, 640, 480)
+
+
+def test_numeric_cell_takes_the_nearest_value_and_says_which(outputs, capsys):
+    out = outputs["tmp"] / "nearest.png"
+    code = main(["plot", str(outputs["grid"]), "--cell", "lat=75,lon=20.2", "--season", "JJA", "-o", str(out)])
+    text = capsys.readouterr()
+    assert code == 0, text.err
+    assert "used the nearest lat, 61" in text.out and "used the nearest lon, 20" in text.out
+    fig, res = build_figure(xr.open_dataset(outputs["grid"]), cell={"lat": "75", "lon": "20", "season": "JJA"})
+    assert "lat 61" in res.title and res.notes == ["--cell lat=75: used the nearest lat, 61, outside the "
+                                                   "file's lat 60..61"]
+
+
+def test_size_in_pixels_or_inches():
+    assert parse_size() is None                             # the picture chooses its own size
+    assert parse_size("8x6in") == (800, 600)                # 100 pixels per inch
+    assert parse_size("1200X900px") == (1200, 900)
+    with pytest.raises(MvkdeError, match=r"--size 10x10 .*for inches write --size 10x10in") as err:
+        parse_size("10x10")
+    assert "--width" not in str(err.value)
+    with pytest.raises(MvkdeError, match="--size 100x1in"):
+        parse_size("100x1in")
+
+
+# ---------------------------------------------------------------------------
+# pictures fit for a report
+# ---------------------------------------------------------------------------
+
+def is_round(x):
+    return float(f"{x:.2g}") == pytest.approx(x, rel=1e-9, abs=1e-15)
+
+
+def test_joint_picture_has_round_colour_bar_ticks_and_units_on_the_marginals(outputs):
+    ds = xr.open_dataset(outputs["grid"])
+    fig, res = build_figure(ds, cell={"lat": "60", "lon": "22", "season": "SON"}, size=(800, 600))
+    ticks = res.artists["colour_bar"].get_ticks()
+    assert len(ticks) >= 3 and all(is_round(t) for t in ticks), ticks
+    assert "[1/(mm d-1)]" in res.artists["top"].get_ylabel()
+    assert "[degC-1]" in res.artists["side"].get_xlabel()
+
+
+def test_axis_ranges_hold_the_density_not_the_wide_grid():
+    cov = np.array([[1.0, 0.6], [0.6, 2.0]])
+    ds = tiny_outputs.synthetic_normal(cov)           # the grid reaches far into empty tails
+    fig, res = build_figure(ds, cell={}, size=(500, 500))
+    ax = res.artists["axes"]
+    (x0, x1), (y0, y1) = ax.get_xlim(), ax.get_ylim()
+    hs, tp = ds["hs"].values, ds["tp"].values
+    assert x1 - x0 < 0.75 * (hs[-1] - hs[0]) and y1 - y0 < 0.75 * (tp[-1] - tp[0])
+    # the box drawn holds at least 99.9 % of the normal's mass: P(|X| < x1) P(|Y| < y1) as a lower
+    # bound of the box probability (Bonferroni; scipy.stats.norm)
+    from scipy.stats import norm
+
+    outside = (norm.cdf(x0, scale=1.0) + norm.sf(x1, scale=1.0)
+               + norm.cdf(y0, scale=np.sqrt(2.0)) + norm.sf(y1, scale=np.sqrt(2.0)))
+    assert outside <= 1e-3
+
+
+def test_map_fills_its_canvas(outputs):
+    ds = xr.open_dataset(outputs["grid"])
+    fig, res = build_figure(ds, field="grid_mass", cell={"season": "JJA"})
+    fig.canvas.draw()
+    box = res.artists["axes"].get_window_extent()
+    width, height = fig.bbox.width, fig.bbox.height
+    # the map takes most of the canvas both ways: no blank third beside it
+    assert box.width / width > 0.6 and box.height / height > 0.6, (box, width, height)
+
+
+def test_flags_are_a_categorical_legend_not_a_colour_bar(outputs):
+    ds = xr.open_dataset(outputs["grid"])
+    fig, res = build_figure(ds, field="flags", cell={"season": "JJA"})
+    assert "colour_bar" not in res.artists and len(fig.axes) == 1
+    names = [t.get_text() for t in res.artists["legend"].get_texts()]
+    meanings = ds["flags"].attrs["flag_meanings"].split()
+    masks = [int(m) for m in ds["flags"].attrs["flag_masks"]]
+    present = {int(v) for v in ds["flags"].sel(season="JJA").values.ravel()}
+    expected = {" + ".join(m for m, b in zip(meanings, masks) if v & b) or "no flag" for v in present}
+    assert set(names) == expected and "too_few_samples" in " ".join(names)
+
+
+def test_constant_field_is_stated_not_given_a_degenerate_colour_bar(outputs, tmp_path):
+    ds = xr.open_dataset(outputs["grid"]).load()
+    ds["n_samples"][:] = 365
+    path = tmp_path / "constant.nc"
+    ds.to_netcdf(path)
+    res = plot_output(path, field="n_samples", cell={"season": "DJF"}, out=tmp_path / "constant.png")
+    assert "constant = 365" in res.title
+    assert "colour_bar" not in res.artists and "365" in res.artists["constant"].get_text()
+    img = mpimg.imread(res.path)
+    assert img.shape[0] > 200 and img.shape[1] > 200
+
+
+def test_hdr_regions_are_labelled_in_the_picture_on_one_line_style(outputs):
+    ds = xr.open_dataset(outputs["grid"])
+    fig, res = build_figure(ds, cell={"lat": "60", "lon": "22", "season": "SON"}, size=(800, 600))
+    ax, cs = res.artists["axes"], res.artists["contours"]
+    styles = {str(s) for s in cs.get_linestyles()}
+    assert len(styles) == 1, styles                                  # one line style for every level
+    labels = sorted(t.get_text() for t in cs.labelTexts)
+    assert set(labels) == {"50 %", "90 %", "99 %"}, labels
+    assert ax.get_legend() is None and all(a.get_legend() is None for a in fig.axes)
+    # one variable: each level line carries its label too
+    fig, res = build_figure(xr.open_dataset(outputs["single"]), cell={"lat": "61", "lon": "20"})
+    assert [t.get_text() for t in res.artists["level_texts"]] == ["50 %", "90 %", "99 %"]

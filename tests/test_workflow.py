@@ -1,5 +1,6 @@
 """Workflow files: schema and defaults in step, the shipped examples, error messages."""
 
+import re
 from pathlib import Path
 
 import pytest
@@ -136,3 +137,16 @@ def test_key_reference_doc_is_current():
     # docs/workflow_keys.md is generated from the schema: regenerate it when the schema changes
     doc = (REPO / "docs" / "workflow_keys.md").read_text()
     assert key_reference() in doc
+
+
+def test_key_reference_names_every_selector_and_opt_in_kernel():
+    # the table users read must name every selector the workflow accepts, isj included
+    from mvkde.bandwidth import SELECTORS
+    from mvkde.kernels import HIGHER_ORDER_NAMES
+
+    doc = (REPO / "docs" / "workflow_keys.md").read_text()
+    rows = {line.split("|")[1].strip(): line for line in doc.splitlines() if line.startswith("| `")}
+    for name in SELECTORS:
+        assert re.search(rf"\b{name}\b", rows["`estimator.bandwidth`"]), name
+    for name in HIGHER_ORDER_NAMES:
+        assert name in rows["`estimator.kernel`"], name

@@ -50,8 +50,20 @@ path = "{out}"
 LIMITS = {"pr": [0.0, 60.0], "tasmax": [-25.0, 40.0]}
 
 
-def run_grid(folder: Path, variables=("pr", "tasmax"), split=True, size=(40, 36), name="grid") -> Path:
-    """A 2 x 3 cell grid, one year; cell (lat 61, lon 22) keeps 20 valid days (too few: flagged)."""
+PRODUCTS = """
+[products]
+marginals = true
+cdf = true
+exceedance = true
+"""
+
+
+def run_grid(folder: Path, variables=("pr", "tasmax"), split=True, size=(40, 36), name="grid",
+             products=False) -> Path:
+    """A 2 x 3 cell grid, one year; cell (lat 61, lon 22) keeps 20 valid days (too few: flagged).
+
+    ``products=True`` also writes the grid products (marginals, cdf, exceedance) per cell.
+    """
     folder.mkdir(parents=True, exist_ok=True)
     data = folder / f"{name}_input.nc"
     if not data.exists():
@@ -64,7 +76,7 @@ def run_grid(folder: Path, variables=("pr", "tasmax"), split=True, size=(40, 36)
     wf.write_text(GRID_WORKFLOW.format(data=data, variables=json.dumps(list(variables)),
                                        split='"season"' if split else '""', size=size, out=out,
                                        limits="\n".join(f"limits.{v} = {LIMITS[v]}" for v in variables))
-                  .replace('split_by = ""\n', ""))
+                  .replace('split_by = ""\n', "") + (PRODUCTS if products else ""))
     run_and_write(str(wf), overwrite=True, out=io.StringIO(), progress_stream=io.StringIO())
     return out
 
@@ -121,6 +133,7 @@ def all_outputs(tmp_path_factory) -> dict:
             "grid": run_grid(tmp),                                        # lat, lon, season; pr, tasmax
             "single": run_grid(tmp, variables=("tasmax",), split=False, size=(64,), name="single"),
             "stations": run_stations(tmp),                                # station; tasmax, wind_speed
+            "products": run_grid(tmp, name="products", products=True),    # grid + marginals, cdf, exceedance
             "tmp": tmp,
         })
     return dict(_OUTPUTS)

@@ -348,10 +348,12 @@ SCHEMA: dict[str, dict[str, Key]] = {
                       "input format; auto = from the file suffix"),
     },
     "estimator": {
-        "kernel": Key("gaussian", _choice("kernel"), "kernel name (mvkde kernels lists them)", "kernel"),
+        "kernel": Key("gaussian", _choice("kernel"), "kernel name (mvkde kernels lists them; opt-in fourth-order "
+                                                 "kernels that can go negative: gaussian4, epanechnikov4)", "kernel"),
         "form": Key("product", _choice("form"), "product or spherical kernel", "form"),
-        "bandwidth": Key("plugin", _bandwidth, "bandwidth selector, or a given d x d matrix H (a list of "
-                                               "rows, the covariance of the scaled kernel)", "bandwidth"),
+        "bandwidth": Key("plugin", _bandwidth, "bandwidth selector (for one variable also sj or isj), or a given "
+                                               "d x d matrix H (a list of rows, the covariance of the "
+                                               "scaled kernel)", "bandwidth"),
         "parametrization": Key("full", _choice("parametrization"), "full, diagonal or scalar H",
                                "parametrization"),
         "boundary": Key("reflect", _choice("boundary"), "boundary correction for bounded variables "
