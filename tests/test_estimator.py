@@ -151,6 +151,13 @@ def test_fourth_order_reports_negative_mass_and_clips(rng):
     est = mvkde.fit(x, kernel="gaussian4", bandwidth=np.array([[0.3]]))
     g = est.grid(400)
     assert g.attrs["negative_mass"] > 0
+    # closed form: the fourth-order Gaussian kernel (3 - u^2) phi(u) / 2 (Wand & Jones 1995, Sec. 2.8) is
+    # negative for |u| > a = sqrt(3), with mass 2 int_a^inf (u^2 - 3) phi(u) / 2 du = a phi(a) - 2 (1 - Phi(a))
+    # (from int_a^inf u^2 phi = a phi(a) + 1 - Phi(a)); two far-apart points each carry it.
+    a = np.sqrt(3.0)
+    closed = a * stats.norm.pdf(a) - 2 * stats.norm.sf(a)
+    far = mvkde.fit(np.array([[0.0], [100.0]]), kernel="gaussian4", bandwidth=np.array([[0.25]]))
+    assert far.negative_mass(24001, limits=[(-10.0, 110.0)]) == pytest.approx(closed, rel=1e-5)
     assert grid_integral(g) == pytest.approx(1.0, abs=5e-3)
     gc = est.grid(400, clip_negative=True)
     assert float(gc.min()) >= 0.0
