@@ -288,6 +288,7 @@ def test_ise_uniform_box():
 # -- point mass ---------------------------------------------------------------------
 
 def _zero_inflated(rng, n, p_dry):
+    """Simulated daily rain and temperature (not observations): a zero-inflated gamma and a normal."""
     dry = rng.random(n) < p_dry
     pr = np.where(dry, rng.random(n) * 0.9, 1.0 + rng.gamma(0.8, 8.0, n))  # dry days: trace amounts < 1 mm
     tas = np.where(dry, rng.normal(24, 3, n), rng.normal(18, 3, n) - 0.1 * pr)

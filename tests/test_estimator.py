@@ -79,6 +79,7 @@ def test_every_kernel_equals_reference_sum(rng, kernel, form):
 
 @pytest.mark.parametrize("kernel", KERNEL_NAMES)
 def test_grid_integrates_to_one_and_labels(rng, kernel):
+    # simulated, not observations
     x = pd.DataFrame({"pr": rng.gamma(2, 3, 500) + 5, "tasmax": rng.normal(20, 3, 500)})
     x.attrs["units"] = {"pr": "mm d-1", "tasmax": "degC"}
     est = mvkde.fit(x, kernel=kernel)
@@ -106,6 +107,7 @@ def test_grid_limits_and_names(rng):
 
 
 def test_dataset_input_names_and_units(rng):
+    # simulated wave height and period, not observations
     ds = xr.Dataset({"hs": ("time", rng.gamma(3, 1, 300), {"units": "m"}),
                      "tp": ("time", rng.normal(8, 1, 300), {"units": "s"})})
     est = mvkde.fit(ds)
@@ -169,7 +171,7 @@ def test_fourth_order_reports_negative_mass_and_clips(rng):
 # -- bad input: clear messages -------------------------------------------------
 
 def test_nan_and_inf_named(rng):
-    x = pd.DataFrame({"pr": rng.random(50), "tasmax": rng.random(50)})
+    x = pd.DataFrame({"pr": rng.random(50), "tasmax": rng.random(50)})  # simulated, not observations
     x.loc[3, "pr"] = np.nan
     x.loc[4, "pr"] = np.nan
     x.loc[5, "tasmax"] = np.inf

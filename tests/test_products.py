@@ -214,7 +214,7 @@ def test_probability_grid_and_bad_arguments(rng):
 
 
 def test_cdf_and_exceedance_include_the_point_mass(rng):
-    # Zero-inflated precipitation (dry probability 0.4) with temperature independent of it:
+    # Simulated (not observations) zero-inflated precipitation (dry probability 0.4) with temperature independent of it:
     # P(pr <= 0.5, T <= big) is the dry probability, P(pr > -1, T > t) is P(T > t) (closed form
     # of the simulation law: T ~ N(15, 4^2)).
     n = 3000

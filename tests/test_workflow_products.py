@@ -57,6 +57,7 @@ path = "{out}"
 @pytest.fixture(scope="module")
 def run(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("products")
+    # the simulated Aldmere basin (sample_grids/generate.py): simulated, not observations
     ds = generate.make_grid(2, seed=5, lat=np.array([60.0]), lon=np.array([20.0, 21.0]))
     ds.to_netcdf(tmp / "grid.nc")
     (tmp / "points.csv").write_text("pr,tasmax\n3.0,5.0\n10.0,15.0\n")
