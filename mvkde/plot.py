@@ -27,7 +27,7 @@ told apart by the label written on each.
 HDR levels follow Hyndman (1996, The American Statistician 50, 120-126):
 the level f_a is the density value for which the region {f >= f_a} holds
 probability a; here it is computed from the gridded density
-(:func:`mvkde.products.hdr_levels_from_grid`), i.e. as a fraction of the
+(:func:`mvkde.products.grid.hdr_levels`), i.e. as a fraction of the
 mass on the grid.
 """
 

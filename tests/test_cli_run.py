@@ -19,6 +19,7 @@ import generate  # noqa: E402
 def small_grid(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("cli")
     path = tmp / "small.nc"
+    # the simulated Aldmere basin (sample_grids/generate.py): simulated, not observations
     generate.make_grid(1, seed=3, lat=np.array([60.0, 61.0]), lon=np.array([20.0, 21.0])).to_netcdf(path)
     return path
 

@@ -22,6 +22,7 @@ def circle_integral(values, x, axis=0):
 
 
 def wind_sample(rng, n):
+    """Simulated wind (not observations): von Mises directions about 225 deg, gamma speeds."""
     direction = np.mod(np.rad2deg(rng.vonmises(math.radians(225.0), 2.0, n)), 360.0)
     speed = rng.gamma(2.0, 2.5, n) * (1.0 + 0.4 * np.cos(np.deg2rad(direction - 225.0)))
     return pd.DataFrame({"speed": speed, "direction": direction})
@@ -380,8 +381,13 @@ def test_grid_attributes_name_circular_variables_and_concentrations(rng):
     g = mvkde.fit(df, periods=[None, 360.0], bandwidth="normal").grid(16)
     assert g.attrs["circular_variables"] == "direction"
     assert g.attrs["period_direction"] == 360.0
-    assert g.attrs["concentration_direction"] > 0
-    # the selector "normal" on a circle: the Garcia-Portugues (2013) AMISE rule
+    # Garcia-Portugues (2013, EJS 7) circle rule: h = [4 pi^{1/2} I0(k)^2 / (k n (2 I1(2k) + 3k I2(2k)))]^{1/5},
+    # nu = 1/h^2, with k the von Mises maximum-likelihood concentration, here from scipy.stats.vonmises.fit
+    # (reference library)
+    k = stats.vonmises.fit(np.deg2rad(df["direction"].to_numpy()), fscale=1)[0]
+    h = (4 * math.sqrt(math.pi) * special.iv(0, k) ** 2
+         / (k * 100 * (2 * special.iv(1, 2 * k) + 3 * k * special.iv(2, 2 * k)))) ** 0.2
+    assert g.attrs["concentration_direction"] == pytest.approx(1 / h ** 2, rel=1e-6)
     assert "Garcia-Portugues (2013)" in g.attrs["concentration_method_direction"]
     assert "von Mises" in g.attrs["engine_reason"]
     assert g["direction"].attrs["period"] == 360.0 and "period" not in g["speed"].attrs

@@ -79,6 +79,7 @@ def test_every_kernel_equals_reference_sum(rng, kernel, form):
 
 @pytest.mark.parametrize("kernel", KERNEL_NAMES)
 def test_grid_integrates_to_one_and_labels(rng, kernel):
+    # simulated, not observations
     x = pd.DataFrame({"pr": rng.gamma(2, 3, 500) + 5, "tasmax": rng.normal(20, 3, 500)})
     x.attrs["units"] = {"pr": "mm d-1", "tasmax": "degC"}
     est = mvkde.fit(x, kernel=kernel)
@@ -106,6 +107,7 @@ def test_grid_limits_and_names(rng):
 
 
 def test_dataset_input_names_and_units(rng):
+    # simulated wave height and period, not observations
     ds = xr.Dataset({"hs": ("time", rng.gamma(3, 1, 300), {"units": "m"}),
                      "tp": ("time", rng.normal(8, 1, 300), {"units": "s"})})
     est = mvkde.fit(ds)
@@ -151,6 +153,13 @@ def test_fourth_order_reports_negative_mass_and_clips(rng):
     est = mvkde.fit(x, kernel="gaussian4", bandwidth=np.array([[0.3]]))
     g = est.grid(400)
     assert g.attrs["negative_mass"] > 0
+    # closed form: the fourth-order Gaussian kernel (3 - u^2) phi(u) / 2 (Wand & Jones 1995, Sec. 2.8) is
+    # negative for |u| > a = sqrt(3), with mass 2 int_a^inf (u^2 - 3) phi(u) / 2 du = a phi(a) - 2 (1 - Phi(a))
+    # (from int_a^inf u^2 phi = a phi(a) + 1 - Phi(a)); two far-apart points each carry it.
+    a = np.sqrt(3.0)
+    closed = a * stats.norm.pdf(a) - 2 * stats.norm.sf(a)
+    far = mvkde.fit(np.array([[0.0], [100.0]]), kernel="gaussian4", bandwidth=np.array([[0.25]]))
+    assert far.negative_mass(24001, limits=[(-10.0, 110.0)]) == pytest.approx(closed, rel=1e-5)
     assert grid_integral(g) == pytest.approx(1.0, abs=5e-3)
     gc = est.grid(400, clip_negative=True)
     assert float(gc.min()) >= 0.0
@@ -162,7 +171,7 @@ def test_fourth_order_reports_negative_mass_and_clips(rng):
 # -- bad input: clear messages -------------------------------------------------
 
 def test_nan_and_inf_named(rng):
-    x = pd.DataFrame({"pr": rng.random(50), "tasmax": rng.random(50)})
+    x = pd.DataFrame({"pr": rng.random(50), "tasmax": rng.random(50)})  # simulated, not observations
     x.loc[3, "pr"] = np.nan
     x.loc[4, "pr"] = np.nan
     x.loc[5, "tasmax"] = np.inf

@@ -144,5 +144,7 @@ def test_overrides(overrides):
 
 def test_a_valid_document_still_reads():
     # the harness is not vacuous: a good document gives a Workflow, a bad one an error
-    assert read(BASE) is not None
+    wf = read(BASE)
+    assert isinstance(wf, Workflow) and wf["input"]["variables"] == ["pr", "tasmax"]
+    assert wf["output"]["path"] == "out.nc" and wf.grid_size() == [64, 64]   # schema default size
     assert read(BASE + "[grid]\nsize = 1\n") is None

@@ -22,7 +22,8 @@ import generate  # noqa: E402  (the sample-data generator and its known law)
 
 
 def write_grid(path, years=1, lat=(60.0, 61.0), lon=(20.0, 21.0, 22.0), seed=7):
-    """A small Aldmere-like grid with tasmin added (correlated with tasmax) and some missing values."""
+    """A small grid of the simulated Aldmere basin (simulated, not observations) with tasmin added
+    (correlated with tasmax) and some missing values."""
     ds = generate.make_grid(years, seed=seed, lat=np.array(lat), lon=np.array(lon))
     rng = np.random.default_rng(seed)
     tasmin = ds.tasmax - 8.0 + 5.0 * rng.standard_normal(ds.tasmax.shape)

@@ -49,6 +49,7 @@ def test_wind_example_runs_end_to_end(tmp_path, capsys):
 
 
 def lightning_table(path):
+    """Simulated lightning strikes (not observations): von Mises-Fisher clouds about two centres."""
     rng = np.random.default_rng(5)
     rows = []
     for region, (lat, lon, k) in {"pacific": (-15.0, 179.0, 60.0), "arctic": (86.0, 0.0, 150.0)}.items():

@@ -1,13 +1,13 @@
-"""Point-mass outputs of the runner, checked against the fit API agreed in the project.
+"""Point-mass outputs of the runner, through the library's own point-mass estimate.
 
-The agreed API (fit(point_masses=...), est.point_mass_probability, est.grid = the
-continuous part, est.point_mass_grid = the density on the point mass) may not be in
-this installation of the library yet.  When it is not, a small stand-in built from
-plain ``mvkde.fit`` calls provides exactly that API so the runner's plumbing (output
-variables, dims, grid mass bookkeeping) is still tested; when it is, the real one is.
+``mvkde.fit(point_masses=...)`` gives ``point_mass_probability``, ``grid`` (the
+continuous part, integrating to 1 - p) and ``point_mass_grid`` (the density of the
+other variables on the point mass, integrating to p).  The runner's outputs are
+checked against the share of dry days in the input and against the same library
+call made directly on one cell.  The input is the simulated Aldmere basin of
+``sample_grids/generate.py`` (simulated, not observations).
 """
 
-import inspect
 import sys
 from pathlib import Path
 
@@ -24,48 +24,8 @@ REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO / "sample_grids"))
 import generate  # noqa: E402
 
-REAL_FIT = mvkde.fit
-HAS_POINT_MASSES = "point_masses" in inspect.signature(REAL_FIT).parameters
 
-
-class _StandIn:
-    """Continuous part fitted above the threshold, point-mass part on the other variables."""
-
-    def __init__(self, data, point_masses, kw):
-        data = np.asarray(data, dtype=float)
-        j = next(k for k, t in enumerate(point_masses) if t is not None)
-        at = data[:, j] <= point_masses[j]
-        self.j, self.p = j, float(at.mean())
-        names = kw.pop("names")
-        kw.pop("units", None)
-        self.cont = REAL_FIT(data[~at], names=names, **kw)
-        others = [k for k in range(data.shape[1]) if k != j]
-        kw2 = {k: v for k, v in kw.items() if k not in ("bounds", "boundary")}
-        self.mass = REAL_FIT(data[at][:, others], names=[names[k] for k in others], **kw2)
-        self.H, self.bandwidth = self.cont.H, self.cont.bandwidth
-        self.point_mass_probability = self.p
-
-    def grid(self, size, limits=None):
-        return self.cont.grid(size, limits) * (1 - self.p)
-
-    def point_mass_grid(self, size, limits=None):
-        return self.mass.grid(size, limits) * self.p
-
-
-def _fit_with_point_masses(data, *, point_masses=None, **kw):
-    if point_masses is None:
-        return REAL_FIT(data, **kw)
-    return _StandIn(data, point_masses, kw)
-
-
-@pytest.fixture
-def point_mass_fit(monkeypatch):
-    if not HAS_POINT_MASSES:
-        monkeypatch.setattr(mvkde, "fit", _fit_with_point_masses)
-    return mvkde.fit
-
-
-def test_point_mass_outputs(tmp_path, point_mass_fit):
+def test_point_mass_outputs(tmp_path):
     data = tmp_path / "g.nc"
     generate.make_grid(2, seed=5, lat=np.array([60.0, 61.0]), lon=np.array([21.0])).to_netcdf(data)
     wf = tmp_path / "pm.toml"
@@ -101,3 +61,13 @@ path = "{tmp_path / 'pm.nc'}"
         assert float(ds["grid_mass"][i, 0]) == pytest.approx(total, rel=1e-9)
     assert "continuous part" in ds["density"].attrs["long_name"]
     assert ds["density_at_point_mass"].attrs["units"] == "degC-1"
+    # one cell against the library's point-mass estimate on the same rows (the real code, no stand-in)
+    cell = src[["pr", "tasmax"]].isel(lat=1, lon=0).to_dataframe()[["pr", "tasmax"]].dropna()
+    est = mvkde.fit(cell.to_numpy(dtype=float), names=["pr", "tasmax"], bandwidth="normal",
+                    bounds=[(0.0, np.inf), None], boundary="none", point_masses=[1.0, None])
+    limits = [(1.0, 80.0), (-30.0, 45.0)]
+    assert float(ds["point_mass_probability"][1, 0]) == pytest.approx(est.point_mass_probability, rel=1e-12)
+    np.testing.assert_allclose(ds["density"][1, 0].values, est.grid([60, 50], limits=limits).values,
+                               rtol=1e-10, atol=1e-14)
+    np.testing.assert_allclose(ds["density_at_point_mass"][1, 0].values,
+                               est.point_mass_grid([50], limits=limits[1:]).values, rtol=1e-10, atol=1e-14)

@@ -4,6 +4,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import matplotlib.image as mpimg  # a test dependency (pyproject.toml): imported plainly, never skipped
 import numpy as np
 import pytest
 import xarray as xr
@@ -17,8 +18,6 @@ from mvkde.inspect import layout
 import tiny_outputs
 
 REPO = Path(__file__).resolve().parent.parent
-
-mpimg = pytest.importorskip("matplotlib.image")
 
 
 @pytest.fixture(scope="module")

@@ -49,11 +49,17 @@ def run_case(case, folder: Path, capsys=None):
 
 
 def test_corpus_is_large_enough_and_every_workflow_has_a_case():
-    assert len(CASES) >= 25
     named = {c.get("workflow", c["name"] + ".toml") for c in CASES}
     on_disk = {p.name for p in CORPUS.glob("*.toml") if p.name != "cases.toml"}
+    # every workflow file has a case, and every case but the missing-file one has its file
+    assert named - on_disk == {"no_such_workflow.toml"}, named - on_disk
     assert on_disk <= named, f"workflow files without a case: {on_disk - named}"
+    assert len(CASES) == len(on_disk) + 1
     assert len({c["name"] for c in CASES}) == len(CASES)
+    # the README's message table lists exactly the cases (it is printed by this file's __main__)
+    rows = [line for line in (CORPUS / "README.md").read_text().splitlines()
+            if line.startswith("| ") and not line.startswith("| case")]
+    assert sorted(line.split("|")[1].strip() for line in rows) == sorted(c["name"] for c in CASES)
 
 
 @pytest.mark.parametrize("case", CASES, ids=[c["name"] for c in CASES])

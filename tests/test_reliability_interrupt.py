@@ -100,7 +100,7 @@ def cli(args, cwd, **extra_env) -> Running:
 
 @pytest.fixture(scope="module")
 def archive(tmp_path_factory):
-    """6 x 5 cells x 120 days of two correlated variables."""
+    """6 x 5 cells x 120 days of two correlated variables (simulated, not observations)."""
     tmp = tmp_path_factory.mktemp("interrupt")
     rng = np.random.default_rng(21)
     shape = (120, 6, 5)

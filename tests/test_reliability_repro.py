@@ -16,6 +16,7 @@ SUBSAMPLE = 80  # input.max_samples: smaller than the 150 days, so every cell is
 @pytest.fixture(scope="module")
 def archive(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("repro")
+    # simulated tasmax/tasmin (not observations): correlated normals
     rng = np.random.default_rng(5)
     shape = (150, 3, 4)
     a = 10 + 3 * rng.standard_normal(shape)

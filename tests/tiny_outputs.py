@@ -1,10 +1,21 @@
 """Small density outputs for the plot and inspect tests.
 
-``run_*`` write a tiny input and run a real workflow through
-:func:`mvkde.pipeline.run.run_and_write`; ``synthetic_*`` build an output-shaped
-Dataset by hand from a density with a closed form (for checks against
-outside values and for variables the library cannot fit yet, such as
-directions).
+Every number here is simulated or written from a closed form, not observations.
+
+``run_grid`` and ``run_stations`` write a tiny input simulated by
+``sample_grids/generate.py`` (the invented Aldmere basin) and run a real workflow
+through :func:`mvkde.pipeline.run.run_and_write`:
+
+* ``run_grid``: pr and tasmax on a 2 x 3 lat/lon grid, one year, split by
+  season, with one under-sampled cell (lat 61, lon 22: 20 valid days, flagged
+  too_few_samples); with ``variables=("tasmax",)`` and no split, a 1-variable grid;
+* ``run_stations``: tasmax and wind_speed at three simulated stations.
+
+``synthetic_*`` build an output-shaped Dataset by hand from a density with a
+closed form, for checks against outside values without estimation error: a
+bivariate normal (``synthetic_normal``), a von Mises direction times a gamma speed
+or the direction alone (``synthetic_directional``), and a point mass with an
+exponential-times-normal continuous part (``synthetic_point_mass``).
 """
 
 import io
@@ -60,7 +71,8 @@ exceedance = true
 
 def run_grid(folder: Path, variables=("pr", "tasmax"), split=True, size=(40, 36), name="grid",
              products=False) -> Path:
-    """A 2 x 3 cell grid, one year; cell (lat 61, lon 22) keeps 20 valid days (too few: flagged).
+    """A 2 x 3 cell grid of simulated data (not observations), one year; cell (lat 61, lon 22)
+    keeps 20 valid days of tasmax (too few: flagged).
 
     ``products=True`` also writes the grid products (marginals, cdf, exceedance) per cell.
     """
@@ -110,6 +122,7 @@ path = "{out}"
 
 
 def run_stations(folder: Path) -> Path:
+    """Three of the simulated stations (not observations), one year, tasmax x wind_speed per station."""
     folder.mkdir(parents=True, exist_ok=True)
     table = generate.make_stations(years=1)
     table = table[table.station.isin(["aldmere_lock", "brackenfold", "dunmoss"])]
@@ -150,7 +163,8 @@ def _per_cell(ds, lead, n):
 
 
 def synthetic_normal(cov, n_nodes=241, reach=6.0) -> xr.Dataset:
-    """One station whose density is exactly the centred bivariate normal with covariance ``cov``."""
+    """One station whose density is exactly the centred bivariate normal with covariance ``cov``
+    (a closed form written on a grid, not an estimate from observations)."""
     cov = np.asarray(cov, dtype=float)
     sd = np.sqrt(np.diag(cov))
     x = np.linspace(-reach * sd[0], reach * sd[0], n_nodes)
@@ -177,6 +191,9 @@ def von_mises(theta_deg, mean_deg, kappa):
 
 def synthetic_directional(period_on="coordinate", with_speed=True) -> xr.Dataset:
     """Two stations: wind direction (period 360) x wind speed, or direction alone.
+
+    Closed forms, not observations: von Mises directions (mean 225 deg, kappa 2 and
+    mean 90 deg, kappa 4) times a Gamma(3, scale 2.5) speed.
 
     The period is written on the direction coordinate (``period_on='coordinate'``)
     or only in the provenance record (``'provenance'``).
@@ -220,6 +237,7 @@ def synthetic_point_mass(p_dry=0.4, scale=5.0, threshold=1.0) -> xr.Dataset:
 
     Continuous part: pr - threshold exponential with ``scale``, times the normal, times 1 - p_dry;
     on the point mass: p_dry times the normal density of tasmax (the layout of mvkde run outputs).
+    A closed form written on a grid, not observations.
     """
     from scipy.stats import expon, norm
 

@@ -2,7 +2,7 @@
 
     python tests/bad_inputs/make_data.py
 
-Every file is a few kilobytes: 2 x 2 cells (lat, lon) x 120 days, or a short
+Every value is simulated, not observations.  Every file is a few kilobytes: 2 x 2 cells (lat, lon) x 120 days, or a short
 station table.  Each one carries exactly one defect used by a case in
 cases.toml; grid.nc is the healthy file the other cases start from.
 """
