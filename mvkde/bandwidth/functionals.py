@@ -23,8 +23,8 @@ off-diagonal sums with the same interface:
   neighbouring nodes) are removed exactly through the spectrum of their
   autocorrelation, so binned and exact sums approximate the same quantity.
   Cost: O(n 2^d) binning, one FFT per cell, O(grid) per criterion value.
-  All cells of a block are binned by one ``bincount`` and transformed by
-  one ``rfftn`` over a ``(cells, *grid)`` array.
+  All cells of a block are binned into one ``(cells, *grid)`` array
+  (``_bin_cells``) and transformed by one ``rfftn``.
 * :class:`ExactSums` -- direct chunked sums over the ``n (n - 1) / 2``
   pairs, O(n^2); the truth the binned path is tested against.
 
@@ -166,6 +166,66 @@ def tensor_from_values(values: dict, d: int, order: int, batch: int) -> np.ndarr
     return out
 
 
+#: rows binned per step: 256 KB temporaries, which the allocator recycles
+#: (larger ones are mapped and page-faulted afresh at every step)
+_CHUNK = 1 << 15
+
+
+def _bin_cells(zs, ws, lo, delta, bins, size):
+    """Linear binning of every cell onto its own ``size^d`` grid (``bins`` nodes used
+    per axis), and the sums behind the binned self pairs.
+
+    Returns ``grid`` (C, size^d): ``sum_i w_i prod_j (1 - f_ij or f_ij)`` at the
+    2^d corners of each point's bin, and ``self_sums`` (C, 2^d): for each pattern
+    ``s`` of axes (bit ``d - 1 - j`` for axis j) ``sum_i w_i^2 prod_j a_j`` with
+    ``a_j = f_ij (1 - f_ij)`` on the axes in ``s`` and ``(1 - f_ij)^2 + f_ij^2``
+    on the others: the autocorrelation of each point's tent weights at an offset
+    whose non-zero components are the axes in ``s``.
+
+    Memory-bound: per cell and chunk of rows, the flat index of each point's lower
+    corner is computed once and each corner is one unbuffered ``np.add.at`` into
+    the cell's row of the grid (no C x size^d temporary per corner, as a
+    ``bincount`` over all cells made).
+    """
+    C = len(zs)
+    d = lo.shape[1]
+    ntot = size ** d
+    grid = np.zeros((C, ntot))
+    self_sums = np.zeros((C, 1 << d))
+    strides = [size ** (d - 1 - j) for j in range(d)]
+    corners = list(itertools.product((0, 1), repeat=d))
+    offsets = [sum(strides[j] for j in range(d) if bits[j]) for bits in corners]
+    for c in range(C):
+        z, w, row = zs[c], ws[c], grid[c]
+        for a in range(0, z.shape[0], _CHUNK):
+            zc, wc = z[a:a + _CHUNK], w[a:a + _CHUNK]
+            base, lower, upper, diag, cross = None, [], [], [], []
+            for j in range(d):
+                u = (zc[:, j] - lo[c, j]) / delta[c, j]
+                i0 = np.clip(np.floor(u).astype(np.int64), 0, bins - 2)
+                f = np.clip(u - i0, 0.0, 1.0)
+                base = i0 * strides[j] if base is None else base + i0 * strides[j]
+                g = 1.0 - f
+                lower.append(g)
+                upper.append(f)
+                fg = f * g
+                cross.append(fg)
+                diag.append(g * g + f * f)
+            for off, bits in zip(offsets, corners):
+                p = upper[0] if bits[0] else lower[0]
+                for j in range(1, d):
+                    p = p * (upper[j] if bits[j] else lower[j])
+                # the grid is padded beyond the bins: base + off stays in the row
+                np.add.at(row[off:], base, wc * p)
+            w2 = wc * wc
+            for pattern, bits in enumerate(corners):
+                p = cross[0] if bits[0] else diag[0]
+                for j in range(1, d):
+                    p = p * (cross[j] if bits[j] else diag[j])
+                self_sums[c, pattern] += float(np.dot(w2, p))
+    return grid, self_sums
+
+
 # ---------------------------------------------------------------------------
 # binned provider
 # ---------------------------------------------------------------------------
@@ -208,20 +268,8 @@ class BinnedSums:
         shape = (size,) * d
         ntot = size ** d
 
-        # -- linear binning of every cell at once
-        counts = np.concatenate([np.full(len(z), c) for c, z in enumerate(prep.z)])
-        zall = np.concatenate(prep.z)
-        wall = np.concatenate(prep.w)
-        u = (zall - lo[counts]) / delta[counts]
-        i0 = np.clip(np.floor(u).astype(np.int64), 0, bins - 2)
-        frac = np.clip(u - i0, 0.0, 1.0)
-        flat_bins = np.zeros(C * ntot)
-        strides = np.array([size ** (d - 1 - j) for j in range(d)])
-        for corner in itertools.product((0, 1), repeat=d):
-            corner = np.array(corner)
-            wt = wall * np.prod(np.where(corner == 1, frac, 1.0 - frac), axis=1)
-            idx = counts * ntot + np.einsum("ij,j->i", i0 + corner, strides)
-            flat_bins += np.bincount(idx, weights=wt, minlength=C * ntot)
+        # -- linear binning of every cell at once, into one (C, size^d) array
+        flat_bins, self_sums = _bin_cells(prep.z, prep.w, lo, delta, bins, size)
         grid = flat_bins.reshape((C,) + shape)
         spec = _fft.rfftn(grid, axes=tuple(range(1, d + 1)), workers=1)
         self._spec_complex = spec
@@ -251,10 +299,8 @@ class BinnedSums:
         # -- spectrum of the binned self pairs: sum_i w_i^2 autocorrelation of
         # each point's tent weights, supported on offsets {-1, 0, 1}^d
         offsets = np.array(list(itertools.product((-1, 0, 1), repeat=d)))
-        self_q = np.zeros((C, len(offsets)))
-        for k, o in enumerate(offsets):
-            a = np.prod(np.where(o == 0, (1.0 - frac) ** 2 + frac ** 2, frac * (1.0 - frac)), axis=1)
-            self_q[:, k] = np.bincount(counts, weights=wall ** 2 * a, minlength=C)
+        # the value for an offset depends only on which of its components are 0
+        self_q = self_sums[:, [int(sum(1 << (d - 1 - j) for j in range(d) if o[j] != 0)) for o in offsets]]
         self_spec = np.einsum("co,of->cf", self_q, np.cos(np.einsum("od,fd->of", offsets, kappa)))
         self.kappa = kappa
         self.mult = mult
