@@ -273,8 +273,10 @@ def _bin(pieces, origin, delta, lattice, nfft, cells, terms, chunk=CHUNK):
         # the piece's box: lowest bin - 2 to highest corner + 2 on every axis
         # ((x - origin) / delta is monotone in x, so its extremes give the bins')
         blo, bshape = [], []
+        inside = True  # every datum strictly below the last node of every axis, none below the first
         for j in range(d):
             ends = [(v - origin[j]) / delta[j] for v in (x[:, j].min(), x[:, j].max())]
+            inside = inside and all(map(math.isfinite, ends)) and ends[0] >= 0 and math.floor(ends[1]) < upper[j]
             k0, k1 = (min(max(math.floor(e), 0), upper[j] - 1) if math.isfinite(e) else b
                       for e, b in zip(ends, (0, upper[j] - 1)))
             blo.append(k0 - 2)
@@ -290,7 +292,7 @@ def _bin(pieces, origin, delta, lattice, nfft, cells, terms, chunk=CHUNK):
             acc = [table[:, i] for i in range(len(group))]
             for a in range(0, x.shape[0], chunk):
                 ws = w[a:a + chunk]
-                ks, ts, ok = _chunk_bins(x[a:a + chunk], origin, delta, upper)
+                ks, ts, ok = _chunk_bins(x[a:a + chunk], origin, delta, upper, check=not inside)
                 if ok is not None:
                     if g0 == 0:
                         dropped[cell] += float(ws[~ok].sum())
@@ -329,9 +331,13 @@ def _bin(pieces, origin, delta, lattice, nfft, cells, terms, chunk=CHUNK):
     return outs, dropped
 
 
-def _chunk_bins(x, origin, delta, upper):
+def _chunk_bins(x, origin, delta, upper, check=True):
     """Lower-corner bin ``k_j`` and in-bin fraction ``t_j`` per axis of a chunk of rows,
-    and the mask of rows inside the lattice (None when all are)."""
+    and the mask of rows inside the lattice (None when all are).
+
+    ``check=False``: the caller knows from the data's extremes that every row lies
+    inside the lattice and strictly below its last node (the tests would change nothing).
+    """
     ks, ts = [], []
     ok = None
     for j in range(x.shape[1]):
@@ -339,6 +345,10 @@ def _chunk_bins(x, origin, delta, upper):
         kf = np.floor(uj)
         tj = uj - kf
         kj = kf.astype(np.int64)
+        if not check:
+            ks.append(kj)
+            ts.append(tj)
+            continue
         last = kj == upper[j]          # a datum exactly on the last node
         if last.any():
             kj[last] -= 1
