@@ -3,6 +3,10 @@
 Exit status: 0 on success, 2 on bad input or configuration (one line on
 stderr, no traceback), 1 on an unexpected internal error (short message and
 the path of a log holding the traceback).
+
+Start-up must stay light (``mvkde --version`` and ``--help`` in well under half a
+second): this module imports only the standard library and ``mvkde.errors`` at
+module level; each command imports the library or the pipeline it needs.
 """
 
 from __future__ import annotations
@@ -10,9 +14,6 @@ from __future__ import annotations
 import argparse
 import os
 import sys
-import tempfile
-import traceback
-from pathlib import Path
 
 from .errors import MvkdeError
 
@@ -230,6 +231,10 @@ def main(argv=None) -> int:
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
     except Exception as exc:  # an internal error: keep the traceback in a log, not on screen
+        import tempfile
+        import traceback
+        from pathlib import Path
+
         log = Path(tempfile.gettempdir()) / f"mvkde-error-{os.getpid()}.log"
         log.write_text(traceback.format_exc())
         print(f"mvkde {args.command}: internal error ({type(exc).__name__}: {exc}); "
