@@ -1,7 +1,8 @@
 """mvkde: joint probability densities of environmental variables.
 
-Public names: :func:`fit`, :class:`DensityEstimate`, the error classes and
-the kernel table.  Everything else lives in submodules.
+Public names: :func:`fit` (one sample), :func:`fit_cells` (the batch door:
+many cells at once), :class:`DensityEstimate`, the error classes and the
+kernel table.  Everything else lives in submodules.
 
 The public names are loaded on first use (module-level ``__getattr__``, PEP 562),
 so ``import mvkde`` and the command line's ``--version``/``--help`` do not pay
@@ -25,15 +26,19 @@ _LAZY: dict[str, tuple[str, str]] = {
     "CAUTION": (".estimator", "CAUTION"),
     "KERNEL_NAMES": (".kernels", "KERNEL_NAMES"),
     "kernel_table": (".kernels", "kernel_table"),
+    "fit_cells": (".cells", "fit_cells"),
+    "CellBatch": (".cells", "CellBatch"),
 }
 
 # Library submodules that ``import mvkde`` used to load eagerly: ``mvkde.engines``
 # and the like keep working after a bare ``import mvkde``.
-_SUBMODULES = frozenset({"bandwidth", "boundary", "directional", "directional_fit", "engines",
-                         "estimator", "kernels", "products", "units"})
+_SUBMODULES = frozenset({"bandwidth", "boundary", "cells", "directional", "engines", "estimator", "kernels",
+                         "products", "support", "units"})
 
 __all__ = [
     "fit",
+    "fit_cells",
+    "CellBatch",
     "DensityEstimate",
     "MvkdeError",
     "InputError",
