@@ -408,6 +408,31 @@ def _fit_point_part(point, values, w, support: Support, names, units, options, r
         point.problem = str(err)
 
 
+class _Mixture:
+    """(1 - p) x one estimate + p x another, on the same variables: a marginal that drops a point mass."""
+
+    def __init__(self, continuous, on_mass, p: float):
+        self.parts = [(1.0 - p, continuous)] + ([(p, on_mass)] if on_mass is not None and p > 0 else [])
+        self.attrs = {"boundary": continuous.boundary, "mixture_weights": ", ".join(f"{w:.6g}" for w, _ in self.parts)}
+
+    def density(self, pts, log=False):
+        values = sum(w * est.pdf(pts) for w, est in self.parts)
+        if log:
+            with np.errstate(divide="ignore"):
+                return np.log(values), None
+        return values, None
+
+    def grid(self, axes):
+        limits = [(a[0], a[-1]) for a in axes]
+        return sum(w * est.grid([len(a) for a in axes], limits).values for w, est in self.parts), None
+
+    def sample(self, n, rng):
+        counts = rng.multinomial(n, [w for w, _ in self.parts])
+        draws = [est.sample(k, rng) for (_, est), k in zip(self.parts, counts) if k]
+        out = np.concatenate(draws) if draws else np.empty((0, self.parts[0][1].d))
+        return out[rng.permutation(len(out))]
+
+
 def _no_bandwidth(d: int) -> BandwidthResult:
     """The bandwidth of an empty continuous part (every value at the point mass)."""
     nan = np.full((d, d), np.nan)
@@ -842,6 +867,43 @@ class DensityEstimate:
         return fit(data, kernel=self.kernel.name, form=self.kernel.form, bandwidth=self.H[np.ix_(idx, idx)],
                    weights=weights, engine=self.engine, names=[self.names[j] for j in idx],
                    units=[self.units[j] for j in idx], **self._fit_options(idx))
+
+    def _point_mass_marginal(self, idx) -> "DensityEstimate":
+        """Marginal of ``idx`` for an estimate with a point mass (exact parts only).
+
+        Keeping the point-mass variable: the continuous part's marginal with the
+        same point mass, the other kept variables following their marginal on
+        it.  Dropping it: the mixture (1 - p) x continuous marginal + p x the
+        marginal of the density on the point mass.
+        """
+        pm = self._point
+        idx = list(idx)
+        cont = self._refit(self.data[:, idx], idx, self.weights) if self.n else None
+        others = [k for k in range(self.d) if k != pm.index]
+        on_mass = None
+        kept_others = [k for k in idx if k != pm.index]
+        if pm.estimate is not None and kept_others:
+            on_mass = pm.estimate.marginal([self.names[k] for k in kept_others])
+        if cont is None:
+            raise InputError("the continuous part is empty (every value is at the point mass): use "
+                             "point_mass_grid(...)")
+        if pm.index in idx:
+            declaration = self.support.subset(idx).point_mass
+            part = _point_mass.PointMassPart(declaration, pm.rows, pm.probability)
+            part.estimate, part.problem = on_mass, pm.problem
+            return DensityEstimate(cont.data, cont.weights, cont.names, cont.units, cont.kernel, cont.bandwidth,
+                                   cont.bounds, cont.boundary, cont.engine, model=cont._model, point_mass=part,
+                                   support=self.support.subset(idx))
+        if pm.probability > 0 and on_mass is None:
+            raise InputError(f"the density of {', '.join(self.names[k] for k in kept_others)} on the point mass of "
+                             f"{pm.name} is not available ({pm.problem or 'no values on it'}): use marginal_grid(...)")
+        model = _Mixture(cont, on_mass, pm.probability)
+        est = DensityEstimate(cont.data, cont.weights, cont.names, cont.units, cont.kernel, cont.bandwidth,
+                              cont.bounds, cont.boundary, cont.engine, model=model, support=cont.support)
+        est.attrs["marginal_note"] = (f"mixture over the point mass of {pm.name}: (1 - {pm.probability:.4g}) x the "
+                                      "continuous part's marginal + the marginal on the point mass; H is that of "
+                                      "the continuous part")
+        return est
 
     def _fit_options(self, idx) -> dict:
         """Keyword arguments of :func:`fit` that rebuild this estimate's support for the

@@ -30,8 +30,12 @@ FLAG_ADVICE = {
     "fit_failed": "fit that cell's sample with mvkde.fit to see the error",
     "bandwidth_not_converged": "try another estimator.bandwidth selector for these cells",
     "bandwidth_at_edge": "the selector stopped at the edge of its search: check these cells",
-    "grid_mass_off_by_more_than_1_percent": "widen grid.limits (or set variable bounds and a boundary method)",
+    "grid_mass_off_by_more_than_1_percent": "where grid_too_coarse_for_the_bandwidth is flagged too, use more "
+                                            "nodes (grid.size); elsewhere mass lies outside the grid: widen "
+                                            "grid.limits (or set variable bounds and a boundary method)",
     "subsampled": "input.max_samples subsampled these cells",
+    "grid_too_coarse_for_the_bandwidth": "the node spacing exceeds 1.5 kernel standard deviations: products "
+                                         "integrated on this grid are biased; use more nodes (grid.size)",
 }
 
 
@@ -245,6 +249,11 @@ def _warnings(ds: xr.Dataset, lay: OutputLayout, flags: dict | None, n_cells: in
             if count:
                 hint = FLAG_ADVICE.get(meaning)
                 out.append(f"{count} cells flagged {meaning}" + (f": {hint}" if hint else ""))
+    if "failure_reason" in ds.data_vars:
+        reasons = np.asarray(ds["failure_reason"].values).astype(str)
+        distinct = sorted({r for r in reasons.ravel() if r})
+        for r in distinct[:3]:
+            out.append(f"{int((reasons == r).sum())} cells refused: {r}")
     # warnings a writer stored explicitly (a global attribute or a provenance entry)
     for source in (ds.attrs.get("warnings"), (lay.provenance or {}).get("warnings")):
         if source is None:

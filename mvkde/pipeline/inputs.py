@@ -182,6 +182,17 @@ def check_memory(plan: Plan) -> None:
             "(input.box) or a smaller compute.block_size")
 
 
+def _refuse_without_dates(src, inp, tname, coord, file_name) -> None:
+    """A selection by dates on a time coordinate that holds no dates: one clear line."""
+    keys = [k for k in ("time_range", "months", "seasons", "split_by") if inp[k]]
+    units = coord.attrs.get("units")
+    why = (f"its units {units!r} could not be read as dates" if units else "it has no units of the form "
+           "'days since YYYY-MM-DD'")
+    raise ConfigError(f"{src}: {', '.join('input.' + k for k in keys)} select(s) by date, but the time "
+                      f"coordinate {tname!r} of {file_name} holds plain {coord.dtype} numbers ({why}): remove "
+                      f"{' and '.join('input.' + k for k in keys)}, or give the file a CF time coordinate")
+
+
 def _months_of(times) -> np.ndarray:
     return np.asarray(xr.DataArray(times).dt.month.values)
 
@@ -257,6 +268,8 @@ def _prepare_gridded(wf: Workflow, files) -> Plan:
                           "input.split_by need it")
     if inp["split_by"] and tname not in sample_dims:
         raise ConfigError(f"{src}: input.split_by needs the time dimension {tname!r} in input.sample_dims")
+    if needs_time and not np.issubdtype(ds[tname].dtype, np.datetime64) and ds[tname].dtype != object:
+        _refuse_without_dates(src, inp, tname, ds[tname], files[0].name)
     if inp["time_range"]:
         start, end = inp["time_range"]
         try:
@@ -296,7 +309,7 @@ def _prepare_gridded(wf: Workflow, files) -> Plan:
     arr = ds.to_dataarray("variable").transpose(*cell_dims, *sample_dims, "variable")
     arr = arr.chunk({"variable": -1})
 
-    if tname in sample_dims:
+    if tname in sample_dims and inp["split_by"]:
         months = _months_of(ds[tname].values)
         codes_1d, labels = _split_codes(months, inp["split_by"], inp["seasons"])
         shape = [1] * (len(cell_dims) + len(sample_dims))

@@ -30,7 +30,8 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
 
     ``results`` is what :func:`~mvkde.pipeline.schedule.execute` returns.
     """
-    results = results["arrays"]
+    failures = results["failures"]
+    results = dict(results["arrays"], failures=failures)
     names, units = plan.names, plan.units
     cdims = list(plan.cell_dims)
     split = [plan.split_dim] if plan.split_dim else []
@@ -107,11 +108,22 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
                 "long_name": "density of " + ", ".join(others) + f" on the point mass of {names[j]} "
                              f"(integrates to point_mass_probability)",
                 "units": density_units([u for k, u in enumerate(units) if k != j])})
+    if results["failures"]:
+        data_vars["failure_reason"] = (lead, squeeze(_failure_reasons(plan, results["failures"])), {
+            "long_name": "why the estimator refused the cell (empty where it got a density)"})
     ds = xr.Dataset(data_vars, coords=coords)
     add_cell_products(ds, results, settings, lead, squeeze)
     add_grid_products(ds, plan.workflow["products"], names, j,
                       settings.bounds[j][0] if j is not None else float("nan"))
     return ds
+
+
+def _failure_reasons(plan: Plan, failures) -> np.ndarray:
+    """Per (cell, split): the estimator's message for a refused cell, '' elsewhere."""
+    reasons = np.full((plan.n_cells, plan.n_splits), "", dtype=object)
+    for cell, split, message in failures:
+        reasons[cell, split] = message
+    return reasons.reshape(plan.cell_shape + (plan.n_splits,)).astype(str)
 
 
 def encoding_for(ds: xr.Dataset, plan: Plan, output: dict) -> dict:

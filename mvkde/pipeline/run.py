@@ -27,7 +27,9 @@ import numpy as np
 from ..errors import ConfigError, InputError
 from ..estimator import CAUTION
 from . import provenance as _prov
-from .blocks import FLAGS, check_settings, settings_for
+from ..errors import MvkdeError
+from ..estimator import fit
+from .blocks import COARSE_SPACING, FLAGS, check_settings, settings_for
 from .inputs import Plan, check_memory, estimate_sizes, human_bytes, prepare, resolve_axes, where_files
 from .output import check_output_path, clean_stale_partials, encoding_for, build_dataset, write_netcdf_atomic
 from .resume import BlockStore, resume_store_path
@@ -145,7 +147,49 @@ def describe_plan(plan: Plan) -> str:
     lines.append(f"  output      {wf['output']['path']}: about {human_bytes(sizes['output_bytes'])} before compression")
     for note in plan.notes:
         lines.append(f"  note        {note}")
+    for warning in coarse_grid_warnings(plan):
+        lines.append(f"  warning     {warning}")
     return "\n".join(lines)
+
+
+def coarse_grid_warnings(plan: Plan) -> list[str]:
+    """Variables whose grid spacing exceeds the kernel's standard deviation in a sample cell.
+
+    The first cell with enough valid samples is fitted with the run's own
+    settings (all its samples pooled, so its bandwidths are if anything
+    smaller than a split's); a spacing above ``COARSE_SPACING`` kernel
+    standard deviations makes the trapezoid rule miss the density near a
+    bound or a peak, and the products integrated on the grid are biased.
+    """
+    wf = plan.workflow
+    first = plan.values.isel({d: 0 for d in plan.cell_dims}) if plan.cell_dims else plan.values
+    x = np.asarray(first.values, dtype=float).reshape(-1, len(plan.names))
+    x = x[np.isfinite(x).all(axis=1)]
+    if len(x) < max(wf["input"]["min_samples"], len(plan.names) + 1):
+        return []
+    settings = settings_for(plan, None)
+    try:
+        H = fit(x, **settings.fit_kwargs()).H
+    except MvkdeError:
+        return []
+    out = []
+    limits = wf["grid"]["limits"]
+    for j, (v, size) in enumerate(zip(plan.names, wf.grid_size())):
+        table = wf.variable(v)
+        if table["period"] is not None or v in (wf["estimator"].get("sphere") or ()) or not np.isfinite(H[j, j]):
+            continue
+        if v in limits:
+            lo, hi = limits[v]
+        else:
+            lo, hi = float(x[:, j].min()), float(x[:, j].max())
+            lo, hi = lo - 0.2 * (hi - lo), hi + 0.2 * (hi - lo)
+        spacing, sd = (hi - lo) / (size - 1), float(np.sqrt(H[j, j]))
+        if spacing > COARSE_SPACING * sd:
+            need = int(np.ceil((hi - lo) / (COARSE_SPACING * sd))) + 1
+            out.append(f"grid.size gives {v} a node spacing of {spacing:.3g}, above {COARSE_SPACING:g} x the "
+                       f"kernel's standard deviation {sd:.3g} in the first cell: products integrated on the grid will be biased; "
+                       f"use about {need} nodes for {v}")
+    return out
 
 
 def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out=None, progress_stream=None):

@@ -10,43 +10,13 @@ there is one, and gathers the block results into arrays over the cells.
 from __future__ import annotations
 
 import logging
-import sys
-import time
 
 import numpy as np
 
 from ..errors import ConfigError
+from ..progress import Progress
 from .blocks import BlockResult, CellSettings, process_block
 from .inputs import Plan
-
-class Progress:
-    """A bar on a terminal; plain log lines (every 10 % or 30 s) otherwise."""
-
-    def __init__(self, total: int, stream=None, label="blocks"):
-        self.total, self.done, self.label = max(1, total), 0, label
-        self.stream = stream if stream is not None else sys.stderr
-        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
-        self.t0 = self.last = time.perf_counter()
-        self.last_tenth = -1
-
-    def update(self, n: int = 1) -> None:
-        self.done += n
-        now = time.perf_counter()
-        frac = self.done / self.total
-        if self.tty:
-            width = 30
-            fill = int(round(width * frac))
-            self.stream.write(f"\r[{'#' * fill}{'.' * (width - fill)}] {self.done}/{self.total} {self.label} "
-                              f"{now - self.t0:6.1f} s")
-            if self.done >= self.total:
-                self.stream.write("\n")
-            self.stream.flush()
-            return
-        tenth = int(frac * 10)
-        if tenth > self.last_tenth or now - self.last > 30 or self.done >= self.total:
-            self.last_tenth, self.last = tenth, now
-            print(f"mvkde run: {self.done}/{self.total} {self.label} done ({100 * frac:.0f} %), "
-                  f"{now - self.t0:.1f} s", file=self.stream, flush=True)
 
 
 def _worker_environ() -> dict:

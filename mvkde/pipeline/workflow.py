@@ -356,8 +356,10 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                                "scaled kernel)", "bandwidth"),
         "parametrization": Key("full", _choice("parametrization"), "full, diagonal or scalar H",
                                "parametrization"),
-        "boundary": Key("reflect", _choice("boundary"), "boundary correction for bounded variables "
-                                                        "(used only when bounds are declared)", "boundary"),
+        "boundary": Key("linear", _choice("boundary"), "boundary correction for bounded variables (used only "
+                                                       "when bounds are declared); linear = the linear boundary "
+                                                       "kernel (Jones 1993), reflection where it cannot apply "
+                                                       "(recorded in the output)", "boundary"),
         "engine": Key("auto", _choice("engine"), "evaluation engine", "engine"),
         "seed": Key(0, _int(lo=0), "seed of every random step (subsampling); recorded in the provenance"),
         "sphere": Key(None, _str_list(optional=True), "[latitude, longitude]: two of input.variables (degrees) "

@@ -35,6 +35,7 @@ import xarray as xr
 from scipy import integrate, interpolate
 
 from ..errors import InputError
+from ..progress import Progress
 from ..units import density_units
 from . import grid as _grid
 
@@ -134,9 +135,8 @@ def marginal(est, names):
             f"{est.kernel.form} {est.kernel.name} kernel with this H: use marginal_grid(...) "
             "(numerical, always available), or put these variables first when fitting"
         )
-    if est.point_mass_probability:
-        raise InputError("the marginal of an estimate with a point mass is not a single estimate: "
-                         "use marginal_grid(...) for the continuous part and point_mass_grid(...) for the rest")
+    if est.support.point_mass is not None:
+        return est._point_mass_marginal(idx)
     return est._refit(est.data[:, idx], idx, est.weights)
 
 
@@ -420,9 +420,11 @@ def bootstrap(est, statistic, replicates=200, seed=None):
     rng = np.random.default_rng(seed)
     out = []
     every = list(range(est.d))
+    progress = Progress(replicates, label="bootstrap replicates", prefix="mvkde", log_lines=False)
     for _ in range(replicates):
         idx = rng.choice(est.n, size=est.n, replace=True, p=est.weights)
         out.append(np.asarray(statistic(est._refit(est.data[idx], every))))
+        progress.update()
     return np.stack(out)
 
 
