@@ -939,29 +939,29 @@ class DensityEstimate:
         """Density of the other variables given values or (lo, hi) bins of ``given``."""
         return _products.conditional(self, given, size=size, limits=limits)
 
-    def cdf(self, points, *, size=None) -> np.ndarray:
-        """Joint CDF P(X <= x componentwise)."""
-        return _products.cdf(self, points, size=size)
+    def cdf(self, points, *, size=None, limits=None) -> np.ndarray:
+        """Joint CDF P(X <= x componentwise), point masses included."""
+        return _products.cdf(self, points, size=size, limits=limits)
 
-    def exceedance(self, points, *, size=None) -> np.ndarray:
-        """Joint exceedance P(X > x componentwise)."""
-        return _products.exceedance(self, points, size=size)
+    def exceedance(self, points, *, size=None, limits=None) -> np.ndarray:
+        """Joint exceedance P(X > x componentwise), point masses included."""
+        return _products.exceedance(self, points, size=size, limits=limits)
 
     def probability_grid(self, kind="exceedance", size=None, limits=None) -> xr.DataArray:
         """Joint CDF ('cdf') or exceedance ('exceedance') at every grid node."""
         return _products.probability_grid(self, kind, size, limits)
 
-    def quantiles(self, name, probs) -> np.ndarray:
-        """Marginal quantiles of variable ``name``."""
-        return _products.quantiles(self, name, probs)
+    def quantiles(self, name, probs, *, size=None, limits=None) -> np.ndarray:
+        """Marginal quantiles of variable ``name`` (point mass included; see :func:`mvkde.products.quantiles`)."""
+        return _products.quantiles(self, name, probs, size=size, limits=limits)
 
-    def hdr_levels(self, masses=(0.5, 0.9, 0.99), *, size=None) -> np.ndarray:
+    def hdr_levels(self, masses=(0.5, 0.9, 0.99), *, size=None, limits=None) -> np.ndarray:
         """Density levels whose upper sets enclose ``masses`` of the probability."""
-        return _products.hdr_levels(self, masses, size=size)
+        return _products.hdr_levels(self, masses, size=size, limits=limits)
 
-    def mass_above(self, level, *, size=None) -> np.ndarray:
+    def mass_above(self, level, *, size=None, limits=None) -> np.ndarray:
         """Probability of the region where the density is at least ``level``."""
-        return _products.mass_above(self, level, size=size)
+        return _products.mass_above(self, level, size=size, limits=limits)
 
     def sector_table(self, direction, speed, sectors=16, speed_edges=None):
         """Joint probability per direction sector and speed class (see

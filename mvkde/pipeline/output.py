@@ -114,7 +114,8 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
     ds = xr.Dataset(data_vars, coords=coords)
     add_cell_products(ds, results, settings, lead, squeeze)
     add_grid_products(ds, plan.workflow["products"], names, j,
-                      settings.bounds[j][0] if j is not None else float("nan"))
+                      settings.bounds[j][0] if j is not None else float("nan"),
+                      sphere=(names.index(sphere[0]), names.index(sphere[1])) if sphere else None)
     return ds
 
 
