@@ -76,5 +76,5 @@ def split(declaration: Declaration | None, values, weights) -> PointMassPart | N
     if declaration is None:
         return None
     rows = values[:, declaration.index] <= declaration.threshold
-    w = np.full(values.shape[0], 1.0 / values.shape[0]) if weights is None else weights
-    return PointMassPart(declaration, rows, float(w[rows].sum()))
+    probability = float(rows.sum()) / values.shape[0] if weights is None else float(weights[rows].sum())
+    return PointMassPart(declaration, rows, probability)
