@@ -8,6 +8,12 @@ with K a unit-covariance kernel (product or spherical form), so that H is the
 covariance matrix of the scaled kernel whatever the kernel (Wand & Jones
 1995, Ch. 4).  With the Gaussian kernel this is exactly
 scipy.stats.gaussian_kde with ``covariance = H``.
+
+Long because ``fit`` and the estimate live together: the estimate refits
+itself through ``fit`` (exact marginals, bootstrap replicates, the density on
+a point mass), and splitting them would make an import circle.  The steps of
+``fit`` are short functions below it; turning data into arrays is
+:mod:`mvkde.sample`, the point-mass models are :mod:`mvkde.boundary.point_mass`.
 """
 
 from __future__ import annotations
@@ -21,11 +27,13 @@ import xarray as xr
 from . import boundary as _boundary
 from .boundary import point_mass as _point_mass
 from .directional import model as _directional
+from .directional import spec as _directional_spec
 from . import engines as _engines
 from . import products as _products
 from .bandwidth import BandwidthMatrix, BandwidthResult, PARAMETRIZATIONS, select
 from .errors import InputError, MvkdeError, check_choice
 from .kernels import FORMS, get_kernel, get_multivariate_kernel
+from . import sample as _sample
 from .support import Support
 from .units import density_units
 
@@ -37,110 +45,6 @@ CAUTION = (
     "replace, the design values, codes and licensed engineering or hydrological practice that "
     "apply locally; defer to them for any decision that affects safety."
 )
-
-
-# ---------------------------------------------------------------------------
-# input handling
-# ---------------------------------------------------------------------------
-
-def _as_table(data, names=None, units=None):
-    """(values (n, d) float, names, units) from an array, DataFrame or Dataset."""
-    found_units: dict[str, str] = {}
-    if isinstance(data, xr.Dataset):
-        cols = list(data.data_vars)
-        if not cols:
-            raise InputError("data: the Dataset has no data variables")
-        sizes = {c: data[c].size for c in cols}
-        if len(set(sizes.values())) != 1:
-            raise InputError(f"data: the Dataset's variables have different sizes {sizes}; "
-                             "select variables on the same dimensions")
-        values = np.column_stack([_numeric(data[c].values.ravel(), c) for c in cols])
-        found_units = {c: str(data[c].attrs.get("units", "")) for c in cols}
-        found_names = [str(c) for c in cols]
-    elif isinstance(data, xr.DataArray):
-        name = str(data.name) if data.name is not None else "x0"
-        values = _numeric(data.values.ravel(), name)[:, None]
-        found_units = {name: str(data.attrs.get("units", ""))}
-        found_names = [name]
-    elif isinstance(data, pd.DataFrame):
-        cols = list(data.columns)
-        values = np.column_stack([_numeric(data[c].to_numpy(), c) for c in cols]) if cols else np.empty((0, 0))
-        found_names = [str(c) for c in cols]
-        found_units = dict(data.attrs.get("units", {})) if isinstance(data.attrs.get("units"), dict) else {}
-    elif isinstance(data, pd.Series):
-        name = str(data.name) if data.name is not None else "x0"
-        values = _numeric(data.to_numpy(), name)[:, None]
-        found_names = [name]
-    else:
-        try:
-            values = np.asarray(data, dtype=float)
-        except (TypeError, ValueError):
-            raise InputError("data must be a numeric (n, d) array, a pandas DataFrame or an xarray Dataset") from None
-        if values.ndim == 1:
-            values = values[:, None]
-        if values.ndim != 2:
-            raise InputError(f"data must be two-dimensional (n samples, d variables), got shape {values.shape}")
-        found_names = [f"x{j}" for j in range(values.shape[1])]
-    d = values.shape[1] if values.ndim == 2 else 0
-    if d == 0:
-        raise InputError("data have no variables")
-    if names is not None:
-        names = [str(n) for n in names]
-        if len(names) != d:
-            raise InputError(f"names has {len(names)} entries but the data have {d} variables")
-        found_names = names
-    if len(set(found_names)) != d:
-        raise InputError(f"variable names must be distinct, got {found_names}")
-    if units is None:
-        units = [found_units.get(n, "") for n in found_names]
-    elif isinstance(units, dict):
-        units = [str(units.get(n, "")) for n in found_names]
-    else:
-        units = [str(u) for u in units]
-        if len(units) != d:
-            raise InputError(f"units has {len(units)} entries but the data have {d} variables")
-    return values, found_names, units
-
-
-def _numeric(col, name) -> np.ndarray:
-    try:
-        return np.asarray(col, dtype=float)
-    except (TypeError, ValueError):
-        raise InputError(f"variable {name!r} is not numeric: convert or drop it before fitting") from None
-
-
-def _check_finite(values, names):
-    bad = ~np.isfinite(values)
-    if bad.any():
-        parts = []
-        for j, name in enumerate(names):
-            nan = int(np.isnan(values[:, j]).sum())
-            inf = int(np.isinf(values[:, j]).sum())
-            if nan:
-                parts.append(f"{nan} NaN in {name}")
-            if inf:
-                parts.append(f"{inf} infinite in {name}")
-        raise InputError(f"data contain missing or infinite values ({', '.join(parts)}): "
-                         "drop or fill them before fitting")
-
-
-def _check_weights(weights, n):
-    if weights is None:
-        return None
-    try:
-        w = np.asarray(weights, dtype=float).ravel()
-    except (TypeError, ValueError):
-        raise InputError("weights must be numbers") from None
-    if w.shape[0] != n:
-        raise InputError(f"weights has {w.shape[0]} entries but the data have {n} rows")
-    if not np.all(np.isfinite(w)):
-        raise InputError("weights contain NaN or infinite values")
-    if np.any(w < 0):
-        raise InputError(f"weights must be non-negative ({int((w < 0).sum())} negative)")
-    total = w.sum()
-    if total <= 0:
-        raise InputError("weights are all zero: at least one sample must carry weight")
-    return w / total
 
 
 # ---------------------------------------------------------------------------
@@ -234,8 +138,8 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="plugin", parametr
     >>> float(est.grid(32).sum()) > 0
     True
     """
-    values, names, units = _as_table(data, names, units)
-    values, w = _check_sample(values, names, weights)
+    values, names, units = _sample.as_table(data, names, units)
+    values, w = _sample.check_sample(values, names, weights)
     d = values.shape[1]
     mk = get_multivariate_kernel(get_kernel(kernel).name, check_choice("form", form, FORMS), d)
     parametrization = check_choice("parametrization", parametrization, PARAMETRIZATIONS)
@@ -245,7 +149,7 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="plugin", parametr
     # 1. the support of each variable, described once
     support, spec, mask_spec = _declare_support(names, values, bounds, periods, sphere, point_masses, mask)
     if spec is not None:
-        values = _directional.wrap(values, spec)
+        values = _directional_spec.wrap(values, spec)
     values, w, n_dropped = _drop_outside(values, w, support, mask_spec, outside, names)
     box = list(support.bounds)
 
@@ -258,7 +162,7 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="plugin", parametr
                    engine=engine, boundary=boundary)
     concentrations, attrs = {}, {}
     if cont_values.shape[0] == 0:
-        method, result, model = "none", _no_bandwidth(d), _EmptyModel(d)
+        method, result, model = "none", _point_mass.no_bandwidth(d), _point_mass.EmptyModel(d)
     elif spec is not None:
         model, result, method, concentrations, attrs = _directional.fit_model(
             cont_values, cont_w, names, spec, mk, bandwidth, parametrization, cont_box, boundary)
@@ -278,22 +182,14 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="plugin", parametr
     return est
 
 
-def _check_sample(values, names, weights):
-    n, d = values.shape
-    _check_finite(values, names)
-    if n < d + 1:
-        raise InputError(f"data have {n} samples for {d} variables: at least {d + 1} are needed")
-    return values, _check_weights(weights, n)
-
-
 def _declare_support(names, values, bounds, periods, sphere, point_masses, mask):
     """(Support, directional spec or None, mask or None) from fit's arguments, checked."""
     d = len(names)
     box = _boundary.parse_bounds(bounds, d, names)
     mask_spec = _boundary.parse_mask(mask, names) if mask is not None else None
-    spec = _directional.parse(periods, sphere, names, d)
+    spec = _directional_spec.parse(periods, sphere, names, d)
     if spec is not None:
-        _directional.check_support(spec, values, box, names, point_masses, mask)
+        _directional_spec.check_support(spec, values, box, names, point_masses, mask)
     declared = _point_mass.declare(point_masses, box, names)
     pair = None if spec is None or spec.sphere is None else (names[spec.sphere[0]], names[spec.sphere[1]])
     support = Support(tuple(names), tuple(tuple(b) for b in box),
@@ -406,57 +302,6 @@ def _fit_point_part(point, values, w, support: Support, names, units, options, r
                              names=[names[k] for k in others], units=[units[k] for k in others])
     except MvkdeError as err:
         point.problem = str(err)
-
-
-class _Mixture:
-    """(1 - p) x one estimate + p x another, on the same variables: a marginal that drops a point mass."""
-
-    def __init__(self, continuous, on_mass, p: float):
-        self.parts = [(1.0 - p, continuous)] + ([(p, on_mass)] if on_mass is not None and p > 0 else [])
-        self.attrs = {"boundary": continuous.boundary, "mixture_weights": ", ".join(f"{w:.6g}" for w, _ in self.parts)}
-
-    def density(self, pts, log=False):
-        values = sum(w * est.pdf(pts) for w, est in self.parts)
-        if log:
-            with np.errstate(divide="ignore"):
-                return np.log(values), None
-        return values, None
-
-    def grid(self, axes):
-        limits = [(a[0], a[-1]) for a in axes]
-        return sum(w * est.grid([len(a) for a in axes], limits).values for w, est in self.parts), None
-
-    def sample(self, n, rng):
-        counts = rng.multinomial(n, [w for w, _ in self.parts])
-        draws = [est.sample(k, rng) for (_, est), k in zip(self.parts, counts) if k]
-        out = np.concatenate(draws) if draws else np.empty((0, self.parts[0][1].d))
-        return out[rng.permutation(len(out))]
-
-
-def _no_bandwidth(d: int) -> BandwidthResult:
-    """The bandwidth of an empty continuous part (every value at the point mass)."""
-    nan = np.full((d, d), np.nan)
-    return BandwidthResult(BandwidthMatrix(nan, nan), "none: every value is at the point mass", "full")
-
-
-class _EmptyModel:
-    """The continuous part when every value lies at the point mass: zero density."""
-
-    attrs = {"boundary": "none", "continuous_part": "empty: every value is at the point mass"}
-
-    def __init__(self, d: int):
-        self.d = d
-
-    def density(self, pts, log=False):
-        return np.full(pts.shape[0], -np.inf if log else 0.0), None
-
-    def grid(self, axes):
-        return np.zeros([len(a) for a in axes]), None
-
-    def sample(self, n, rng):
-        if n:
-            raise InputError("the continuous part is empty (every value is at the point mass): nothing to draw")
-        return np.empty((0, self.d))
 
 
 # ---------------------------------------------------------------------------
@@ -897,7 +742,7 @@ class DensityEstimate:
         if pm.probability > 0 and on_mass is None:
             raise InputError(f"the density of {', '.join(self.names[k] for k in kept_others)} on the point mass of "
                              f"{pm.name} is not available ({pm.problem or 'no values on it'}): use marginal_grid(...)")
-        model = _Mixture(cont, on_mass, pm.probability)
+        model = _point_mass.Mixture(cont, on_mass, pm.probability)
         est = DensityEstimate(cont.data, cont.weights, cont.names, cont.units, cont.kernel, cont.bandwidth,
                               cont.bounds, cont.boundary, cont.engine, model=model, support=cont.support)
         est.attrs["marginal_note"] = (f"mixture over the point mass of {pm.name}: (1 - {pm.probability:.4g}) x the "

@@ -110,6 +110,10 @@ def cross_validate(criterion, theta=None, units=None, lin=None, weights=None, *,
     Mises-Fisher concentration (a location on S^2) and a Gaussian bandwidth matrix
     for the linear variables, for the product kernel of all of them.
 
+    Long because the objective and its parameter unpacking are closures over the
+    pair terms computed once at the top (cosines, inner products, products of
+    linear differences): split apart, each piece would pass them all around.
+
     ``criterion`` is ``"mlcv"`` -- maximise the leave-one-out log-likelihood
     sum_i w_i log f_{-i}(X_i) (Hall, Watson & Cabrera 1987, for the circular
     and spherical kernels; Habbema, Hermans & van den Broek 1974) -- or
