@@ -1,7 +1,8 @@
 """mvkde: joint probability densities of environmental variables.
 
-Public names: :func:`fit`, :class:`DensityEstimate`, the error classes and
-the kernel table.  Everything else lives in submodules.
+Public names: :func:`fit`, :class:`DensityEstimate`, :func:`densities` (the
+per-cell job from Python, imported on first use), the error classes and the
+kernel table.  Everything else lives in submodules.
 """
 
 from .errors import BandwidthError, ConfigError, InputError, MvkdeError, MvkdeWarning
@@ -12,6 +13,7 @@ __version__ = "0.1.0"
 
 __all__ = [
     "fit",
+    "densities",
     "DensityEstimate",
     "MvkdeError",
     "InputError",
@@ -23,3 +25,12 @@ __all__ = [
     "CAUTION",
     "__version__",
 ]
+
+
+def __getattr__(name):
+    # the pipeline layer (xarray/dask machinery) is imported only when densities is used
+    if name == "densities":
+        from .pipeline.densities import densities
+
+        return densities
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -27,7 +27,7 @@ from .. import boundary, engines, kernels
 from ..bandwidth import PARAMETRIZATIONS, SELECTORS, BandwidthMatrix
 from ..errors import ConfigError, MvkdeError, closest_names
 
-__all__ = ["SCHEMA", "Workflow", "load", "loads", "apply_override", "SEASONS", "REQUIRED",
+__all__ = ["SCHEMA", "Workflow", "load", "loads", "from_arguments", "apply_override", "SEASONS", "REQUIRED",
            "estimator_choices", "key_reference"]
 
 SEASONS = ("DJF", "MAM", "JJA", "SON")  # meteorological seasons (common practice)
@@ -433,17 +433,18 @@ VARIABLE_KEYS: dict[str, Key] = {
 class Workflow:
     """A validated workflow: ``spec`` is the resolved dict with every default."""
 
-    def __init__(self, spec: dict, path: Path | None, overrides: list[str]):
+    def __init__(self, spec: dict, path: Path | None, overrides: list[str], name: str | None = None):
         self.spec = spec
         self.path = path
         self.overrides = list(overrides)
+        self.name = name
 
     def __getitem__(self, section):
         return self.spec[section]
 
     @property
     def source(self) -> str:
-        return str(self.path) if self.path else "<workflow>"
+        return str(self.path) if self.path else (self.name or "<workflow>")
 
     @property
     def variables(self) -> list[str]:
@@ -517,6 +518,11 @@ def loads(text: str, source=None, overrides=()) -> Workflow:
         apply_override(raw, item, name)
     spec = _validate(raw, name, overridden={_override_key(o) for o in overrides})
     return Workflow(spec, Path(source) if source else None, list(overrides))
+
+
+def from_arguments(raw: dict, name: str) -> Workflow:
+    """Validate a workflow given as a dict in the TOML layout (built from a function's arguments)."""
+    return Workflow(_validate(raw, name), None, [], name=name)
 
 
 def _override_key(item: str) -> str:
