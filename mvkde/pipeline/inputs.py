@@ -314,7 +314,7 @@ def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "
     arr = ds.to_dataarray("variable").transpose(*cell_dims, *sample_dims, "variable")
     arr = arr.chunk({"variable": -1})
 
-    if tname in sample_dims:
+    if tname in sample_dims and inp["split_by"]:
         months = _months_of(ds[tname].values)
         codes_1d, labels = _split_codes(months, inp["split_by"], inp["seasons"])
         shape = [1] * (len(cell_dims) + len(sample_dims))
