@@ -27,9 +27,9 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from ..errors import ConfigError, InputError, MvkdeError, closest_names
+from ..errors import InputError, MvkdeError, closest_names
 from . import provenance as _prov
-from .blocks import FLAGS, _probe_sample, check_settings, process_block, settings_for
+from .blocks import _probe_sample, check_settings, process_block, settings_for
 from .inputs import Plan, plan_from_dataset, plan_from_table, resolve_axes
 from .output import build_dataset, global_attributes
 from .schedule import block_tasks
@@ -106,31 +106,12 @@ def densities(ds, *, variables=None, sample_dims=("time",), group_by=None, split
     ...                       grid={"size": 64, "limits": {"pr": (1, 60), "tasmax": (-20, 40)}})
     >>> out.to_netcdf("basin.nc")          # the work happens here
     """
-    import dask.base
-
     if windows is not None:
         raise InputError(f"{SOURCE}: windows= (named time windows for comparisons) is not available yet: "
                          "select each window with ds.sel(time=slice(start, end)) and call densities per window")
-    table = isinstance(ds, pd.DataFrame)
-    if isinstance(ds, xr.DataArray):
-        ds = ds.to_dataset(name=ds.name or "x0")
-    if not table and not isinstance(ds, xr.Dataset):
-        raise InputError(f"{SOURCE}: ds must be an xarray.Dataset or a pandas.DataFrame, got {type(ds).__name__}")
-    names = _variables(ds, variables, group_by, table)
-    if not table:
-        _check_sample_dims(ds, names, sample_dims)
-        if group_by is not None:
-            raise InputError(f"{SOURCE}: group_by applies to DataFrames; for a Dataset every dimension not "
-                             "in sample_dims is a cell dimension")
-    else:
-        ds = _check_columns(ds, names, group_by, time, split_by)
-    for argument, given in (("bounds", bounds), ("point_masses", point_masses), ("periods", periods),
-                            ("units", units), ("grid['limits']", (grid or {}).get("limits"))):
-        for v in (given or {}):
-            if v not in names:
-                raise InputError(f"{SOURCE}: {argument} names {v!r}, which is not one of variables = {names}"
-                                 + closest_names(v, names))
-
+    ds, names, table = _check_arguments(ds, variables, sample_dims, group_by, split_by, time,
+                                        bounds=bounds, point_masses=point_masses, periods=periods, units=units,
+                                        limits=(grid or {}).get("limits"))
     raw = _raw_workflow(names, sample_dims, group_by, split_by, bounds, point_masses, periods, sphere, units,
                         kernel, form, bandwidth, parametrization, boundary, engine, grid, products,
                         min_samples, max_samples, time, seed, table)
@@ -151,16 +132,23 @@ def densities(ds, *, variables=None, sample_dims=("time",), group_by=None, split
     except MvkdeError as exc:
         raise type(exc)(_argument_names(str(exc))) from None
 
+    out.attrs.update(_attributes(ds, wf, plan, settings, lazy))
+    if not lazy:
+        out = out.compute()
+        _refuse_if_nothing_fitted(plan, out["flags"].values)
+    return out
+
+
+def _attributes(ds, wf, plan, settings, lazy) -> dict:
+    """The global attributes of ``mvkde run``; the input is recorded by its dask token, not file hashes."""
+    import dask.base
+
     rec = _prov.record(wf, [], command_line=[SOURCE], extra={
         "inputs": [{"type": f"{type(ds).__module__}.{type(ds).__name__}", "dask_token": dask.base.tokenize(ds)}],
         "scheduler": "the caller's dask scheduler (computed lazily)" if lazy else "dask's default scheduler",
         "engines": None, "batch": None,
         "grid_limits": {v: [float(a[0]), float(a[-1])] for v, a in zip(plan.names, settings.axes)}})
-    out.attrs.update(global_attributes(wf, settings, plan.names, rec))
-    if not lazy:
-        out = out.compute()
-        _refuse_if_nothing_fitted(plan, out["flags"].values)
-    return out
+    return global_attributes(wf, settings, plan.names, rec)
 
 
 # ---------------------------------------------------------------------------
@@ -272,6 +260,30 @@ def _refuse_if_nothing_fitted(plan: Plan, flags) -> None:
 # ---------------------------------------------------------------------------
 # arguments
 # ---------------------------------------------------------------------------
+
+def _check_arguments(ds, variables, sample_dims, group_by, split_by, time, **by_variable):
+    """(ds, variable names, is_table): refuse, naming the argument, what the workflow schema cannot name."""
+    table = isinstance(ds, pd.DataFrame)
+    if isinstance(ds, xr.DataArray):
+        ds = ds.to_dataset(name=ds.name or "x0")
+    if not table and not isinstance(ds, xr.Dataset):
+        raise InputError(f"{SOURCE}: ds must be an xarray.Dataset or a pandas.DataFrame, got {type(ds).__name__}")
+    names = _variables(ds, variables, group_by, table)
+    if not table:
+        _check_sample_dims(ds, names, sample_dims)
+        if group_by is not None:
+            raise InputError(f"{SOURCE}: group_by applies to DataFrames; for a Dataset every dimension not "
+                             "in sample_dims is a cell dimension")
+    else:
+        ds = _check_columns(ds, names, group_by, time, split_by)
+    for argument, given in by_variable.items():
+        for v in (given or {}):
+            if v not in names:
+                argument = "grid['limits']" if argument == "limits" else argument
+                raise InputError(f"{SOURCE}: {argument} names {v!r}, which is not one of variables = {names}"
+                                 + closest_names(v, names))
+    return ds, names, table
+
 
 def _variables(ds, variables, group_by, table) -> list:
     if table:
