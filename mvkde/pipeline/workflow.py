@@ -407,14 +407,15 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "band_level": Key(0.9, _float(positive=True), "coverage of the bootstrap bands (0 < level < 1)"),
     },
     "output": {
-        "path": Key(REQUIRED, _str, "output netCDF file (relative to the current folder)"),
+        "path": Key(REQUIRED, _str, "output netCDF file, or a Zarr store when it ends in .zarr (needs the zarr "
+                                    "extra); relative to the current folder"),
         "dtype": Key("float64", _one_of("float64", "float32"), "storage type of the density"),
         "complevel": Key(4, _int(lo=0, hi=9), "zlib compression level (0 = none)"),
         "title": Key(None, _opt_str, "global title attribute"),
         "overwrite": Key(False, _bool, "replace an existing output (also --overwrite)"),
         "resume": Key(False, _bool, "keep finished blocks in a Zarr store next to the output "
                                     "(folder OUTPUT.resume) and skip them when the run is restarted; needs "
-                                    "the resume extra (zarr)"),
+                                    "the zarr extra (also installed as the resume extra)"),
     },
 }
 
