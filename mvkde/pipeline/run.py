@@ -30,7 +30,7 @@ from . import provenance as _prov
 from .blocks import FLAGS, check_settings, settings_for
 from .inputs import Plan, check_memory, estimate_sizes, human_bytes, prepare, resolve_axes, where_files
 from .output import (build_dataset, check_output_path, clean_stale_partials, encoding_for, global_attributes,
-                     write_output_atomic)
+                     is_zarr_path, write_output_atomic)
 from .resume import BlockStore, resume_store_path
 from .schedule import Progress, Scheduler, execute
 from .workflow import Workflow, load
@@ -159,6 +159,12 @@ def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out
     overwrite = overwrite or wf["output"]["overwrite"]
     target = check_output_path(wf["output"]["path"], overwrite=overwrite)
     clean_stale_partials(target)  # left by an earlier run that was killed while writing
+    if is_zarr_path(target):
+        try:
+            import zarr  # noqa: F401
+        except ImportError:
+            raise ConfigError(f"{wf.source}: output.path = {str(target)!r} names a Zarr store, which needs the "
+                              "zarr package: pip install 'mvkde[zarr]' (or name a .nc file)") from None
     plan = plan_run(wf)
     store_path = resume_store_path(target) if wf["output"]["resume"] else None
     if store_path is not None:
