@@ -1,8 +1,10 @@
 """mvkde: joint probability densities of environmental variables.
 
 Public names: :func:`fit` (one sample), :func:`fit_cells` (the batch door:
-many cells at once), :class:`DensityEstimate`, the error classes and the
-kernel table.  Everything else lives in submodules.
+many cells at once), :func:`densities` (the per-cell job from Python: an
+xarray Dataset in, a labelled Dataset out, lazily with dask),
+:class:`DensityEstimate`, the error classes and the kernel table.  Everything
+else lives in submodules.
 
 The public names are loaded on first use (module-level ``__getattr__``, PEP 562),
 so ``import mvkde`` and the command line's ``--version``/``--help`` do not pay
@@ -28,6 +30,7 @@ _LAZY: dict[str, tuple[str, str]] = {
     "kernel_table": (".kernels", "kernel_table"),
     "fit_cells": (".cells", "fit_cells"),
     "CellBatch": (".cells", "CellBatch"),
+    "densities": (".pipeline.densities", "densities"),
 }
 
 # Library submodules that ``import mvkde`` used to load eagerly: ``mvkde.engines``
@@ -39,6 +42,7 @@ __all__ = [
     "fit",
     "fit_cells",
     "CellBatch",
+    "densities",
     "DensityEstimate",
     "MvkdeError",
     "InputError",

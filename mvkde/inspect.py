@@ -65,16 +65,33 @@ class OutputLayout:
 
 
 def open_output(path) -> xr.Dataset:
-    """Open an output file (lazily) with a clear error for a missing or unreadable file."""
+    """Open an output (netCDF file or Zarr store, lazily) with a clear error for a missing or unreadable one."""
     p = Path(path)
     if not p.exists():
         raise InputError(f"output file {p} not found")
     if p.is_dir():
-        raise InputError(f"{p} is a folder: name an output file (.nc)")
+        if not any((p / name).exists() for name in ("zarr.json", ".zgroup", ".zattrs")):
+            raise InputError(f"{p} is a folder but not a Zarr store: name an output file (.nc) or store (.zarr)")
+        try:
+            import zarr  # noqa: F401
+        except ImportError:
+            raise InputError(f"{p} is a Zarr store: reading it needs the zarr package: "
+                             "pip install 'mvkde[zarr]'") from None
+        try:
+            return xr.open_dataset(p, engine="zarr", chunks={})
+        except (OSError, ValueError, KeyError) as exc:
+            raise InputError(f"cannot open {p} as a Zarr store: {exc}") from None
     try:
         return xr.open_dataset(p, engine="netcdf4", chunks={})
     except (OSError, ValueError) as exc:
         raise InputError(f"cannot open {p} as netCDF: {exc}") from None
+
+
+def _bytes_on_disk(p: Path) -> int:
+    """Size of a file, or of every file in a store (a folder)."""
+    if p.is_dir():
+        return sum(f.stat().st_size for f in p.rglob("*") if f.is_file())
+    return p.stat().st_size
 
 
 def _provenance(ds: xr.Dataset):
@@ -310,7 +327,7 @@ def summarise(ds: xr.Dataset, path=None) -> dict:
     p = Path(path) if path is not None else None
     summary = {
         "path": str(p.resolve()) if p else None,
-        "size_bytes": p.stat().st_size if p else None,
+        "size_bytes": _bytes_on_disk(p) if p else None,
         "title": attrs.get("title"),
         "dims": {str(k): int(v) for k, v in ds.sizes.items()},
         "cell_dims": lay.cell_dims,
@@ -457,6 +474,9 @@ def format_summary(s: dict) -> str:
         for o in p.get("overrides") or []:
             prow("override", str(o))
         for k, inp in enumerate(p.get("inputs") or []):
+            if "dask_token" in inp:  # made by mvkde.densities from an object in memory
+                prow("inputs" if k == 0 else "", f"{inp.get('type')} (dask token {inp['dask_token']})")
+                continue
             prow("inputs" if k == 0 else "", f"{inp.get('path')} ({_size(inp.get('size_bytes'))}, "
                                              f"sha256 {inp.get('sha256')})")
         for key in ("seed", "scheduler"):

@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..cells import CellProducts, fit_cells
-from ..errors import ConfigError, MvkdeError
+from ..errors import ConfigError, InputError, MvkdeError
 from ..estimator import fit
 from ..products.grid import node_weights
 from .readers import read_points
@@ -64,6 +64,8 @@ class CellSettings:
     n_cell_dims: int
     sphere: list | None = None
     products: CellProducts = field(default_factory=CellProducts)
+    #: refuse values outside the bounds inside the task (a lazy run has not looked at the data before)
+    refuse_outside_bounds: bool = False
 
     @property
     def d(self) -> int:
@@ -243,6 +245,8 @@ def process_block(values, codes, first_cell: int, tile_shape: tuple, settings: C
     """
     values = np.asarray(values, dtype=float)
     d = settings.d
+    if settings.refuse_outside_bounds:
+        _refuse_outside_bounds(values, settings)
     ncell = int(np.prod(tile_shape)) if tile_shape else 1
     vals = values.reshape(ncell, -1, d)
     codes = np.broadcast_to(np.asarray(codes), values.shape[:-1]).reshape(ncell, -1)
@@ -259,6 +263,25 @@ def process_block(values, codes, first_cell: int, tile_shape: tuple, settings: C
     result = BlockResult(arrays, paths={batch.path})
     _store_batch(result, batch, where, settings, first_cell)
     return result
+
+
+def _refuse_outside_bounds(values: np.ndarray, settings: CellSettings) -> None:
+    """The check ``inputs.resolve_axes`` makes before a run, made per block when nothing was read before."""
+    if not settings.bounds:
+        return
+    for j, pair in enumerate(settings.bounds):
+        if pair is None:
+            continue
+        x = values[..., j]
+        x = x[np.isfinite(x)]
+        if not x.size:
+            continue
+        lo, hi = float(x.min()), float(x.max())
+        if lo < pair[0] or hi > pair[1]:
+            side, value = ("down to", lo) if lo < pair[0] else ("up to", hi)
+            raise InputError(f"variable {settings.names[j]} has values {side} {value:.6g}, outside "
+                             f"bounds[{settings.names[j]!r}] = ({pair[0]:g}, {pair[1]:g}): fix the bounds "
+                             "or the data")
 
 
 def _store_batch(result: BlockResult, batch, where, settings: CellSettings, first_cell: int) -> None:

@@ -51,6 +51,7 @@ class Plan:
     variable_attrs: dict
     sample_counts: tuple = (0, 0, 0)           # min, median, max samples per cell before dropping NaN
     notes: list = field(default_factory=list)
+    origin: str = ""                           # how messages name the input when there are no files
 
     @property
     def cell_shape(self) -> tuple:
@@ -225,26 +226,41 @@ def _month_filter(inp) -> set | None:
 
 
 def _prepare_gridded(wf: Workflow, files) -> Plan:
-    inp, src = wf["input"], wf.source
-    names = wf.variables
-    if inp["group_by"] is not None:
-        raise ConfigError(f"{src}: input.group_by applies to tables (.csv, .parquet); for gridded inputs "
+    if wf["input"]["group_by"] is not None:
+        raise ConfigError(f"{wf.source}: input.group_by applies to tables (.csv, .parquet); for gridded inputs "
                           "every dimension not in input.sample_dims is a cell dimension")
     # one file: opened without dask, so the selection below stays lazy indexing and each
     # block's dask chunk becomes one hyperslab read (a file chunked along time is never
     # rechunked in memory); several files: dask chunks of whole cell columns per file
     ds = _io.open_gridded(files, chunks=None if len(files) == 1 else _file_chunks(wf, files))
+    origin = files[0].name + (" and the other files" if len(files) > 1 else "")
+    if len(files) > 1:
+        missing = [v for v in wf.variables if v not in ds.data_vars]
+        if not missing:
+            _io.check_units_agree(files, wf.variables)
+    return plan_from_dataset(wf, ds, files=files, origin=origin)
+
+
+def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "the Dataset",
+                      tile: tuple | None = None) -> Plan:
+    """The plan of a gridded input already opened as a Dataset (lazy or in memory).
+
+    ``mvkde run`` reaches it through :func:`prepare` (files opened lazily) and
+    :func:`mvkde.densities` with the caller's Dataset; ``tile`` (block shape
+    over the cell dims) overrides ``compute.block_size``: the caller's dask
+    chunks along the cell dims become the blocks.
+    """
+    inp, src = wf["input"], wf.source
+    names = wf.variables
+    files = list(files)
     missing = [v for v in names if v not in ds.data_vars]
     if missing:
-        raise InputError(f"input.variables: {', '.join(missing)} not in {files[0].name}"
-                         f"{' and the other files' if len(files) > 1 else ''}; data variables there: "
+        raise InputError(f"input.variables: {', '.join(missing)} not in {origin}; data variables there: "
                          f"{', '.join(map(str, ds.data_vars))}")
     for v in names:
         if ds[v].dtype.kind not in "fiu":
-            raise InputError(f"input.variables: {v} in {files[0].name} holds {ds[v].dtype} values, not "
+            raise InputError(f"input.variables: {v} in {origin} holds {ds[v].dtype} values, not "
                              "numbers: choose a numeric variable")
-    if len(files) > 1:
-        _io.check_units_agree(files, names)
     dims = ds[names[0]].dims
     for v in names[1:]:
         if set(ds[v].dims) != set(dims):
@@ -298,7 +314,9 @@ def _prepare_gridded(wf: Workflow, files) -> Plan:
 
     cell_shape = tuple(ds.sizes[d] for d in cell_dims)
     n_per_cell = int(np.prod([ds.sizes[d] for d in sample_dims]))
-    tile = _tile_shape(cell_shape, block_cells(wf, int(np.prod(cell_shape)), n_per_cell * len(names) * 8))
+    if tile is None:
+        tile = _tile_shape(cell_shape, block_cells(wf, int(np.prod(cell_shape)), n_per_cell * len(names) * 8))
+    tile = tuple(max(1, min(int(t), n)) for t, n in zip(tile, cell_shape))
     # chunk so that one block reads exactly its own hyperslab, all samples at once
     chunks = {d: t for d, t in zip(cell_dims, tile)}
     chunks.update({d: -1 for d in sample_dims})
@@ -326,7 +344,7 @@ def _prepare_gridded(wf: Workflow, files) -> Plan:
         per = per * (n // max(1, codes.size))
         counts = (int(per.min()), int(np.median(per)), int(per.max()))
     return Plan(wf, "netcdf", files, arr, codes, cell_dims, {d: ds[d] for d in cell_dims if d in ds.coords},
-                inp["split_by"], labels, tile, list(names), units, attrs, counts)
+                inp["split_by"], labels, tile, list(names), units, attrs, counts, origin=origin)
 
 
 def _file_chunks(wf: Workflow, files) -> dict:
@@ -361,9 +379,21 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
             raise ConfigError(f"{src}: {what} names column {col!r}, which is not in {files[0].name} "
                               f"(columns: {', '.join(header)})")
     table = _io.read_table(files, kind, wanted)
+    return plan_from_table(wf, table, files=files, kind=kind, origin=files[0].name)
+
+
+def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = "table",
+                    origin: str = "the DataFrame") -> Plan:
+    """The plan of a table already read (one density per ``input.group_by`` value)."""
+    inp = wf["input"]
+    names = wf.variables
+    files = list(files)
+    group = inp["group_by"]
+    tname = inp["time"]
+    needs_time = bool(inp["time_range"] or inp["months"] or inp["seasons"] or inp["split_by"])
     for v in names:
         if not pd.api.types.is_numeric_dtype(table[v]):
-            raise InputError(f"input.variables: column {v!r} of {files[0].name} is not numeric: list numeric "
+            raise InputError(f"input.variables: column {v!r} of {origin} is not numeric: list numeric "
                              "columns only, or clean the column")
     if needs_time:
         try:
@@ -420,7 +450,7 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
     units = [wf.variable(v)["units"] or "" for v in names]
     counts = (int(sizes.min()), int(np.median(sizes)), int(sizes.max()))
     plan = Plan(wf, kind, files, arr, codes, cell_dims, cell_coords, inp["split_by"], labels, tile,
-                list(names), units, {v: {} for v in names}, counts)
+                list(names), units, {v: {} for v in names}, counts, origin=origin)
     if inp["sample_dims"] != ["time"]:
         plan.notes.append("input.sample_dims is ignored for tables: every row of a group is a sample")
     if not any(units):
@@ -433,8 +463,13 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
 # the shared grid
 # ---------------------------------------------------------------------------
 
-def resolve_axes(plan: Plan, compute=None) -> list[np.ndarray]:
+def resolve_axes(plan: Plan, compute=None, *, check_bounds: bool = True) -> list[np.ndarray]:
     """Evaluation axes shared by every cell: grid.limits, else the pooled data range.
+
+    With ``check_bounds`` the same pass over the data refuses values outside
+    declared bounds before any fit; a lazy caller passes False (and asks the
+    block tasks to refuse them, ``CellSettings.refuse_outside_bounds``), so
+    that with every limit given nothing is read here.
 
     The pooled range is widened by 20 % each side (the kernel's reach beyond
     the data, common practice for a shared grid) and cut at the bounds; for
@@ -446,7 +481,7 @@ def resolve_axes(plan: Plan, compute=None) -> list[np.ndarray]:
     limits = dict(wf["grid"]["limits"])
     sphere = list(wf["estimator"].get("sphere") or [])
     todo = [v for v in plan.names if v not in limits and wf.variable(v)["period"] is None and v not in sphere]
-    bounded = [v for v in plan.names if wf.variable(v)["bounds"] is not None]
+    bounded = [v for v in plan.names if wf.variable(v)["bounds"] is not None] if check_bounds else []
     for v in plan.names:
         if wf.variable(v)["period"] is not None and v not in limits:
             limits[v] = [0.0, wf.variable(v)["period"]]
@@ -508,6 +543,8 @@ def resolve_axes(plan: Plan, compute=None) -> list[np.ndarray]:
 
 
 def where_files(plan: Plan) -> str:
+    if not plan.files:
+        return plan.origin or "the input"
     return plan.files[0].name + (f" and {len(plan.files) - 1} more file(s)" if len(plan.files) > 1 else "")
 
 

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import glob
 import os
+import shutil
 from pathlib import Path
 
 import numpy as np
@@ -20,6 +21,7 @@ from ..directional import node_areas_km2
 from ..estimator import CAUTION
 from ..errors import InputError
 from ..units import density_units
+from . import provenance as _prov
 from .blocks import FLAGS, CellSettings
 from .inputs import Plan
 from .products import add_cell_products, add_grid_products
@@ -127,6 +129,28 @@ def _failure_reasons(plan: Plan, failures) -> np.ndarray:
     return reasons.reshape(plan.cell_shape + (plan.n_splits,)).astype(str)
 
 
+def global_attributes(wf, settings: CellSettings, names: list, rec: dict) -> dict:
+    """The global attributes of an output (the same from ``mvkde run`` and :func:`mvkde.densities`)."""
+    est = wf["estimator"]
+    return {
+        "title": wf["output"]["title"] or ("joint probability density of " + ", ".join(names)),
+        "Conventions": "CF-1.8",
+        "source": f"mvkde {rec['software']['mvkde']}: multivariate kernel density estimation",
+        "history": _prov.history_line(rec),
+        "provenance": _prov.to_json(rec),
+        "caution": CAUTION,
+        "kernel": est["kernel"], "kernel_form": est["form"], "bandwidth_method": est["bandwidth"],
+        "bandwidth_parametrization": est["parametrization"],
+        "boundary": settings.boundary or "none",
+        "min_samples": int(wf["input"]["min_samples"]),
+    }
+
+
+def is_zarr_path(path) -> bool:
+    """An output path naming a Zarr store (``output.path`` ending in ``.zarr``)."""
+    return str(path).rstrip("/").lower().endswith(".zarr")
+
+
 def encoding_for(ds: xr.Dataset, plan: Plan, output: dict) -> dict:
     """Compressed, chunked netCDF4 encoding: one chunk = one block of cells with its whole grid."""
     enc = {}
@@ -185,7 +209,10 @@ def clean_stale_partials(path) -> list[Path]:
         if not pid_text.isdigit() or int(pid_text) == os.getpid() or _pid_alive(int(pid_text)):
             continue
         try:
-            f.unlink()
+            if f.is_dir() and not f.is_symlink():  # a Zarr store
+                shutil.rmtree(f)
+            else:
+                f.unlink()
             removed.append(f)
         except OSError:
             pass
@@ -197,8 +224,11 @@ def check_output_path(path, *, overwrite: bool = False) -> Path:
     path = Path(path)
     if path.exists() and not overwrite:
         raise InputError(f"output {path} exists: pass --overwrite (or choose another output.path)")
-    if path.exists() and path.is_dir():
+    if path.exists() and path.is_dir() and not (is_zarr_path(path) and _looks_like_zarr(path)):
         raise InputError(f"output.path {path} is a folder: name a file, e.g. {path / 'density.nc'}")
+    if path.exists() and not path.is_dir() and is_zarr_path(path):
+        raise InputError(f"output.path {path} is a file, not a Zarr store: remove it or choose another "
+                         "output.path")
     folder = path.parent if str(path.parent) else Path(".")
     try:
         folder.mkdir(parents=True, exist_ok=True)
@@ -224,3 +254,65 @@ def write_netcdf_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encodi
         if tmp.exists():
             tmp.unlink()
     return path
+
+
+def _looks_like_zarr(path: Path) -> bool:
+    return any((path / name).exists() for name in ("zarr.json", ".zgroup", ".zattrs"))
+
+
+def zarr_encoding(ds: xr.Dataset, netcdf_encoding: dict) -> dict:
+    """The netCDF encoding translated for Zarr: same chunks (one block of cells) and storage types."""
+    enc = {}
+    for name, e in (netcdf_encoding or {}).items():
+        z = {}
+        if "chunksizes" in e:
+            z["chunks"] = e["chunksizes"]
+        if "dtype" in e:
+            z["dtype"] = e["dtype"]
+        if "_FillValue" in e:
+            z["_FillValue"] = e["_FillValue"]
+        enc[name] = z
+    return enc
+
+
+def write_zarr_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding=None) -> Path:
+    """Write ``ds`` as a Zarr store at ``path``: a temporary store in the same folder, renamed when complete.
+
+    The store is a folder, so an existing output is first moved aside and
+    removed only once the new store is in place; a write that fails or is
+    killed leaves no store at ``path`` (the temporary one is removed here, or
+    by the next run's :func:`clean_stale_partials`).
+    """
+    try:
+        import zarr  # noqa: F401
+    except ImportError:
+        raise InputError(f"output.path {path} asks for a Zarr store, which needs the zarr package: "
+                         "pip install 'mvkde[zarr]' (or name a .nc file)") from None
+    path = check_output_path(path, overwrite=overwrite)
+    clean_stale_partials(path)
+    tmp = temporary_path(path)
+    old = path.with_name(f".{path.name}.{os.getpid()}.old.partial")
+    try:
+        if tmp.exists():
+            shutil.rmtree(tmp)
+        # Zarr format 2: read by every zarr and xarray release, and its string and
+        # consolidated-metadata encodings are stable (zarr warns that format 3 ones are not yet)
+        ds.to_zarr(tmp, mode="w", encoding=zarr_encoding(ds, encoding), consolidated=True, zarr_format=2)
+        if path.exists():
+            os.replace(path, old)
+        os.replace(tmp, path)
+    except OSError as exc:  # disk full, quota, a folder removed under the run
+        raise InputError(f"cannot write output {path}: {exc.strerror or exc}: free space or choose another "
+                         "output.path") from None
+    finally:
+        for leftover in (tmp, old):
+            if leftover.exists():
+                shutil.rmtree(leftover, ignore_errors=True)
+    return path
+
+
+def write_output_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding=None) -> Path:
+    """netCDF, or a Zarr store when ``path`` ends in ``.zarr``; either way complete or absent."""
+    if is_zarr_path(path):
+        return write_zarr_atomic(ds, path, overwrite=overwrite, encoding=encoding)
+    return write_netcdf_atomic(ds, path, overwrite=overwrite, encoding=encoding)

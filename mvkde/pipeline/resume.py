@@ -32,7 +32,7 @@ class BlockStore:
             import zarr
         except ImportError:
             raise ConfigError(f"{plan.workflow.source}: output.resume = true needs the zarr package: "
-                              "pip install 'mvkde[resume]' (or set output.resume = false)") from None
+                              "pip install 'mvkde[zarr]' (or set output.resume = false)") from None
         self.zarr = zarr
         self.path = Path(path)
         self.markers = self.path / "done"

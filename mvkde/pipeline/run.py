@@ -12,7 +12,7 @@ Reading a run from ``mvkde run`` down::
         schedule.execute                one blocks.process_block per block -> mvkde.cells.fit_cells
         output.build_dataset            labelled Dataset (+ products.add_*_products)
       provenance.record                 versions, inputs' SHA-256, resolved workflow
-      output.write_netcdf_atomic        temporary file -> rename
+      output.write_output_atomic        temporary file (netCDF) or store (.zarr) -> rename
 
 ``mvkde check`` is :func:`plan_run` and :func:`describe_plan`.
 """
@@ -31,7 +31,8 @@ from ..errors import MvkdeError
 from ..estimator import fit
 from .blocks import COARSE_SPACING, FLAGS, check_settings, settings_for
 from .inputs import Plan, check_memory, estimate_sizes, human_bytes, prepare, resolve_axes, where_files
-from .output import check_output_path, clean_stale_partials, encoding_for, build_dataset, write_netcdf_atomic
+from .output import (build_dataset, check_output_path, clean_stale_partials, encoding_for, global_attributes,
+                     is_zarr_path, write_output_atomic)
 from .resume import BlockStore, resume_store_path
 from .schedule import Progress, Scheduler, execute
 from .workflow import Workflow, load
@@ -202,6 +203,12 @@ def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out
     overwrite = overwrite or wf["output"]["overwrite"]
     target = check_output_path(wf["output"]["path"], overwrite=overwrite)
     clean_stale_partials(target)  # left by an earlier run that was killed while writing
+    if is_zarr_path(target):
+        try:
+            import zarr  # noqa: F401
+        except ImportError:
+            raise ConfigError(f"{wf.source}: output.path = {str(target)!r} names a Zarr store, which needs the "
+                              "zarr package: pip install 'mvkde[zarr]' (or name a .nc file)") from None
     plan = plan_run(wf)
     store_path = resume_store_path(target) if wf["output"]["resume"] else None
     if store_path is not None:
@@ -209,25 +216,13 @@ def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out
             import zarr  # noqa: F401
         except ImportError:
             raise ConfigError(f"{wf.source}: output.resume = true needs the zarr package: "
-                              "pip install 'mvkde[resume]' (or set output.resume = false)") from None
+                              "pip install 'mvkde[zarr]' (or set output.resume = false)") from None
     ds, plan, settings, summary = run(wf, progress_stream=progress_stream, plan=plan, store_path=store_path)
     rec = _prov.record(wf, plan.files, command_line=command_line, extra={
         "scheduler": summary["scheduler"], "engines": summary["engines"], "batch": summary["paths"],
         "grid_limits": {v: [float(a[0]), float(a[-1])] for v, a in zip(plan.names, settings.axes)}})
-    est = wf["estimator"]
-    ds.attrs.update({
-        "title": wf["output"]["title"] or ("joint probability density of " + ", ".join(plan.names)),
-        "Conventions": "CF-1.8",
-        "source": f"mvkde {rec['software']['mvkde']}: multivariate kernel density estimation",
-        "history": _prov.history_line(rec),
-        "provenance": _prov.to_json(rec),
-        "caution": CAUTION,
-        "kernel": est["kernel"], "kernel_form": est["form"], "bandwidth_method": est["bandwidth"],
-        "bandwidth_parametrization": est["parametrization"],
-        "boundary": settings.boundary or "none",
-        "min_samples": int(wf["input"]["min_samples"]),
-    })
-    write_netcdf_atomic(ds, target, overwrite=overwrite, encoding=encoding_for(ds, plan, wf["output"]))
+    ds.attrs.update(global_attributes(wf, settings, plan.names, rec))
+    write_output_atomic(ds, target, overwrite=overwrite, encoding=encoding_for(ds, plan, wf["output"]))
     if summary["store"] is not None:
         summary["store"].remove()  # the output is complete: the finished blocks are no longer needed
     fc = summary["flag_counts"]

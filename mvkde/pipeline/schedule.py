@@ -157,14 +157,19 @@ class Scheduler:
 # the blocks of a run
 # ---------------------------------------------------------------------------
 
-def block_tasks(plan: Plan, settings: CellSettings, skip=()) -> list:
-    """One delayed :func:`process_block` per block of cells (except the blocks in ``skip``)."""
+def block_tasks(plan: Plan, settings: CellSettings, skip=(), token: str | None = None) -> list:
+    """One delayed :func:`process_block` per block of cells (except the blocks in ``skip``).
+
+    ``mvkde run`` gathers them with :func:`execute`; :func:`mvkde.densities`
+    assembles them into the dask arrays of a lazy Dataset.  Keys end in
+    ``token`` (default: unique to the call).
+    """
     import uuid
 
     import dask
 
     # a run-unique token: two runs on one shared dask cluster must never share keys
-    token = uuid.uuid4().hex[:12]
+    token = token or uuid.uuid4().hex[:12]
     tasks = []
     data = plan.values.data
     nd = len(plan.cell_dims)

@@ -27,7 +27,7 @@ from .. import boundary, engines, kernels
 from ..bandwidth import PARAMETRIZATIONS, SELECTORS, BandwidthMatrix
 from ..errors import ConfigError, MvkdeError, closest_names
 
-__all__ = ["SCHEMA", "Workflow", "load", "loads", "apply_override", "SEASONS", "REQUIRED",
+__all__ = ["SCHEMA", "Workflow", "load", "loads", "from_arguments", "apply_override", "SEASONS", "REQUIRED",
            "estimator_choices", "key_reference"]
 
 SEASONS = ("DJF", "MAM", "JJA", "SON")  # meteorological seasons (common practice)
@@ -409,14 +409,15 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "band_level": Key(0.9, _float(positive=True), "coverage of the bootstrap bands (0 < level < 1)"),
     },
     "output": {
-        "path": Key(REQUIRED, _str, "output netCDF file (relative to the current folder)"),
+        "path": Key(REQUIRED, _str, "output netCDF file, or a Zarr store when it ends in .zarr (needs the zarr "
+                                    "extra); relative to the current folder"),
         "dtype": Key("float64", _one_of("float64", "float32"), "storage type of the density"),
         "complevel": Key(4, _int(lo=0, hi=9), "zlib compression level (0 = none)"),
         "title": Key(None, _opt_str, "global title attribute"),
         "overwrite": Key(False, _bool, "replace an existing output (also --overwrite)"),
         "resume": Key(False, _bool, "keep finished blocks in a Zarr store next to the output "
                                     "(folder OUTPUT.resume) and skip them when the run is restarted; needs "
-                                    "the resume extra (zarr)"),
+                                    "the zarr extra (also installed as the resume extra)"),
     },
 }
 
@@ -435,17 +436,18 @@ VARIABLE_KEYS: dict[str, Key] = {
 class Workflow:
     """A validated workflow: ``spec`` is the resolved dict with every default."""
 
-    def __init__(self, spec: dict, path: Path | None, overrides: list[str]):
+    def __init__(self, spec: dict, path: Path | None, overrides: list[str], name: str | None = None):
         self.spec = spec
         self.path = path
         self.overrides = list(overrides)
+        self.name = name
 
     def __getitem__(self, section):
         return self.spec[section]
 
     @property
     def source(self) -> str:
-        return str(self.path) if self.path else "<workflow>"
+        return str(self.path) if self.path else (self.name or "<workflow>")
 
     @property
     def variables(self) -> list[str]:
@@ -519,6 +521,11 @@ def loads(text: str, source=None, overrides=()) -> Workflow:
         apply_override(raw, item, name)
     spec = _validate(raw, name, overridden={_override_key(o) for o in overrides})
     return Workflow(spec, Path(source) if source else None, list(overrides))
+
+
+def from_arguments(raw: dict, name: str) -> Workflow:
+    """Validate a workflow given as a dict in the TOML layout (built from a function's arguments)."""
+    return Workflow(_validate(raw, name), None, [], name=name)
 
 
 def _override_key(item: str) -> str:
