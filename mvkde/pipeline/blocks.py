@@ -224,6 +224,7 @@ def _empty_arrays(ncell: int, S: int, settings: CellSettings) -> dict:
         "grid_mass": np.full((ncell, S), np.nan),
         "bandwidth_converged": np.zeros((ncell, S), dtype=np.int8),
         "flags": np.zeros((ncell, S), dtype=np.uint8),
+        "failure_reason": np.full((ncell, S), "", dtype=object),
     }
     if j is not None:
         out["point_mass_probability"] = np.full((ncell, S), np.nan)
@@ -300,6 +301,7 @@ def _store_batch(result: BlockResult, batch, where, settings: CellSettings, firs
             arrays[name][c, s] = value[k]
         if batch.errors[k] is not None:
             arrays["flags"][c, s] |= FLAGS["fit_failed"]
+            arrays["failure_reason"][c, s] = batch.errors[k]
             result.failures.append((first_cell + c, s, batch.errors[k]))
             continue
         arrays["density"][c, s] = batch.density[k]

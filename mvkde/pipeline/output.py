@@ -32,8 +32,7 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
 
     ``results`` is what :func:`~mvkde.pipeline.schedule.execute` returns.
     """
-    failures = results["failures"]
-    results = dict(results["arrays"], failures=failures)
+    results = results["arrays"]
     names, units = plan.names, plan.units
     cdims = list(plan.cell_dims)
     split = [plan.split_dim] if plan.split_dim else []
@@ -110,23 +109,14 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
                 "long_name": "density of " + ", ".join(others) + f" on the point mass of {names[j]} "
                              f"(integrates to point_mass_probability)",
                 "units": density_units([u for k, u in enumerate(units) if k != j])})
-    if results["failures"]:
-        data_vars["failure_reason"] = (lead, squeeze(_failure_reasons(plan, results["failures"])), {
-            "long_name": "why the estimator refused the cell (empty where it got a density)"})
+    data_vars["failure_reason"] = (lead, squeeze(np.asarray(results["failure_reason"], dtype=object)), {
+        "long_name": "why the estimator refused the cell (empty where it got a density)"})
     ds = xr.Dataset(data_vars, coords=coords)
     add_cell_products(ds, results, settings, lead, squeeze)
     add_grid_products(ds, plan.workflow["products"], names, j,
                       settings.bounds[j][0] if j is not None else float("nan"),
                       sphere=(names.index(sphere[0]), names.index(sphere[1])) if sphere else None)
     return ds
-
-
-def _failure_reasons(plan: Plan, failures) -> np.ndarray:
-    """Per (cell, split): the estimator's message for a refused cell, '' elsewhere."""
-    reasons = np.full((plan.n_cells, plan.n_splits), "", dtype=object)
-    for cell, split, message in failures:
-        reasons[cell, split] = message
-    return reasons.reshape(plan.cell_shape + (plan.n_splits,)).astype(str)
 
 
 def global_attributes(wf, settings: CellSettings, names: list, rec: dict) -> dict:
@@ -297,6 +287,9 @@ def write_zarr_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding
             shutil.rmtree(tmp)
         # Zarr format 2: read by every zarr and xarray release, and its string and
         # consolidated-metadata encodings are stable (zarr warns that format 3 ones are not yet)
+        # text variables (failure_reason) as fixed-width unicode: Zarr format 2 stores no Python objects
+        text = {name: ds[name].astype(str) for name, var in ds.data_vars.items() if var.dtype.kind == "O"}
+        ds = ds.assign(text) if text else ds
         ds.to_zarr(tmp, mode="w", encoding=zarr_encoding(ds, encoding), consolidated=True, zarr_format=2)
         if path.exists():
             os.replace(path, old)

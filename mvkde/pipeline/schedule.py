@@ -213,7 +213,7 @@ def execute(plan: Plan, settings: CellSettings, scheduler: Scheduler, progress: 
         tshape = tuple(t.stop - t.start for t in tile)
         for name, arr in res.arrays.items():
             if name not in arrays:
-                fill = np.nan if arr.dtype.kind == "f" else 0
+                fill = np.nan if arr.dtype.kind == "f" else "" if arr.dtype.kind == "O" else 0
                 arrays[name] = np.full(ncell_shape + arr.shape[1:], fill, dtype=arr.dtype)
             arrays[name][tile] = arr.reshape(tshape + arr.shape[1:])
         failures.extend(res.failures)
