@@ -57,6 +57,9 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="plugin", parametr
         sphere=None) -> "DensityEstimate":
     """Fit a multivariate kernel density estimate.
 
+    (Long because of this docstring: the body is a short sequence of steps,
+    each a function below.)
+
     Parameters
     ----------
     data : (n, d) array, pandas DataFrame or xarray Dataset

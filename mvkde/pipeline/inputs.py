@@ -275,42 +275,8 @@ def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "
     clash = set(names) & set(cell_dims)
     if clash:
         raise InputError(f"variable name(s) {sorted(clash)} equal cell dimension names: rename them")
-    ds = ds[names]
+    ds = _select(ds[names], wf, dims, sample_dims, origin)
     tname = inp["time"]
-    needs_time = inp["time_range"] or inp["months"] or inp["seasons"] or inp["split_by"]
-    if needs_time and tname not in ds.coords:
-        raise ConfigError(f"{src}: input.time = {tname!r} is not a coordinate of the input "
-                          f"(coordinates: {', '.join(map(str, ds.coords))}); time selection and "
-                          "input.split_by need it")
-    if inp["split_by"] and tname not in sample_dims:
-        raise ConfigError(f"{src}: input.split_by needs the time dimension {tname!r} in input.sample_dims")
-    if needs_time and not np.issubdtype(ds[tname].dtype, np.datetime64) and ds[tname].dtype != object:
-        _refuse_without_dates(src, inp, tname, ds[tname], files[0].name)
-    if inp["time_range"]:
-        start, end = inp["time_range"]
-        try:
-            ds = ds.sel({tname: slice(start, end)})
-        except (KeyError, TypeError, ValueError) as exc:
-            raise ConfigError(f"{src}: input.time_range = {inp['time_range']} cannot select along "
-                              f"{tname!r}: {exc}") from None
-    keep_months = _month_filter(inp)
-    if keep_months is not None:
-        months = _months_of(ds[tname].values)
-        ds = ds.isel({tname: np.flatnonzero(np.isin(months, list(keep_months)))})
-    for coord, (lo, hi) in inp["box"].items():
-        if coord not in ds.coords:
-            raise ConfigError(f"{src}: input.box.{coord}: no coordinate {coord!r} in the input "
-                              f"(coordinates: {', '.join(map(str, ds.coords))})")
-        c = ds[coord]
-        if c.ndim != 1:
-            raise ConfigError(f"{src}: input.box.{coord}: the coordinate is {c.ndim}-dimensional; a box "
-                              "needs 1-D coordinates")
-        keep = np.flatnonzero((c.values >= lo) & (c.values <= hi))
-        ds = ds.isel({c.dims[0]: keep})
-    for dname in dims:
-        if ds.sizes[dname] == 0:
-            raise InputError(f"the selection (input.time_range / months / seasons / box) leaves no data "
-                             f"along {dname!r}: widen it")
 
     cell_shape = tuple(ds.sizes[d] for d in cell_dims)
     n_per_cell = int(np.prod([ds.sizes[d] for d in sample_dims]))
@@ -345,6 +311,47 @@ def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "
         counts = (int(per.min()), int(np.median(per)), int(per.max()))
     return Plan(wf, "netcdf", files, arr, codes, cell_dims, {d: ds[d] for d in cell_dims if d in ds.coords},
                 inp["split_by"], labels, tile, list(names), units, attrs, counts, origin=origin)
+
+
+def _select(ds: xr.Dataset, wf: Workflow, dims, sample_dims, origin: str) -> xr.Dataset:
+    """The workflow's selection: time range, months or seasons, coordinate box (refused without dates)."""
+    inp, src = wf["input"], wf.source
+    tname = inp["time"]
+    needs_time = inp["time_range"] or inp["months"] or inp["seasons"] or inp["split_by"]
+    if needs_time and tname not in ds.coords:
+        raise ConfigError(f"{src}: input.time = {tname!r} is not a coordinate of the input "
+                          f"(coordinates: {', '.join(map(str, ds.coords))}); time selection and "
+                          "input.split_by need it")
+    if inp["split_by"] and tname not in sample_dims:
+        raise ConfigError(f"{src}: input.split_by needs the time dimension {tname!r} in input.sample_dims")
+    if needs_time and not np.issubdtype(ds[tname].dtype, np.datetime64) and ds[tname].dtype != object:
+        _refuse_without_dates(src, inp, tname, ds[tname], origin)
+    if inp["time_range"]:
+        start, end = inp["time_range"]
+        try:
+            ds = ds.sel({tname: slice(start, end)})
+        except (KeyError, TypeError, ValueError) as exc:
+            raise ConfigError(f"{src}: input.time_range = {inp['time_range']} cannot select along "
+                              f"{tname!r}: {exc}") from None
+    keep_months = _month_filter(inp)
+    if keep_months is not None:
+        months = _months_of(ds[tname].values)
+        ds = ds.isel({tname: np.flatnonzero(np.isin(months, list(keep_months)))})
+    for coord, (lo, hi) in inp["box"].items():
+        if coord not in ds.coords:
+            raise ConfigError(f"{src}: input.box.{coord}: no coordinate {coord!r} in the input "
+                              f"(coordinates: {', '.join(map(str, ds.coords))})")
+        c = ds[coord]
+        if c.ndim != 1:
+            raise ConfigError(f"{src}: input.box.{coord}: the coordinate is {c.ndim}-dimensional; a box "
+                              "needs 1-D coordinates")
+        keep = np.flatnonzero((c.values >= lo) & (c.values <= hi))
+        ds = ds.isel({c.dims[0]: keep})
+    for dname in dims:
+        if ds.sizes[dname] == 0:
+            raise InputError(f"the selection (input.time_range / months / seasons / box) leaves no data "
+                             f"along {dname!r}: widen it")
+    return ds
 
 
 def _file_chunks(wf: Workflow, files) -> dict:
