@@ -424,11 +424,9 @@ def bootstrap_exceedance_cells(samples, H, thresholds, *, axes, replicates=200, 
     """Bootstrap replicates of the joint exceedance at ``thresholds`` for a block of cells.
 
     Each cell's sample is resampled with replacement ``replicates`` times;
-    each replicate is refitted with its cell's matrix ``H[c]`` held fixed
-    and its exceedance integrated from its grid (:func:`exceedance_from_grids`).
-    Cells x replicates form one list of samples for the batch door
-    (:func:`densities_with_bandwidth_cells`), processed in chunks so the
-    replicate grids never all sit in memory.
+    each replicate is smoothed with its cell's matrix ``H[c]`` held fixed and
+    its exceedance integrated from its grid exactly as
+    :func:`exceedance_from_grids` integrates the point estimate.
 
     Parameters
     ----------
@@ -436,7 +434,7 @@ def bootstrap_exceedance_cells(samples, H, thresholds, *, axes, replicates=200, 
     H : array (C, d, d)
     thresholds : array (m, d)
     axes : list of ndarray
-        The grid the exceedance is integrated on (use the one the point
+        The grid the exceedance is integrated on (the one the point
         estimate uses, so replicates and estimate agree in construction).
     replicates : int
     seed : int, optional
@@ -449,18 +447,61 @@ def bootstrap_exceedance_cells(samples, H, thresholds, *, axes, replicates=200, 
     Returns
     -------
     ndarray, shape (C, replicates, m); NaN for a cell that could not be fitted.
+
+    Notes
+    -----
+    Two paths give the same numbers:
+
+    * Without bounds, point masses or directions the grid exceedance is a
+      linear functional of the density, and the density with H fixed is a
+      weighted sum of one kernel per sample point, so a replicate's
+      exceedance is sum_i (N_bi / n) q_i(t), with N_bi the multinomial
+      resampling counts and q_i(t) = sum_nodes W_t(node) K_H(node - X_i) the
+      grid-integrated exceedance of the kernel on point i (W_t: the
+      non-negative node weights of the cumulative trapezoid sums and the
+      interpolation at t).  q is one weighted kernel sum per cell and
+      threshold (through :func:`mvkde.fit` with the nodes as data and W_t as
+      weights); the replicates are then one (replicates x n) @ (n x m)
+      product.  No replicate grid is built.
+    * Otherwise the replicates of all cells form one list of samples sent
+      through the batch door (:func:`mvkde.cells.fit_cells`, via
+      :func:`densities_with_bandwidth_cells`) in chunks, and each replicate
+      grid is integrated.
     """
     replicates = int(replicates)
     if replicates < 2:
         raise InputError(f"replicates must be at least 2, got {replicates}")
     C = len(samples)
     t = np.atleast_2d(np.asarray(thresholds, dtype=float))
+    axes = [np.asarray(a, dtype=float) for a in axes]
     H = np.asarray(H, dtype=float)
     keys = list(keys) if keys is not None else [(c,) for c in range(C)]
     base = [] if seed is None else [int(seed)]
+    out = np.full((C, replicates, t.shape[0]), np.nan)
+
+    def draws(c, n):
+        rng = np.random.default_rng(base + [int(v) for v in np.atleast_1d(keys[c])] + [7])
+        return rng.integers(0, n, size=(replicates, n))
+
+    if _is_plain(bounds, point_masses, periods, sphere):
+        weights = [_node_weights_at(axes, row) for row in t]
+        for c in range(C):
+            x = np.asarray(samples[c], dtype=float)
+            if not np.all(np.isfinite(H[c])):
+                continue
+            try:
+                q = np.column_stack([_kernel_mass(x, H[c], axes, w, kernel, form) for w in weights])
+            except (MvkdeError, np.linalg.LinAlgError):
+                continue
+            n = x.shape[0]
+            idx = draws(c, n)
+            counts = np.bincount((idx + n * np.arange(replicates)[:, None]).ravel(),
+                                 minlength=replicates * n).reshape(replicates, n)
+            out[c] = counts @ q / n
+        return out
+
     j = None if point_masses is None else next((k for k, v in enumerate(point_masses) if v is not None), None)
     bound = None if j is None else float(bounds[j][0])
-    out = np.full((C, replicates, t.shape[0]), np.nan)
     settings = dict(kernel=kernel, form=form, bounds=bounds, boundary=boundary, point_masses=point_masses,
                     periods=periods, sphere=sphere, engine=engine, names=names, units=units)
     per_chunk = max(1, _CHUNK // replicates)
@@ -469,9 +510,7 @@ def bootstrap_exceedance_cells(samples, H, thresholds, *, axes, replicates=200, 
         reps, hs, groups = [], [], []
         for c in cells:
             x = np.asarray(samples[c], dtype=float)
-            rng = np.random.default_rng(base + [int(v) for v in np.atleast_1d(keys[c])] + [7])
-            idx = rng.integers(0, x.shape[0], size=(replicates, x.shape[0]))
-            reps.extend(x[i] for i in idx)
+            reps.extend(x[i] for i in draws(c, x.shape[0]))
             hs.extend([H[c]] * replicates)
             groups.extend([c] * replicates)
         res = densities_with_bandwidth_cells(reps, np.array(hs), axes=axes, groups=groups, **settings)
@@ -480,6 +519,35 @@ def bootstrap_exceedance_cells(samples, H, thresholds, *, axes, replicates=200, 
                                    point_mass_bound=bound)
         out[cells] = ex.reshape(len(cells), replicates, t.shape[0])
     return out
+
+
+def _node_weights_at(axes, t_row) -> np.ndarray:
+    """W_t on the grid: exceedance_from_grids(f) at t equals sum(W_t * f).
+
+    The cumulative trapezoid sums and the multilinear interpolation act on
+    each axis separately, so W_t is the outer product of one weight vector
+    per axis (each the 1-D exceedance functional applied to unit vectors).
+    """
+    out = np.ones(())
+    for a, tj in zip(axes, t_row):
+        w = _upper_at(np.eye(a.size), [a], np.array([[tj]]))[:, 0]
+        out = np.multiply.outer(out, w)
+    return out
+
+
+def _kernel_mass(x, H, axes, W, kernel, form) -> np.ndarray:
+    """q_i = sum_nodes W(node) K_H(node - x_i) for every row x_i (K symmetric: a weighted kernel sum
+    with the grid nodes as data, evaluated at the sample)."""
+    from .estimator import fit
+
+    keep = W > 0
+    total = float(W.sum())
+    if keep.sum() < len(axes) + 1 or total <= 0:
+        return np.zeros(x.shape[0])
+    mesh = np.meshgrid(*axes, indexing="ij")
+    nodes = np.column_stack([m[keep] for m in mesh])
+    est = fit(nodes, kernel=kernel, form=form, bandwidth=H, weights=W[keep] / total, engine="exact")
+    return est.pdf(x) * total
 
 
 def probability_ratio_cells(reference_exceedance, other_exceedance, reference_replicates=None,
