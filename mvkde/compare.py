@@ -341,7 +341,10 @@ def difference_test_cells(reference_density, other_density, n_reference, n_other
     mean = 0.5 * (np.maximum(f_r, 0.0) + np.maximum(f_o, 0.0))
     with np.errstate(invalid="ignore", divide="ignore"):
         peak = np.nanmax(mean.reshape(C, -1), axis=1).reshape(lead) if mean.size else np.zeros(lead)
-        var = float(roughness) / root * (np.maximum(f_r, 0.0) / n_r + np.maximum(f_o, 0.0) / n_o)
+        # the variance under the null, with the pooled density (n_r f_r + n_o f_o) / (n_r + n_o) for the
+        # common f: a score-type statistic whose denominator does not move with a chance low f_o or f_r
+        pooled = (n_r * np.maximum(f_r, 0.0) + n_o * np.maximum(f_o, 0.0)) / (n_r + n_o)
+        var = float(roughness) / root * pooled * (1.0 / n_r + 1.0 / n_o)
         tested = (mean >= floor * peak) & (peak > 0) & (var > 0) & np.isfinite(diff) & np.isfinite(var)
         z = np.where(tested, diff / np.sqrt(np.where(tested, var, 1.0)), np.nan)
     p = np.where(tested, 2.0 * stats.norm.sf(np.abs(np.nan_to_num(z))), np.nan)
