@@ -140,7 +140,9 @@ def full_sample(est) -> np.ndarray:
 def _settings(est) -> dict:
     """Keyword arguments of :func:`fit` / :func:`fit_cells` that rebuild an estimate's kind."""
     opts = est._fit_options(list(range(est.d)))
-    out = dict(kernel=est.kernel.name, form=est.kernel.form, bounds=opts["bounds"], boundary=opts["boundary"],
+    # est.bounds is the box of the continuous part (above a point-mass threshold): the support's are wanted
+    bounds = [tuple(b) for b in est.support.bounds]
+    out = dict(kernel=est.kernel.name, form=est.kernel.form, bounds=bounds, boundary=opts["boundary"],
                periods=opts.get("periods"), sphere=opts.get("sphere"), names=list(est.names),
                units=list(est.units), engine=est.engine)
     pm = est.support.point_mass
