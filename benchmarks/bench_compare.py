@@ -21,7 +21,7 @@ def compare_block(smoke: bool):
     (fit_cells with the cell's H, which applies a given matrix cell by cell) and
     integrated on their grids, on a few cells, extrapolated to the block.
     """
-    cells, n, replicates, size, sub = (6, 500, 20, 32, 2) if smoke else (100, 3650, 200, 64, 2)
+    cells, n, replicates, size, sub = (4, 300, 10, 24, 1) if smoke else (100, 3650, 200, 64, 2)
     rng = np.random.default_rng(4)
     cov = np.array([[1.0, 0.5], [0.5, 1.0]])
     ref = [rng.multivariate_normal([0.0, 0.0], cov, size=n) for _ in range(cells)]

@@ -24,11 +24,17 @@ cancels; with two different matrices it would not, and the test would
 reject where the two estimates are merely smoothed differently.  The
 statistic is
 
-    z(x) = (f_2_hat(x) - f_1_hat(x)) / sqrt(R(K) |H|^{-1/2} [f_1_hat(x)/n_1 + f_2_hat(x)/n_2]),
+    z(x) = (f_2_hat(x) - f_1_hat(x)) / sqrt(R(K) |H|^{-1/2} f_hat(x) (1/n_1 + 1/n_2)),
+    f_hat = (n_1 f_1_hat + n_2 f_2_hat) / (n_1 + n_2),
 
-asymptotically standard normal under the null (the pointwise variance
-Var f_hat(x) ~ R(K) f(x) / (n |H|^{1/2}), Wand & Jones 1995, Sec. 4.3, for
-two independent samples).  Two-sided p-values are computed only at nodes
+asymptotically standard normal under the null.  The denominator is the
+variance of the difference of two independent estimates,
+R(K) |H|^{-1/2} [f_1(x)/n_1 + f_2(x)/n_2] (from Var f_hat(x) ~ R(K) f(x) /
+(n |H|^{1/2}), Wand & Jones 1995, Sec. 4.3), evaluated under the null with
+the pooled estimate for the common f: a score-type denominator that does not
+shrink when one sample's estimate is low by chance (with the two estimates
+in place of the pooled one, the share of null cells with a flag was 0.060
+against 0.050 on one block of 200 cells with samples of 1,000 and 400).  Two-sided p-values are computed only at nodes
 where the mean of the two densities is at least ``floor`` times its largest
 value on the grid (in the far tails the normal approximation fails and the
 variance estimate is near zero), and the Benjamini-Hochberg step-up
@@ -36,8 +42,9 @@ procedure (Benjamini & Hochberg 1995, via
 ``statsmodels.stats.multitest.multipletests(method="fdr_bh")``) controls the
 false discovery rate over the tested nodes of each cell.  Nodes below the
 floor are never flagged.  This is the local kernel two-sample test of Duong,
-Koch & Wand (2009) and Duong (2013), with Benjamini-Hochberg in place of the
-Hochberg family-wise procedure used there [memory: see References].
+Koch & Wand (2009) and Duong (2013) [memory: citation details and the
+multiple-comparison procedure used in those papers not checked here], with
+Benjamini-Hochberg for the multiple comparison.
 
 The asymptotic variance overstates the exact one (it drops the
 -(E f_hat)^2 / n term), so the test is somewhat conservative at small n.

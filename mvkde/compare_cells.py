@@ -195,9 +195,9 @@ def difference_test_cells(reference_density, other_density, n_reference, n_other
 
     Notes
     -----
-    z = (f_o - f_r) / sqrt(R(K) |H|^{-1/2} (f_r / n_r + f_o / n_o)): the
-    pointwise variance of two independent estimates (Wand & Jones 1995,
-    Sec. 4.3); the local test of Duong, Koch & Wand (2009) [memory]; the
+    z = (f_o - f_r) / sqrt(R(K) |H|^{-1/2} f (1/n_r + 1/n_o)), f the pooled
+    density (n_r f_r + n_o f_o) / (n_r + n_o): the pointwise variance of two
+    independent estimates (Wand & Jones 1995, Sec. 4.3) under the null; the local test of Duong, Koch & Wand (2009) [memory]; the
     Benjamini & Hochberg (1995) procedure over each cell's tested nodes,
     through ``statsmodels.stats.multitest.multipletests(method="fdr_bh")``.
     """
