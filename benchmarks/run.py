@@ -25,7 +25,7 @@ sys.path.insert(0, str(HERE.parent))
 from harness import CASES, NOTES, cores, machine  # noqa: E402
 
 MODULES = ["bench_exact", "bench_engines", "bench_bandwidth", "bench_pipeline", "bench_memory",
-           "bench_directional"]
+           "bench_directional", "bench_compare"]
 
 
 def fmt(x, digits=3):

@@ -12,8 +12,11 @@ from .estimate import (DEFAULT_GRID, DEFAULT_HDR_MASSES, bootstrap, bootstrap_ba
                        direction_and_speed, exceedance, hdr_levels, marginal, marginal_grid, marginal_is_exact,
                        mass_above, node_weights, probability_grid, quantiles, sector_table, speed_class_edges,
                        standard_error)
+from .return_periods import (RETURN_PERIOD_CAUTION, return_period_and, return_period_or,
+                             return_periods_from_probabilities)
 
 __all__ = ["DEFAULT_GRID", "DEFAULT_HDR_MASSES", "bootstrap", "bootstrap_bands", "cdf", "conditional",
            "direction_and_speed", "exceedance", "hdr_levels", "marginal", "marginal_grid", "marginal_is_exact",
            "mass_above", "node_weights", "probability_grid", "quantiles", "sector_table", "speed_class_edges",
-           "standard_error"]
+           "standard_error", "RETURN_PERIOD_CAUTION", "return_period_and", "return_period_or",
+           "return_periods_from_probabilities"]
