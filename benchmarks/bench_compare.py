@@ -1,4 +1,4 @@
-"""Comparison of two labels per cell (mvkde.compare batch functions) with bootstrap ratio intervals."""
+"""Comparison of two labels per cell (mvkde.compare_cells batch functions) with bootstrap ratio intervals."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import time
 import numpy as np
 
 from harness import Row, case, note
-from mvkde import compare as cmp
+from mvkde import comparison as cmp
 from mvkde.cells import fit_cells
 
 GAUSSIAN_ROUGHNESS_2D = 1.0 / (4.0 * np.pi)

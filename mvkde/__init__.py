@@ -2,7 +2,8 @@
 
 Public names: :func:`fit` (one sample), :func:`fit_cells` (the batch door:
 many cells at once), :func:`densities` (the per-cell job from Python: an
-xarray Dataset in, a labelled Dataset out, lazily with dask),
+xarray Dataset in, a labelled Dataset out, lazily with dask), :func:`compare`
+(two estimates: differences, significance, probability ratios),
 :class:`DensityEstimate`, the error classes and the kernel table.  Everything
 else lives in submodules.
 
@@ -31,18 +32,20 @@ _LAZY: dict[str, tuple[str, str]] = {
     "fit_cells": (".cells", "fit_cells"),
     "CellBatch": (".cells", "CellBatch"),
     "densities": (".pipeline.densities", "densities"),
+    "compare": (".comparison", "compare"),
 }
 
 # Library submodules that ``import mvkde`` used to load eagerly: ``mvkde.engines``
 # and the like keep working after a bare ``import mvkde``.
-_SUBMODULES = frozenset({"bandwidth", "boundary", "cells", "directional", "engines", "estimator", "kernels",
-                         "products", "support", "units"})
+_SUBMODULES = frozenset({"bandwidth", "boundary", "cells", "comparison", "compare_cells", "directional", "engines",
+                         "estimator", "kernels", "products", "support", "units"})
 
 __all__ = [
     "fit",
     "fit_cells",
     "CellBatch",
     "densities",
+    "compare",
     "DensityEstimate",
     "MvkdeError",
     "InputError",

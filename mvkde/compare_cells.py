@@ -1,10 +1,10 @@
 """Two samples per cell compared, for blocks of cells (the cell axis first).
 
-The batch layer of :mod:`mvkde.compare`: the pipeline calls these on the
-samples of a block of cells; :func:`mvkde.compare.compare` calls them on one
+The batch layer of :mod:`mvkde.comparison`: the pipeline calls these on the
+samples of a block of cells; :func:`mvkde.compare` calls them on one
 pair of estimates, so both doors give the same numbers.  The formulas, the
 common bandwidth matrix and the bootstrap design are described in the
-module docstring of :mod:`mvkde.compare`.
+module docstring of :mod:`mvkde.comparison`.
 """
 
 from __future__ import annotations

@@ -1,4 +1,4 @@
-"""Comparing two samples (mvkde.compare) and joint return periods (mvkde.products.return_periods).
+"""Comparing two samples (mvkde.compare, mvkde.comparison) and joint return periods (mvkde.products.return_periods).
 
 The simulation checks run on blocks of cells through the batch functions
 (the path the pipeline uses) on small grids, so the whole file stays cheap.
@@ -12,7 +12,7 @@ import pytest
 from scipy import stats
 
 import mvkde
-from mvkde import compare as cmp
+from mvkde import comparison as cmp
 from mvkde.products import return_period_and, return_period_or, return_periods_from_probabilities
 
 COV = np.array([[1.0, 0.5], [0.5, 1.0]])

@@ -239,12 +239,12 @@ def compare(reference_estimate, other_estimate, *, size=None, limits=None, thres
     Notes
     -----
     The test, the common matrix and the bootstrap are described in the
-    module docstring of :mod:`mvkde.compare`.
+    module docstring of :mod:`mvkde.comparison`.
 
     Examples
     --------
     >>> import numpy as np, mvkde
-    >>> from mvkde.compare import compare
+    >>> from mvkde import compare
     >>> rng = np.random.default_rng(0)
     >>> base = mvkde.fit(rng.normal(size=(800, 2)), names=["tas", "pr"])
     >>> recent = mvkde.fit(rng.normal(size=(800, 2)) + [0.5, 0.0], names=["tas", "pr"])
