@@ -105,6 +105,10 @@ def test_all_dry_sample_in_the_library():
     assert est.point_mass_probability == 1.0
     assert float(est.grid(8, limits=[(0.5, 10), (-3, 3)]).max()) == 0.0
     assert float(est.point_mass_grid(256, limits=[(-6, 6)]).integrate("x1")) == pytest.approx(1.0, abs=1e-3)
+    # products of an all-dry estimate: everything lives on the point mass (x1's own sample summarised)
+    np.testing.assert_allclose(est.exceedance([[-1.0, 0.0], [1.0, 0.0]]), [(x[:, 1] > 0).mean(), 0.0], atol=0.03)
+    assert est.quantiles("x0", [0.5])[0] == 0.0
+    assert est.quantiles("x1", [0.5])[0] == pytest.approx(np.median(x[:, 1]), abs=0.1)
 
 
 def test_failed_cells_are_named_by_their_labels_and_the_reason_is_stored(tmp_path, capsys):

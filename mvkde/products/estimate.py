@@ -255,6 +255,8 @@ def _joint_probability(est, points, upper: bool, size, limits, what: str) -> np.
     _refuse_sphere(est, what)
     if _exact_cdf_available(est):
         return _exact_cdf(est, pts, upper=upper)
+    if est.n == 0:  # every value at the point mass: no continuous part
+        return _point_mass_part(est, pts, upper, size)
     axes, vals, _ = _grid_cumulative(est, size, limits, upper=upper)
     return _interp(axes, vals, pts, upper=upper) + _point_mass_part(est, pts, upper, size)
 
@@ -296,6 +298,12 @@ def quantiles(est, name, probs, *, size=None, limits=None) -> np.ndarray:
     probs = np.atleast_1d(np.asarray(probs, dtype=float))
     k = _names_index(est, [name])[0]
     pm = est.support.point_mass
+    if est.n == 0 and pm is not None:  # every value at the point mass
+        if k == pm.index:
+            return np.full(probs.shape, float(pm.bound))
+        if est._point.estimate is None:
+            raise InputError(f"the density of {name} on the point mass is not available: {est._point.problem}")
+        return quantiles(est._point.estimate, name, probs)
     if size is None and limits is None and (est.d == 1 or marginal_is_exact(est, [k])) and pm is None:
         m = (est if est.d == 1 else marginal(est, [name])).grid(4096)
     else:
