@@ -374,7 +374,7 @@ def conditional(est, given: dict, *, size=None, limits=None) -> xr.DataArray:
     ordered = [axes[j] for j in range(est.d)]
     mesh = np.meshgrid(*ordered, indexing="ij")
     pts = np.column_stack([m.ravel() for m in mesh])
-    vals = est.pdf(pts).reshape([a.size for a in ordered])
+    vals = _pdf_with_progress(est, pts, "conditional density").reshape([a.size for a in ordered])
     for j in sorted(gidx, reverse=True):
         if j in bins:
             vals = np.trapezoid(vals, ordered[j], axis=j)
@@ -393,6 +393,19 @@ def conditional(est, given: dict, *, size=None, limits=None) -> xr.DataArray:
              "conditioning_density": float(total)}
     return xr.DataArray(vals / total, dims=names, coords={n: (n, a) for n, a in zip(names, rest_axes)},
                         name="conditional_density", attrs=attrs)
+
+
+def _pdf_with_progress(est, pts, label: str, pieces: int = 20) -> np.ndarray:
+    """``est.pdf(pts)`` in pieces, with a progress bar where a terminal is attached (many points take seconds)."""
+    if len(pts) < 50_000:
+        return est.pdf(pts)
+    chunks = np.array_split(np.arange(len(pts)), pieces)
+    progress = Progress(len(chunks), label=f"parts of the {label}", prefix="mvkde", log_lines=False)
+    out = np.empty(len(pts))
+    for idx in chunks:
+        out[idx] = est.pdf(pts[idx])
+        progress.update()
+    return out
 
 
 # ---------------------------------------------------------------------------
