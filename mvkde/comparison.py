@@ -119,6 +119,16 @@ def full_sample(est) -> np.ndarray:
     ``est.data`` holds only the continuous part when a variable has a point
     mass; the rows on the point mass are rebuilt from the density on the
     point mass (its sample) with the point-mass variable at its bound.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+        An unweighted estimate.
+
+    Returns
+    -------
+    ndarray, shape (n, d)
+        The continuous rows, then the point-mass rows.
     """
     if est.weights is not None:
         raise InputError("compare: weighted estimates are not supported (resampling and pooling need "

@@ -19,7 +19,13 @@ MAIN_WORKFLOW = "basin_seasonal.toml"
 
 
 def repo_dir() -> Path:
-    """The source tree (the demo runs from a checkout)."""
+    """The source tree (the demo runs from a checkout).
+
+    Returns
+    -------
+    pathlib.Path
+        The checkout holding ``sample_grids/generate.py``, else the current directory.
+    """
     here = Path(__file__).resolve().parent.parent
     if (here / "sample_grids" / "generate.py").exists():
         return here
@@ -27,10 +33,30 @@ def repo_dir() -> Path:
 
 
 def sample_grids_dir() -> Path:
+    """The ``sample_grids`` directory of the source tree.
+
+    Returns
+    -------
+    pathlib.Path
+    """
     return repo_dir() / "sample_grids"
 
 
 def run(out_dir="out", out=None) -> int:
+    """Run the example workflow on the invented basin data and draw its pictures.
+
+    Parameters
+    ----------
+    out_dir : str or path-like
+        Directory of the output file.
+    out : file, optional
+        Where to write progress lines (default ``sys.stdout``).
+
+    Returns
+    -------
+    int
+        0 (problems raise :class:`~mvkde.errors.InputError`).
+    """
     from .pipeline.run import run_and_write
     from .pipeline.workflow import load
 
@@ -59,6 +85,15 @@ def pictures(output) -> list[str]:
 
     A summer cell in the middle of the basin (joint density with its
     highest-density regions) and a summer map of P(tasmax > 25 degC).
+
+    Parameters
+    ----------
+    output : str or path-like
+        The density file written by the demo.
+
+    Returns
+    -------
+    list of str
     """
     import xarray as xr
 

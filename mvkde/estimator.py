@@ -320,7 +320,37 @@ def _column_range(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 class DensityEstimate:
-    """A fitted kernel density estimate.  Build it with :func:`mvkde.fit`."""
+    """A fitted kernel density estimate.  Build it with :func:`mvkde.fit`.
+
+    Parameters
+    ----------
+    data : ndarray, shape (n, d)
+        The sample (the continuous part when there is a point mass).
+    weights : ndarray, shape (n,), or None
+        Normalised sample weights; None for equal weights.
+    names, units : list of str
+        Variable names and units, in column order.
+    kernel : mvkde.kernels.MultivariateKernel
+        The d-variate kernel.
+    bandwidth : mvkde.bandwidth.BandwidthResult
+        The bandwidth matrix H and how it was chosen.
+    bounds : list of (float, float)
+        Support (lo, hi) per variable (infinite for an open side).
+    boundary : str
+        Boundary method name.
+    engine : str
+        Evaluation engine name.
+    model : object, optional
+        A fitted boundary model; built from the arguments above when None.
+    point_mass : object, optional
+        The fitted point-mass part, or None.
+    mask : (ndarray, list of ndarray), optional
+        Mask values and their grid axes, or None.
+    support : mvkde.support.Support, optional
+        Where each variable lives; linear variables on ``bounds`` when None.
+    concentrations : dict, optional
+        Concentration kappa of each directional variable's kernel, by name.
+    """
 
     def __init__(self, data, weights, names, units, kernel, bandwidth: BandwidthResult,
                  bounds, boundary, engine, *, model=None, point_mass=None, mask=None, support=None,
@@ -374,6 +404,25 @@ class DensityEstimate:
 
         For one variable, a 0-d DataArray holding p.  ``limits`` may be given for
         the other variables (a list in their order or a dict by name).
+
+        Parameters
+        ----------
+        size : int or sequence of int
+            Grid nodes per other variable (default 64).
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Grid range of the other variables.
+
+        Returns
+        -------
+        xarray.DataArray
+            The density on the point mass (dimensions: the other variables), or
+            the 0-d probability p for a one-variable estimate.
+
+        Raises
+        ------
+        InputError
+            If the estimate has no point mass, or its density on the point mass
+            could not be fitted.
         """
         if self._point is None:
             raise InputError("point_mass_grid: this estimate has no point mass; fit with point_masses=[...]")
@@ -481,11 +530,33 @@ class DensityEstimate:
         return values
 
     def pdf(self, points) -> np.ndarray:
-        """Density at ``points`` ((m, d) array or DataFrame with the variables as columns)."""
+        """Density at ``points`` ((m, d) array or DataFrame with the variables as columns).
+
+        Parameters
+        ----------
+        points : array_like, shape (m, d), or pandas.DataFrame
+            Evaluation points; a 1-d array is one point (or m points when d = 1).
+
+        Returns
+        -------
+        ndarray, shape (m,)
+            Density values, 0 outside the bounds.
+        """
         return self._evaluate(self._points(points))
 
     def logpdf(self, points) -> np.ndarray:
-        """Log density; for the Gaussian kernel a log-sum-exp that stays finite in far tails."""
+        """Log density; for the Gaussian kernel a log-sum-exp that stays finite in far tails.
+
+        Parameters
+        ----------
+        points : array_like, shape (m, d), or pandas.DataFrame
+            Evaluation points, as for :meth:`pdf`.
+
+        Returns
+        -------
+        ndarray, shape (m,)
+            Log density values, -inf outside the bounds.
+        """
         return self._evaluate(self._points(points), log=True)
 
     __call__ = pdf
@@ -496,6 +567,13 @@ class DensityEstimate:
 
         With ``boundary="transform"`` the widening is done in the transformed
         space (where H lives) and mapped back; with a mask, the mask's grid.
+        A circular variable gets one period from 0 and a spherical location the
+        whole globe.
+
+        Returns
+        -------
+        list of (float, float)
+            (lo, hi) per variable.
         """
         if self._mask is not None:
             return [(float(ax[0]), float(ax[-1])) for ax in self._mask[1]]
@@ -670,7 +748,20 @@ class DensityEstimate:
 
     def negative_mass(self, size=128, limits=None) -> float:
         """Integral of the negative part (non-zero only for fourth-order kernels and the
-        linear boundary kernel)."""
+        linear boundary kernel).
+
+        Parameters
+        ----------
+        size : int or sequence of int
+            Grid nodes per variable.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Grid range, as for :meth:`grid`.
+
+        Returns
+        -------
+        float
+            The negative mass on the grid (0.0 when the estimate cannot be negative).
+        """
         if self.kernel.kernel.order == 2 and self.boundary != "linear":
             return 0.0
         return float(self.grid(size, limits).attrs["negative_mass"])
@@ -685,6 +776,18 @@ class DensityEstimate:
         rejection for the others).  With a point mass, a Binomial(n, p) share of
         the draws sit on the bound of that variable, the other variables drawn
         from their density on the point mass.
+
+        Parameters
+        ----------
+        n : int
+            Number of draws (non-negative).
+        seed : int or numpy.random.Generator, optional
+            Seed for :func:`numpy.random.default_rng`.
+
+        Returns
+        -------
+        ndarray, shape (n, d)
+            The draws, columns in the order of ``names``.
         """
         n = int(n)
         if n < 0:
@@ -776,51 +879,231 @@ class DensityEstimate:
 
     def marginal(self, names) -> "DensityEstimate":
         """Marginal estimate of ``names`` (exact: Gaussian kernel, or product kernel with the
-        kept variables leading); otherwise see :meth:`marginal_grid`."""
+        kept variables leading); otherwise see :meth:`marginal_grid`.
+
+        Parameters
+        ----------
+        names : str or list of str
+            Variables to keep.
+
+        Returns
+        -------
+        DensityEstimate
+            The estimate of the kept variables (see :func:`mvkde.products.marginal`).
+        """
         return _products.marginal(self, names)
 
     def marginal_grid(self, names, size=None, limits=None) -> xr.DataArray:
-        """Marginal density of ``names`` integrated numerically from the joint grid."""
+        """Marginal density of ``names`` integrated numerically from the joint grid.
+
+        Parameters
+        ----------
+        names : str or list of str
+            Variables to keep, in the order of the result's dimensions.
+        size : int or sequence of int, optional
+            Nodes per variable of the joint grid.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Range of the joint grid.
+
+        Returns
+        -------
+        xarray.DataArray
+            The marginal density (see :func:`mvkde.products.marginal_grid`).
+        """
         return _products.marginal_grid(self, names, size, limits)
 
     def conditional(self, given: dict, size=None, limits=None) -> xr.DataArray:
-        """Density of the other variables given values or (lo, hi) bins of ``given``."""
+        """Density of the other variables given values or (lo, hi) bins of ``given``.
+
+        Parameters
+        ----------
+        given : dict
+            Variable name -> value, or -> (lo, hi) bin.
+        size : int or sequence of int, optional
+            Nodes per remaining variable.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Grid range.
+
+        Returns
+        -------
+        xarray.DataArray
+            The conditional density (see :func:`mvkde.products.conditional`).
+        """
         return _products.conditional(self, given, size=size, limits=limits)
 
     def cdf(self, points, *, size=None, limits=None) -> np.ndarray:
-        """Joint CDF P(X <= x componentwise), point masses included."""
+        """Joint CDF P(X <= x componentwise), point masses included.
+
+        Parameters
+        ----------
+        points : array_like, shape (m, d), or pandas.DataFrame
+            Evaluation points.
+        size : int or sequence of int, optional
+            Nodes per variable of the grid used when no closed form applies.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Range of that grid.
+
+        Returns
+        -------
+        ndarray, shape (m,)
+            Probabilities (see :func:`mvkde.products.cdf`).
+        """
         return _products.cdf(self, points, size=size, limits=limits)
 
     def exceedance(self, points, *, size=None, limits=None) -> np.ndarray:
-        """Joint exceedance P(X > x componentwise), point masses included."""
+        """Joint exceedance P(X > x componentwise), point masses included.
+
+        Parameters
+        ----------
+        points : array_like, shape (m, d), or pandas.DataFrame
+            Evaluation points.
+        size : int or sequence of int, optional
+            Nodes per variable of the grid used when no closed form applies.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Range of that grid.
+
+        Returns
+        -------
+        ndarray, shape (m,)
+            Probabilities (see :func:`mvkde.products.exceedance`).
+        """
         return _products.exceedance(self, points, size=size, limits=limits)
 
     def probability_grid(self, kind="exceedance", size=None, limits=None) -> xr.DataArray:
-        """Joint CDF ('cdf') or exceedance ('exceedance') at every grid node."""
+        """Joint CDF ('cdf') or exceedance ('exceedance') at every grid node.
+
+        Parameters
+        ----------
+        kind : {'exceedance', 'cdf'}
+            Which probability.
+        size : int or sequence of int, optional
+            Nodes per variable.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Grid range.
+
+        Returns
+        -------
+        xarray.DataArray
+            Probabilities in [0, 1] on the grid (see :func:`mvkde.products.probability_grid`).
+        """
         return _products.probability_grid(self, kind, size, limits)
 
     def quantiles(self, name, probs, *, size=None, limits=None) -> np.ndarray:
-        """Marginal quantiles of variable ``name`` (point mass included; see :func:`mvkde.products.quantiles`)."""
+        """Marginal quantiles of variable ``name`` (point mass included; see :func:`mvkde.products.quantiles`).
+
+        Parameters
+        ----------
+        name : str
+            The variable.
+        probs : float or array_like of float
+            Probabilities, strictly between 0 and 1.
+        size : int or sequence of int, optional
+            Nodes per variable of a joint grid to integrate the marginal from.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Range of that grid.
+
+        Returns
+        -------
+        ndarray, shape (len(probs),)
+            The quantiles.
+        """
         return _products.quantiles(self, name, probs, size=size, limits=limits)
 
     def hdr_levels(self, masses=(0.5, 0.9, 0.99), *, size=None, limits=None) -> np.ndarray:
-        """Density levels whose upper sets enclose ``masses`` of the probability."""
+        """Density levels whose upper sets enclose ``masses`` of the probability.
+
+        Parameters
+        ----------
+        masses : sequence of float
+            Probability fractions, strictly between 0 and 1.
+        size : int or sequence of int, optional
+            Nodes per variable of the grid.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Grid range.
+
+        Returns
+        -------
+        ndarray, shape (len(masses),)
+            Density levels (see :func:`mvkde.products.hdr_levels`).
+        """
         return _products.hdr_levels(self, masses, size=size, limits=limits)
 
     def mass_above(self, level, *, size=None, limits=None) -> np.ndarray:
-        """Probability of the region where the density is at least ``level``."""
+        """Probability of the region where the density is at least ``level``.
+
+        Parameters
+        ----------
+        level : float or array_like of float
+            Density level(s).
+        size : int or sequence of int, optional
+            Nodes per variable of the grid.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Grid range.
+
+        Returns
+        -------
+        ndarray, shape (len(level),)
+            Fraction of the grid's mass at or above each level.
+        """
         return _products.mass_above(self, level, size=size, limits=limits)
 
     def sector_table(self, direction, speed, sectors=16, speed_edges=None):
         """Joint probability per direction sector and speed class (see
-        :func:`mvkde.products.sector_table`)."""
+        :func:`mvkde.products.sector_table`).
+
+        Parameters
+        ----------
+        direction : str
+            The circular variable.
+        speed : str
+            The linear variable.
+        sectors : int
+            Number of direction sectors (at least 2).
+        speed_edges : array_like of float, optional
+            Speed class edges; by default five equal classes over the grid limits.
+
+        Returns
+        -------
+        xarray.DataArray
+            Probabilities with dimensions ("sector", "speed_class").
+        """
         return _products.sector_table(self, direction, speed, sectors, speed_edges)
 
     def standard_error(self, points) -> np.ndarray:
-        """Asymptotic pointwise standard error of the density at ``points``."""
+        """Asymptotic pointwise standard error of the density at ``points``.
+
+        Parameters
+        ----------
+        points : array_like, shape (m, d), or pandas.DataFrame
+            Evaluation points.
+
+        Returns
+        -------
+        ndarray, shape (m,)
+            Standard errors (see :func:`mvkde.products.standard_error`).
+        """
         return _products.standard_error(self, self.pdf(points))
 
     def bootstrap_bands(self, points=None, *, kind="density", level=0.9, replicates=200, seed=None):
-        """Percentile bootstrap band (lower, upper) for the density or exceedance."""
+        """Percentile bootstrap band (lower, upper) for the density or exceedance.
+
+        Parameters
+        ----------
+        points : array_like, shape (m, d), or pandas.DataFrame, optional
+            Evaluation points; None for the nodes of the default grid.
+        kind : {'density', 'exceedance'}
+            The statistic.
+        level : float
+            Coverage of the band, strictly between 0 and 1.
+        replicates : int
+            Number of bootstrap resamples (at least 2).
+        seed : int or numpy.random.Generator, optional
+            Seed for :func:`numpy.random.default_rng`.
+
+        Returns
+        -------
+        lower, upper : ndarray, shape (m,)
+            The band's ends (see :func:`mvkde.products.bootstrap_bands`).
+        """
         return _products.bootstrap_bands(self, points, kind=kind, level=level,
                                          replicates=replicates, seed=seed)

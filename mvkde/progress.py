@@ -40,6 +40,12 @@ class Progress:
         self.last_tenth = -1
 
     def update(self, n: int = 1) -> None:
+        """Count ``n`` more steps and redraw the bar (terminal) or write a log line when due.
+
+        Parameters
+        ----------
+        n : int
+        """
         self.done += n
         now = time.perf_counter()
         frac = self.done / self.total

@@ -12,7 +12,23 @@ __all__ = ["as_table", "check_sample"]
 
 
 def as_table(data, names=None, units=None):
-    """(values (n, d) float, names, units) from an array, DataFrame or Dataset."""
+    """(values (n, d) float, names, units) from an array, DataFrame or Dataset.
+
+    Parameters
+    ----------
+    data : array_like, pandas.DataFrame, pandas.Series, xarray.Dataset or xarray.DataArray
+        The sample; a Dataset's variables are flattened into columns.
+    names : sequence of str, optional
+        Variable names (default: the columns' or ``x0``, ``x1``, ...).
+    units : sequence of str or dict name -> str, optional
+        Units (default: those found in the attributes, else "").
+
+    Returns
+    -------
+    values : ndarray, shape (n, d)
+    names : list of str
+    units : list of str
+    """
     found_units: dict[str, str] = {}
     if isinstance(data, xr.Dataset):
         cols = list(data.data_vars)
@@ -112,6 +128,20 @@ def _check_weights(weights, n):
 
 
 def check_sample(values, names, weights):
+    """Refuse non-finite values, too few samples (n < d + 1) and bad weights.
+
+    Parameters
+    ----------
+    values : ndarray, shape (n, d)
+    names : list of str
+    weights : array_like, shape (n,), optional
+
+    Returns
+    -------
+    values : ndarray, shape (n, d)
+    weights : ndarray, shape (n,), or None
+        Normalised to sum 1.
+    """
     n, d = values.shape
     _check_finite(values, names)
     if n < d + 1:

@@ -21,6 +21,10 @@ the estimate factorises as ``D diag(w) B'``, D the directional kernels at the
 directional nodes and B the linear kernels at the linear nodes, so a grid is
 one matrix product per pair of chunks.
 
+Long because the choice of the smoothing, the model (evaluation, grids and
+sampling over both blocks) and its fit live together, each public function
+with its numpydoc parameters.
+
 References
 ----------
 Hall, P., Watson, G. S. & Cabrera, J. (1987). Kernel density estimation with
@@ -65,7 +69,21 @@ DIRECTIONAL_DEFAULT_BOUNDARY = "reflect"
 
 @dataclass
 class Smoothing:
-    """Concentrations of the directional factors and the linear block's bandwidth."""
+    """Concentrations of the directional factors and the linear block's bandwidth.
+
+    Parameters
+    ----------
+    kappas : dict
+        Circular column index -> von Mises kappa.
+    kappa_sphere : float or None
+    lin : BandwidthResult or None
+        The linear block's bandwidth (q x q).
+    method : str
+    notes : dict
+        Variable name -> how its smoothing was chosen.
+    criterion, converged, at_edge : float, bool, bool
+        As in :class:`~mvkde.bandwidth.BandwidthResult`.
+    """
 
     kappas: dict                       # circular index -> kappa
     kappa_sphere: float | None
@@ -79,12 +97,32 @@ class Smoothing:
 
 def equivalent_variance_sphere(kappa: float) -> float:
     """(180/pi)^2 / kappa: small-angle variance (degrees^2) of each tangent coordinate of a
-    vMF kernel (the kernel is close to N(0, I/kappa) in radians near its mean)."""
+    vMF kernel (the kernel is close to N(0, I/kappa) in radians near its mean).
+
+    Parameters
+    ----------
+    kappa : float
+
+    Returns
+    -------
+    float
+    """
     return (180.0 / math.pi) ** 2 / kappa
 
 
 def full_matrix(spec: DirectionalSpec, sm: Smoothing, d: int) -> np.ndarray:
-    """The d x d matrix reported as ``H``: equivalent variances on the directional diagonal."""
+    """The d x d matrix reported as ``H``: equivalent variances on the directional diagonal.
+
+    Parameters
+    ----------
+    spec : DirectionalSpec
+    sm : Smoothing
+    d : int
+
+    Returns
+    -------
+    ndarray, shape (d, d)
+    """
     H = np.zeros((d, d))
     for j, k in sm.kappas.items():
         H[j, j] = _dir.equivalent_variance(k, spec.periods[j])
@@ -109,7 +147,20 @@ def _units(values, spec):
 
 
 def from_matrix(H, spec: DirectionalSpec, names, d, parametrization) -> Smoothing:
-    """Read a given d x d matrix: directional diagonal entries are equivalent variances."""
+    """Read a given d x d matrix: directional diagonal entries are equivalent variances.
+
+    Parameters
+    ----------
+    H : array_like, shape (d, d)
+    spec : DirectionalSpec
+    names : list of str
+    d : int
+    parametrization : str
+
+    Returns
+    -------
+    Smoothing
+    """
     try:
         H = np.asarray(H, dtype=float)
     except (TypeError, ValueError):
@@ -159,8 +210,18 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
     the KD-tree likelihood CV; otherwise joint cross-validation of every
     concentration and the linear (Gaussian) H by exact pair sums, transferred to
     another linear kernel by the canonical rescaling.
-    ``lin_values`` are the linear columns the selector sees (transformed for
-    ``boundary="transform"``).
+
+    Parameters
+    ----------
+    method, kernel, form, parametrization : str
+    values, lin_values : ndarray, (n, d) and (n, q)
+        ``lin_values``: the linear columns the selector sees (transformed for ``boundary="transform"``).
+    weights : ndarray, shape (n,), or None
+    spec, names : DirectionalSpec, list of str
+
+    Returns
+    -------
+    Smoothing
     """
 
     q = len(spec.linear)
@@ -239,7 +300,21 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
 
 class DirectionalModel:
     """Directional factors x the linear block with its boundary method (a 'boundary model'
-    with the interface of :mod:`mvkde.boundary.methods`)."""
+    with the interface of :mod:`mvkde.boundary.methods`).
+
+    Parameters
+    ----------
+    data : ndarray, shape (n, d)
+    weights : ndarray, shape (n,), or None
+    spec : DirectionalSpec
+    sm : Smoothing
+    kernel_name, form : str
+        The linear block's kernel.
+    box : list of (float, float)
+    method : {'none', 'reflect', 'transform'}
+        Boundary method of the linear block.
+    names : list of str
+    """
 
     def __init__(self, data, weights, spec: DirectionalSpec, sm: Smoothing, kernel_name, form, box, method,
                  names):
@@ -385,6 +460,18 @@ class DirectionalModel:
 
     # -- boundary-model interface --------------------------------------------
     def density(self, pts, log=False):
+        """Density (or its log) at points, by chunked direct sums.
+
+        Parameters
+        ----------
+        pts : array_like, shape (m, d)
+        log : bool
+
+        Returns
+        -------
+        values : ndarray, shape (m,)
+        choice : mvkde.engines.EngineChoice
+        """
         pts = np.asarray(pts, dtype=float)
         m = pts.shape[0]
         out = np.empty(m)
@@ -414,6 +501,18 @@ class DirectionalModel:
         return out, self.choice
 
     def grid(self, axes):
+        """Density on the grid ``axes``: one matrix product D diag(w) B' per pair of chunks.
+
+        Parameters
+        ----------
+        axes : list of ndarray
+
+        Returns
+        -------
+        values : ndarray
+            Shape (len(axes[0]), ..., len(axes[-1])).
+        choice : mvkde.engines.EngineChoice
+        """
         spec = self.spec
         dir_idx = spec.directional
         lin_idx = spec.linear
@@ -461,6 +560,17 @@ class DirectionalModel:
         return np.transpose(values, np.argsort(order)), self.choice
 
     def sample(self, n, rng):
+        """Smoothed-bootstrap draws; linear parts folded, mapped back or redrawn by the boundary method.
+
+        Parameters
+        ----------
+        n : int
+        rng : numpy.random.Generator
+
+        Returns
+        -------
+        ndarray, shape (n, d)
+        """
         spec = self.spec
         out = np.empty((n, len(spec.periods)))
         todo = np.arange(n)
@@ -499,6 +609,16 @@ class DirectionalModel:
 
 
 def special_i0e(k):
+    """I0(k) e^{-k} as a float.
+
+    Parameters
+    ----------
+    k : float
+
+    Returns
+    -------
+    float
+    """
     return float(special.i0e(k))
 
 
@@ -521,11 +641,28 @@ def _fold(y, box):
 def fit_model(values, w, names, spec: DirectionalSpec, mk, bandwidth, parametrization, box, boundary):
     """The directional smoothing and model of :func:`mvkde.fit` (data already wrapped and checked).
 
-    Returns ``(model, result, method, concentrations, attrs)``: the
-    :class:`DirectionalModel`, the :class:`~mvkde.bandwidth.BandwidthResult`
-    (H with the circular variables' equivalent variances), the boundary
-    method of the linear block, kappa per directional variable and the
-    attributes that describe the choice.
+    Parameters
+    ----------
+    values : ndarray, shape (n, d)
+    w : ndarray, shape (n,), or None
+    names : list of str
+    spec : DirectionalSpec
+    mk : mvkde.kernels.MultivariateKernel
+        Kernel of the linear block.
+    bandwidth : str, array_like (d, d) or BandwidthResult
+        Selector name or given matrix.
+    parametrization : str
+    box : list of (float, float)
+    boundary : str or None
+
+    Returns
+    -------
+    tuple
+        ``(model, result, method, concentrations, attrs)``: the
+        :class:`DirectionalModel`, the :class:`~mvkde.bandwidth.BandwidthResult`
+        (H with the circular variables' equivalent variances), the boundary
+        method of the linear block, kappa per directional variable and the
+        attributes that describe the choice.
     """
     d = values.shape[1]
     lin_box = [box[j] for j in spec.linear]

@@ -2,6 +2,9 @@
 
 Library layer: numpy, scipy and :mod:`mvkde.directional` only.
 
+Long because the derivation below and the numpydoc parameters of every
+selector stay beside the code they justify.
+
 Circle (von Mises kernel of concentration ``nu``)
 -------------------------------------------------
 * :func:`normal_concentration` -- the AMISE rule under a von Mises reference
@@ -88,18 +91,53 @@ def _normalised(weights, n):
 
 
 def effective_size(w) -> float:
-    """Kish's effective sample size 1 / sum w_i^2 of normalised weights."""
+    """Kish's effective sample size 1 / sum w_i^2 of normalised weights.
+
+    Parameters
+    ----------
+    w : ndarray
+        Weights summing to 1.
+
+    Returns
+    -------
+    float
+    """
     return 1.0 / float(np.sum(w * w))
 
 
 def bessel_ratio(k, nu):
-    """I_k(nu) / I0(nu) (the von Mises kernel's Fourier coefficients), stable for large nu."""
+    """I_k(nu) / I0(nu) (the von Mises kernel's Fourier coefficients), stable for large nu.
+
+    Parameters
+    ----------
+    k : float or array_like
+        Order(s).
+    nu : float or array_like
+        Concentration(s); broadcast with ``k``.
+
+    Returns
+    -------
+    ndarray
+    """
     nu = np.asarray(nu, dtype=float)
     return special.ive(k, nu) / special.i0e(nu)
 
 
 def a1_inverse(r, steps=6):
-    """Vectorised solution of I1(k)/I0(k) = r (Best and Fisher 1981 start, Newton steps)."""
+    """Vectorised solution of I1(k)/I0(k) = r (Best and Fisher 1981 start, Newton steps).
+
+    Parameters
+    ----------
+    r : float or array_like
+        Mean resultant lengths (clipped into (0, 1)).
+    steps : int
+        Newton steps.
+
+    Returns
+    -------
+    ndarray
+        Concentrations k, shape of ``r``.
+    """
     r = np.clip(np.asarray(r, dtype=float), 1e-12, 1.0 - 1e-12)
     k = np.where(r < 0.53, 2 * r + r ** 3 + 5 * r ** 5 / 6,
                  np.where(r < 0.85, -0.4 + 1.39 * r + 0.43 / (1 - r), 1 / (r ** 3 - 4 * r ** 2 + 3 * r)))
@@ -110,7 +148,19 @@ def a1_inverse(r, steps=6):
 
 
 def von_mises_kernel_at(delta, nu):
-    """K_nu(delta) = e^{nu cos delta} / (2 pi I0(nu)) per radian."""
+    """K_nu(delta) = e^{nu cos delta} / (2 pi I0(nu)) per radian.
+
+    Parameters
+    ----------
+    delta : float or array_like
+        Angles in radians.
+    nu : float
+        Concentration.
+
+    Returns
+    -------
+    float or ndarray
+    """
     return np.exp(nu * (np.cos(delta) - 1.0)) / (TWO_PI * special.i0e(nu))
 
 
@@ -120,14 +170,35 @@ def von_mises_kernel_at(delta, nu):
 
 def amise_concentration(curvature, n) -> float:
     """nu minimising R(f'') / (4 nu^2) + nu^{1/2} / (2 pi^{1/2} n): (2 pi^{1/2} n R(f''))^{2/5}
-    (derivation in the module docstring)."""
+    (derivation in the module docstring).
+
+    Parameters
+    ----------
+    curvature : float
+        R(f'') of the reference density.
+    n : float
+        (Effective) sample size.
+
+    Returns
+    -------
+    float
+    """
     return float((2.0 * math.sqrt(math.pi) * n * curvature) ** 0.4)
 
 
 def von_mises_curvature(kappa):
     """R(f'') = int f''^2 of one von Mises density:
     kappa [2 I1(2 kappa) + 3 kappa I2(2 kappa)] / (8 pi I0(kappa)^2)
-    (Garcia-Portugues 2013, circle case; exponentially scaled Bessel functions)."""
+    (Garcia-Portugues 2013, circle case; exponentially scaled Bessel functions).
+
+    Parameters
+    ----------
+    kappa : float or array_like
+
+    Returns
+    -------
+    ndarray
+    """
     k = np.asarray(kappa, dtype=float)
     return k * (2 * special.ive(1, 2 * k) + 3 * k * special.ive(2, 2 * k)) / (8 * math.pi * special.i0e(k) ** 2)
 
@@ -137,7 +208,19 @@ def normal_concentration(theta, weights=None) -> float:
     (Garcia-Portugues 2013, EJS 7, circle rule ``nu = 1/h^2``), the reference's
     concentration being the maximum-likelihood estimate.  A quick rule: exact
     to first order for one von Mises peak, it **oversmooths several peaks**
-    (use :func:`mixture_plugin_concentration` or cross-validation there)."""
+    (use :func:`mixture_plugin_concentration` or cross-validation there).
+
+    Parameters
+    ----------
+    theta : array_like of float
+        Angles in radians.
+    weights : array_like of float, optional
+        Sample weights (normalised here); equal when None.
+
+    Returns
+    -------
+    float
+    """
     theta = np.asarray(theta, dtype=float).ravel()
     w = _normalised(weights, theta.size)
     return 1.0 / _dir.circle_rule_h(theta, None if weights is None else w) ** 2
@@ -150,7 +233,15 @@ def normal_concentration(theta, weights=None) -> float:
 @dataclass
 class VonMisesMixture:
     """A von Mises mixture fitted by EM: proportions, mean directions (radians),
-    concentrations, log-likelihood (weights summing to the effective size) and AIC."""
+    concentrations, log-likelihood (weights summing to the effective size) and AIC.
+
+    Parameters
+    ----------
+    proportions, means, kappas : ndarray, shape (M,)
+    loglik, aic : float
+    details : dict
+        ``iterations`` and ``n_eff``.
+    """
 
     proportions: np.ndarray
     means: np.ndarray
@@ -169,19 +260,44 @@ class VonMisesMixture:
         return int(self.proportions.size)
 
     def pdf(self, theta):
+        """Mixture density per radian at ``theta``.
+
+        Parameters
+        ----------
+        theta : float or array_like
+            Angles in radians.
+
+        Returns
+        -------
+        ndarray
+        """
         theta = np.asarray(theta, dtype=float)
         return sum(p * np.exp(k * (np.cos(theta - m) - 1.0)) / (TWO_PI * special.i0e(k))
                    for p, m, k in zip(self.proportions, self.means, self.kappas))
 
     def fourier(self, k):
-        """phi_f(k) = sum_m p_m e^{-ik mu_m} I_k(kappa_m)/I0(kappa_m) for integer k (array)."""
+        """phi_f(k) = sum_m p_m e^{-ik mu_m} I_k(kappa_m)/I0(kappa_m) for integer k (array).
+
+        Parameters
+        ----------
+        k : array_like of int
+
+        Returns
+        -------
+        ndarray of complex, shape of ``k``
+        """
         k = np.asarray(k, dtype=float)
         return (self.proportions[:, None] * bessel_ratio(k[None, :], self.kappas[:, None])
                 * np.exp(-1j * self.means[:, None] * k[None, :])).sum(axis=0)
 
     def curvature(self) -> float:
         """R(f'') = int f''^2 = (1/pi) sum_{k>=1} k^4 |phi_f(k)|^2, summed until the terms vanish
-        (I_k(kappa)/I0(kappa) < e^{-k^2/(2 kappa)} roughly; 9 sqrt(kappa) + 30 terms reach 1e-17)."""
+        (I_k(kappa)/I0(kappa) < e^{-k^2/(2 kappa)} roughly; 9 sqrt(kappa) + 30 terms reach 1e-17).
+
+        Returns
+        -------
+        float
+        """
         kmax = int(9.0 * math.sqrt(float(self.kappas.max())) + 30)
         k = np.arange(1, kmax + 1)
         return float(np.sum(k.astype(float) ** 4 * np.abs(self.fourier(k)) ** 2) / math.pi)
@@ -232,7 +348,21 @@ def fit_von_mises_mixtures(theta, weights=None, *, max_components=5, seed=0, bin
     not grow with n), concentrations capped at ``kappa_cap``; the final
     log-likelihoods are computed on the data themselves, scaled so the weights
     sum to the effective size ``1 / sum w^2`` (n for equal weights),
-    ``AIC = -2 loglik + 2 (3M - 1)`` and ``BIC = -2 loglik + (3M - 1) log n_eff``.  Returns the list of fits (index M - 1).
+    ``AIC = -2 loglik + 2 (3M - 1)`` and ``BIC = -2 loglik + (3M - 1) log n_eff``.
+
+    Parameters
+    ----------
+    theta : array_like of float
+        Angles in radians.
+    weights : array_like of float, optional
+        Sample weights (normalised here); equal when None.
+    max_components, seed, bins, iterations : int
+    tol, kappa_cap : float
+
+    Returns
+    -------
+    list of VonMisesMixture
+        The fits, index M - 1.
     """
     theta = np.mod(np.asarray(theta, dtype=float).ravel(), TWO_PI)
     n = theta.size
@@ -329,6 +459,24 @@ def mixture_plugin_concentration(theta, weights=None, *, max_components=5, seed=
     2) and on two peaks; BIC chose the true number of components in every
     sample (one, two and three peaks, n = 500 and 2000), with the mean
     selection at 0.98-1.20 x the optimum and its MISE within 1.015 x.
+
+    Parameters
+    ----------
+    theta : array_like of float
+        Angles in radians.
+    weights : array_like of float, optional
+        Sample weights (normalised here); equal when None.
+    max_components, seed : int
+        As for :func:`fit_von_mises_mixtures`.
+    criterion : {'bic', 'aic'}
+    return_mixture : bool
+        Also return the chosen mixture.
+
+    Returns
+    -------
+    nu : float
+    mixture : VonMisesMixture
+        Only with ``return_mixture=True``.
     """
     fits = fit_von_mises_mixtures(theta, weights, max_components=max_components, seed=seed)
     best = min(fits, key=lambda f: f.aic if criterion == "aic" else f.bic)
@@ -342,7 +490,14 @@ def mixture_plugin_concentration(theta, weights=None, *, max_components=5, seed=
 
 @dataclass
 class CircularCVResult:
-    """Concentration chosen by binned cross-validation on the circle."""
+    """Concentration chosen by binned cross-validation on the circle.
+
+    Parameters
+    ----------
+    kappa, criterion : float
+    converged, at_edge : bool
+    evaluations : int
+    """
 
     kappa: float
     criterion: float
@@ -483,6 +638,22 @@ def circular_cv(criterion, theta, weights=None, *, oversampling=16.0, search=7.0
     The search runs over log nu within ``search`` of the Garcia-Portugues rule:
     steps of 0.7 downhill from the rule, then bounded Brent.  Costs O(n + L log L)
     per evaluation.
+
+    Parameters
+    ----------
+    criterion : {'lscv', 'mlcv'}
+    theta : array_like of float
+        Angles in radians.
+    weights : array_like of float, optional
+        Sample weights (normalised here); equal when None.
+    oversampling : float
+        Lattice nodes per kernel standard deviation.
+    search : float
+        Half-width of the search in log nu.
+
+    Returns
+    -------
+    CircularCVResult
     """
     theta = np.asarray(theta, dtype=float).ravel()
     w = _normalised(weights, theta.size)
@@ -505,6 +676,15 @@ SPHERE_CUTOFF = 1e-12
 
 @dataclass
 class SphereCVResult:
+    """Concentration chosen by likelihood cross-validation on the sphere.
+
+    Parameters
+    ----------
+    kappa, criterion : float
+        The concentration and the negative log-likelihood criterion there.
+    converged, at_edge : bool
+    evaluations : int
+    """
     kappa: float
     criterion: float
     converged: bool
@@ -580,6 +760,19 @@ def sphere_likelihood_cv(units, weights=None, *, search=7.0):
     sums -- the cut-off saves little when the chosen kernel is not much narrower
     than the clusters; a binned (lattice on the sphere) criterion would be needed
     for O(n) cost there.
+
+    Parameters
+    ----------
+    units : array_like, shape (n, 3)
+        Unit vectors.
+    weights : array_like of float, optional
+        Sample weights (normalised here); equal when None.
+    search : float
+        Half-width of the search in log kappa.
+
+    Returns
+    -------
+    SphereCVResult
     """
     units = np.asarray(units, dtype=float)
     w = _normalised(weights, units.shape[0])

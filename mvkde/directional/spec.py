@@ -14,7 +14,17 @@ from . import kernels as _dir
 @dataclass
 class DirectionalSpec:
     """Indices of the circular variables (with periods), of the spherical pair and of
-    the linear variables, in the data's column order."""
+    the linear variables, in the data's column order.
+
+    Parameters
+    ----------
+    periods : list of float or None
+        One entry per variable: its period, or None.
+    sphere : (int, int), optional
+        Column indices of the latitude and the longitude of a location.
+    circular, linear : list of int
+        Column indices of the circular and of the linear variables.
+    """
 
     periods: list                      # one entry per variable: period or None
     sphere: tuple | None = None        # (lat index, lon index)
@@ -30,7 +40,29 @@ class DirectionalSpec:
 
 
 def parse(periods, sphere, names, d) -> DirectionalSpec | None:
-    """Validate ``periods`` and ``sphere``; None when every variable is linear."""
+    """Validate ``periods`` and ``sphere``; None when every variable is linear.
+
+    Parameters
+    ----------
+    periods : sequence of (float or None), optional
+        One entry per variable.
+    sphere : (str, str), optional
+        Names of the latitude and the longitude variable.
+    names : list of str
+        The variables' names.
+    d : int
+        Number of variables.
+
+    Returns
+    -------
+    DirectionalSpec or None
+
+    Raises
+    ------
+    InputError
+        On a wrong number of periods, a bad period, unknown or repeated sphere
+        names, or a period on a spherical variable.
+    """
     plist = [None] * d
     if periods is not None:
         try:
@@ -65,7 +97,23 @@ def parse(periods, sphere, names, d) -> DirectionalSpec | None:
 
 
 def check_support(spec: DirectionalSpec, values, box, names, point_masses, mask) -> None:
-    """Refuse what a directional estimate cannot honour, before any selection."""
+    """Refuse what a directional estimate cannot honour, before any selection.
+
+    Bounds, point masses or a mask on a directional variable, and latitudes
+    outside [-90, 90], raise :class:`~mvkde.errors.InputError`.
+
+    Parameters
+    ----------
+    spec : DirectionalSpec
+    values : ndarray, shape (n, d)
+    box : list of (float, float)
+        Bounds per variable.
+    names : list of str
+    point_masses : list, optional
+        Point-mass declaration per variable (None entries for none).
+    mask : object, optional
+        A mask given to :func:`mvkde.fit`, or None.
+    """
     for j in spec.directional:
         lo, hi = box[j]
         if math.isfinite(lo) or math.isfinite(hi):
@@ -90,7 +138,18 @@ def check_support(spec: DirectionalSpec, values, box, names, point_masses, mask)
 
 
 def wrap(values, spec: DirectionalSpec) -> np.ndarray:
-    """Circular variables taken modulo their period into [0, period); longitudes into [-180, 180)."""
+    """Circular variables taken modulo their period into [0, period); longitudes into [-180, 180).
+
+    Parameters
+    ----------
+    values : array_like, shape (n, d)
+    spec : DirectionalSpec
+
+    Returns
+    -------
+    ndarray, shape (n, d)
+        A wrapped copy.
+    """
     out = np.array(values, dtype=float, copy=True)
     for j in spec.circular:
         out[:, j] = np.mod(out[:, j], spec.periods[j])

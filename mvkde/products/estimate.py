@@ -19,6 +19,9 @@ trapezoid sums and multilinear interpolation); the grid's size is an
 argument, and its limits extend past the data by the kernel's reach, so the
 mass outside is negligible.
 
+Long because every public function documents its parameters and returns
+(numpydoc); the code alone is about 450 lines.
+
 References
 ----------
 Hyndman, R. J. (1996). Computing and graphing highest density regions.
@@ -71,6 +74,21 @@ def _plain(est) -> bool:
 # ---------------------------------------------------------------------------
 
 def marginal_is_exact(est, idx) -> bool:
+    """Whether the marginal of the variables ``idx`` is an estimate of the same kind.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    idx : list of int
+        Indices of the kept variables.
+
+    Returns
+    -------
+    bool
+        True for the Gaussian kernel, a product kernel with the kept variables
+        leading (or no H cross terms between kept and dropped), a radial kernel
+        when nothing is dropped; directional factors drop exactly, a spherical pair as one.
+    """
     if getattr(est, "is_directional", False):
         return _directional_marginal_is_exact(est, idx)
     if est.kernel.name == "gaussian":
@@ -115,6 +133,15 @@ def node_weights(g: xr.DataArray) -> np.ndarray:
     Trapezoid weights along each axis; along a latitude/longitude pair
     carrying a ``cell_area`` coordinate, the node areas (see
     :mod:`mvkde.products.grid`).
+
+    Parameters
+    ----------
+    g : xarray.DataArray
+        A density on a grid, one dimension per variable.
+
+    Returns
+    -------
+    ndarray
     """
     return _grid.GridWeights([g[d].values for d in g.dims], _sphere_axes(g)).full()
 
@@ -127,7 +154,20 @@ def _sphere_axes(g: xr.DataArray):
 
 
 def marginal(est, names):
-    """The marginal estimate of ``names`` as a new estimate (exact cases only)."""
+    """The marginal estimate of ``names`` as a new estimate (exact cases only).
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    names : str or list of str
+        Variables to keep.
+
+    Returns
+    -------
+    DensityEstimate
+        Refitted on the kept columns with H's sub-block; InputError when not
+        exact (:func:`marginal_is_exact`).
+    """
     idx = _names_index(est, names)
     if not marginal_is_exact(est, idx):
         raise InputError(
@@ -146,6 +186,19 @@ def marginal_grid(est, names, size=None, limits=None) -> xr.DataArray:
     With a point mass on a variable that is integrated out, the density of
     the kept variables on the point mass is added, so the marginal integrates
     to 1; a kept point-mass variable's marginal is that of its continuous part.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    names : str or list of str
+        Variables to keep, in the order of the result's dimensions.
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+
+    Returns
+    -------
+    xarray.DataArray
     """
     idx = _names_index(est, names)
     support = est.support
@@ -262,17 +315,59 @@ def _joint_probability(est, points, upper: bool, size, limits, what: str) -> np.
 
 
 def cdf(est, points, *, size=None, limits=None) -> np.ndarray:
-    """P(X_1 <= x_1, ..., X_d <= x_d) at each point (point masses included)."""
+    """P(X_1 <= x_1, ..., X_d <= x_d) at each point (point masses included).
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    points : array_like, shape (m, d), or pandas.DataFrame
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+        Used only when no closed form applies (see the module docstring).
+
+    Returns
+    -------
+    ndarray, shape (m,)
+    """
     return _joint_probability(est, points, False, size, limits, "the joint CDF")
 
 
 def exceedance(est, points, *, size=None, limits=None) -> np.ndarray:
-    """P(X_1 > x_1, ..., X_d > x_d) at each point (joint exceedance, point masses included)."""
+    """P(X_1 > x_1, ..., X_d > x_d) at each point (joint exceedance, point masses included).
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    points : array_like, shape (m, d), or pandas.DataFrame
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+        Used only when no closed form applies (see the module docstring).
+
+    Returns
+    -------
+    ndarray, shape (m,)
+    """
     return _joint_probability(est, points, True, size, limits, "the joint exceedance probability")
 
 
 def probability_grid(est, kind="exceedance", size=None, limits=None) -> xr.DataArray:
-    """Joint CDF or exceedance probability at every node of a grid."""
+    """Joint CDF or exceedance probability at every node of a grid.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    kind : {'exceedance', 'cdf'}
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+
+    Returns
+    -------
+    xarray.DataArray
+        Probabilities clipped to [0, 1], named ``kind``.
+    """
     if kind not in ("cdf", "exceedance"):
         raise InputError(f"kind must be 'cdf' or 'exceedance', got {kind!r}")
     axes, vals, g = _grid_cumulative(est, size, limits, upper=(kind == "exceedance"))
@@ -294,6 +389,20 @@ def quantiles(est, name, probs, *, size=None, limits=None) -> np.ndarray:
     is integrated from that grid, exactly as a workflow's ``quantile_*``
     products are; without them, an exact marginal is evaluated on 4096 nodes
     where one exists, else the joint grid of the default size is integrated.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    name : str
+    probs : float or array_like of float
+        Probabilities strictly between 0 and 1.
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+
+    Returns
+    -------
+    ndarray, shape (len(probs),)
     """
     probs = np.atleast_1d(np.asarray(probs, dtype=float))
     k = _names_index(est, [name])[0]
@@ -323,14 +432,40 @@ def hdr_levels(est, masses=DEFAULT_HDR_MASSES, *, size=None, limits=None) -> np.
 
     Of the gridded density (the continuous part when there is a point mass,
     normalised to its own mass), with the node weights of
-    :func:`mvkde.products.grid.hdr_levels`.
+    :func:`mvkde.products.grid.hdr_levels` (Hyndman 1996).
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    masses : sequence of float
+        Fractions strictly between 0 and 1.
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+
+    Returns
+    -------
+    ndarray, shape (len(masses),)
     """
     g = est.grid(size or DEFAULT_GRID.get(est.d, 24), limits)
     return _grid.hdr_levels(g.values, node_weights(g), masses)
 
 
 def mass_above(est, level, *, size=None, limits=None) -> np.ndarray:
-    """Probability mass of the region where the density is at least ``level``."""
+    """Probability mass of the region where the density is at least ``level``.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    level : float or array_like of float
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+
+    Returns
+    -------
+    ndarray, shape (len(level),)
+    """
     g = est.grid(size or DEFAULT_GRID.get(est.d, 24), limits)
     return _grid.mass_above(g.values, node_weights(g), level)
 
@@ -344,6 +479,21 @@ def conditional(est, given: dict, *, size=None, limits=None) -> xr.DataArray:
 
     ``given`` maps variable names to a value or to a (lo, hi) bin; the result
     is normalised on the grid of the remaining variables so it integrates to 1.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    given : dict
+        Variable name -> value or (lo, hi) bin (integrated on 65 nodes).
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+        Here ``size`` is per remaining variable.
+
+    Returns
+    -------
+    xarray.DataArray
+        Its attribute ``conditioning_density`` is the normalising constant.
     """
     if not isinstance(given, dict) or not given:
         raise InputError("given must be a dict {variable: value or (lo, hi)}")
@@ -419,6 +569,17 @@ def standard_error(est, density_values) -> np.ndarray:
     with R(K) of the unit-covariance d-variate kernel and n the effective
     sample size (every row, the point mass's included, for the continuous
     part of an estimate with a point mass).  Asymptotic: it overstates the variance at small n.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    density_values : array_like of float
+        Density f at the points of interest (negative values count as 0).
+
+    Returns
+    -------
+    ndarray
+        Shape of ``density_values``.
     """
     f = np.maximum(np.asarray(density_values, dtype=float), 0.0)
     # with a point mass, f is the continuous part (1 - p) f_c = n^{-1} sum over ALL n rows of
@@ -433,7 +594,20 @@ def bootstrap(est, statistic, replicates=200, seed=None):
 
     The bandwidth matrix is held fixed (the bands describe the sampling
     variability of the estimate, not its smoothing bias: they cover
-    E f_hat = f * K_H, Hall 1992).  Returns an array (replicates, ...).
+    E f_hat = f * K_H, Hall 1992).
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    statistic : callable
+        Called with each refitted estimate; returns an array of fixed shape.
+    replicates : int
+        At least 2.
+    seed : int or numpy.random.Generator, optional
+
+    Returns
+    -------
+    ndarray, shape (replicates, ...)
     """
     replicates = int(replicates)
     if replicates < 2:
@@ -455,6 +629,22 @@ def bootstrap_bands(est, points=None, *, kind="density", level=0.9, replicates=2
 
     ``points`` (m, d) or None for the grid of ``size``; ``kind`` is 'density'
     or 'exceedance'.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    points : array_like, shape (m, d), or pandas.DataFrame, optional
+    kind : {'density', 'exceedance'}
+    level : float
+        Coverage, strictly between 0 and 1.
+    replicates : int
+    seed : int or numpy.random.Generator, optional
+    size : int or sequence of int, optional
+
+    Returns
+    -------
+    lower, upper : ndarray, shape (m,)
+        The (1 - level)/2 and (1 + level)/2 quantiles of the replicates (:func:`bootstrap`).
     """
     if kind not in ("density", "exceedance"):
         raise InputError(f"kind must be 'density' or 'exceedance', got {kind!r}")
@@ -481,6 +671,16 @@ def speed_class_edges(lo: float, hi: float, given=None, classes: int = SPEED_CLA
     One rule for :func:`sector_table` (``lo, hi`` = the estimate's grid limits
     of the speed variable) and the workflow's ``products.sectors`` (the shared
     grid's limits), so a table computed either way has the same classes.
+
+    Parameters
+    ----------
+    lo, hi : float
+    given : array_like of float, optional
+    classes : int
+
+    Returns
+    -------
+    ndarray
     """
     if given is not None and len(given):
         return np.asarray(given, dtype=float)
@@ -488,7 +688,16 @@ def speed_class_edges(lo: float, hi: float, given=None, classes: int = SPEED_CLA
 
 
 def direction_and_speed(est) -> tuple[str, str]:
-    """(direction, speed): the circular variable and the linear one of a 2-variable estimate."""
+    """(direction, speed): the circular variable and the linear one of a 2-variable estimate.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+
+    Returns
+    -------
+    direction, speed : str
+    """
     circular = [n for n, p in zip(est.names, est.support.periods) if p is not None]
     if est.d != 2 or len(circular) != 1:
         raise InputError("a wind-rose table needs one circular and one linear variable, got "
@@ -507,6 +716,21 @@ def sector_table(est, direction: str, speed: str, sectors=16, speed_edges=None, 
     class cell is integrated with ``nodes``-point Gauss-Legendre rules in direction
     and (three panels) in speed, so no grid node is counted twice at the wrap.
     The estimate's other variables, if any, are refused: condition first.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    direction, speed : str
+        The circular variable (period 360 if it has none) and the linear one.
+    sectors : int
+    speed_edges : array_like of float, optional
+    nodes : int
+
+    Returns
+    -------
+    xarray.DataArray
+        Dimensions ("sector", "speed_class"); coordinates ``sector`` (centres),
+        ``speed_lower``, ``speed_upper``.
     """
     di, si = _names_index(est, [direction, speed])
     if est.d != 2:

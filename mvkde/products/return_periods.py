@@ -49,6 +49,24 @@ def return_periods_from_probabilities(exceedance_probability=None, cdf_value=Non
 
     Either argument may be None (its period is then None).  A probability of
     0 gives an infinite period; arrays of any shape (cells first, say).
+
+    Parameters
+    ----------
+    exceedance_probability : array_like of float, optional
+        Joint exceedance probabilities P(X > t).
+    cdf_value : array_like of float, optional
+        Joint CDF values F(t).
+    observations_per_year : float
+        lambda, the number of observations per year (positive).
+
+    Returns
+    -------
+    T_AND, T_OR : ndarray or None
+        1 / (lambda P(X > t)) and 1 / (lambda (1 - F(t))) in years.
+
+    References
+    ----------
+    Salvadori, G. & De Michele, C. (2004). Water Resources Research 40, W12511.
     """
     lam = _rate(observations_per_year)
     out = []
@@ -68,12 +86,45 @@ def return_period_and(est, thresholds, *, observations_per_year, size=None) -> n
 
     ``est.exceedance(thresholds)`` is the probability used (point masses
     included); see the module docstring for the cautions.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+        The fitted estimate.
+    thresholds : array_like, shape (m, d), or pandas.DataFrame
+        One threshold vector t per row.
+    observations_per_year : float
+        lambda, the number of observations per year (positive).
+    size : int or sequence of int, optional
+        Grid size for the probability when no closed form applies.
+
+    Returns
+    -------
+    ndarray, shape (m,)
+        Return periods in years (inf where the probability is 0).
     """
     p = exceedance(est, thresholds, size=size)
     return return_periods_from_probabilities(p, None, observations_per_year=observations_per_year)[0]
 
 
 def return_period_or(est, thresholds, *, observations_per_year, size=None) -> np.ndarray:
-    """T_OR = 1 / (lambda (1 - F(t))) in years at each threshold row, F the joint CDF ``est.cdf``."""
+    """T_OR = 1 / (lambda (1 - F(t))) in years at each threshold row, F the joint CDF ``est.cdf``.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+        The fitted estimate.
+    thresholds : array_like, shape (m, d), or pandas.DataFrame
+        One threshold vector t per row.
+    observations_per_year : float
+        lambda, the number of observations per year (positive).
+    size : int or sequence of int, optional
+        Grid size for the probability when no closed form applies.
+
+    Returns
+    -------
+    ndarray, shape (m,)
+        Return periods in years (inf where the probability is 0).
+    """
     F = cdf(est, thresholds, size=size)
     return return_periods_from_probabilities(None, F, observations_per_year=observations_per_year)[1]
