@@ -46,6 +46,7 @@ import numpy as np
 from scipy import special
 
 from . import cv as _cv
+from . import fast_cv as _fast_cv
 from . import kernels as _dir
 from . import selectors as _sel
 from .spec import DirectionalSpec
@@ -235,14 +236,14 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
     alone_circle = method in ("mlcv", "lscv") and len(spec.circular) == 1 and spec.sphere is None and not q
     alone_sphere = method == "mlcv" and not spec.circular and spec.sphere is not None and not q
     if alone_circle:
-        r = _sel.circular_cv(method, theta[:, 0], weights)
+        r = _fast_cv.circular_cv(method, theta[:, 0], weights)
         j = spec.circular[0]
         kappas[j] = r.kappa
         crit, converged, at_edge = r.criterion, r.converged, r.at_edge
         notes[names[j]] = ("likelihood" if method == "mlcv" else "least-squares") + \
             " cross-validation (binned on a periodic lattice, FFT)"
     elif alone_sphere:
-        r = _sel.sphere_likelihood_cv(units, weights)
+        r = _fast_cv.sphere_likelihood_cv(units, weights)
         ks, crit, converged, at_edge = r.kappa, r.criterion, r.converged, r.at_edge
         for j in spec.sphere:
             notes[names[j]] = "likelihood cross-validation (KD-tree neighbours)"
@@ -279,7 +280,7 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
                 ks = 1.0 / _dir.sphere_rule_h_from_kappa(k_mle, n_eff) ** 2
                 label = "Garcia-Portugues (2013) rule of thumb"
             else:
-                r = _sel.sphere_likelihood_cv(units, weights)
+                r = _fast_cv.sphere_likelihood_cv(units, weights)
                 ks, at_edge = r.kappa, r.at_edge
                 label = "likelihood cross-validation (locations alone, KD-tree neighbours)"
             for j in spec.sphere:
