@@ -52,6 +52,11 @@ class Plan:
     sample_counts: tuple = (0, 0, 0)           # min, median, max samples per cell before dropping NaN
     notes: list = field(default_factory=list)
     origin: str = ""                           # how messages name the input when there are no files
+    label_dims: list = field(default_factory=list)    # "window" and/or "source", in this order
+    label_names: dict = field(default_factory=dict)   # dim -> label names
+    label_info: dict = field(default_factory=dict)    # dim -> what each label is (date range, path)
+    members: np.ndarray | None = None          # (label combinations, *codes shape) bool, or None
+    rates: np.ndarray | None = None            # observations per year of every split (return periods)
 
     @property
     def cell_shape(self) -> tuple:
@@ -62,8 +67,28 @@ class Plan:
         return int(np.prod(self.cell_shape)) if self.cell_dims else 1
 
     @property
-    def n_splits(self) -> int:
+    def n_season(self) -> int:
+        """Splits by season or month within one label combination."""
         return max(1, len(self.split_labels)) if self.split_dim else 1
+
+    @property
+    def n_labels(self) -> int:
+        """Label combinations (windows x sources); 1 without labels."""
+        return int(np.prod([len(self.label_names[d]) for d in self.label_dims])) if self.label_dims else 1
+
+    @property
+    def n_splits(self) -> int:
+        """Every sample set of a cell: label combinations x seasons (flattened in that order)."""
+        return self.n_labels * self.n_season
+
+    @property
+    def split_shape(self) -> tuple:
+        """The flattened split axis as output dims: one per label dim, then the season/month split."""
+        return tuple(len(self.label_names[d]) for d in self.label_dims) + ((self.n_season,) if self.split_dim else ())
+
+    @property
+    def split_dims(self) -> list:
+        return list(self.label_dims) + ([self.split_dim] if self.split_dim else [])
 
     def tiles(self):
         """Slices over the cell dims, one tuple per block."""
@@ -87,8 +112,11 @@ class Plan:
                 elif isinstance(value, np.datetime64):
                     value = str(value)[:10]
                 parts.append(f"{dim}={value}")
+        index = np.unravel_index(int(split), self.split_shape) if self.split_shape else ()
+        for dim, i in zip(self.label_dims, index):
+            parts.append(f"{dim}={self.label_names[dim][i]}")
         if self.split_dim:
-            parts.append(f"{self.split_dim}={self.split_labels[split]}")
+            parts.append(f"{self.split_dim}={self.split_labels[int(split) % self.n_season]}")
         return ", ".join(parts) if parts else "the only cell"
 
     @property
@@ -135,6 +163,8 @@ def _tile_shape(shape, block_size) -> tuple:
 def prepare(wf: Workflow) -> Plan:
     """Open the inputs lazily, apply the selection and tile the cells."""
     inp = wf["input"]
+    if inp["sources"]:
+        return _prepare_sources(wf)
     files = _io.expand_paths(wf.input_paths())
     kind = _io.input_format(files, inp["format"])
     if kind == "netcdf":
@@ -142,6 +172,39 @@ def prepare(wf: Workflow) -> Plan:
     else:
         plan = _prepare_table(wf, files, kind)
     return plan
+
+
+def _prepare_sources(wf: Workflow) -> Plan:
+    """input.sources: each source opened (gridded: lazily) and joined into one plan with a source label."""
+    inp = wf["input"]
+    opened, tables, all_files, kinds = {}, [], [], set()
+    for name, pattern in inp["sources"].items():
+        files = _io.expand_paths(wf.resolve_paths([pattern]))
+        kind = _io.input_format(files, inp["format"])
+        kinds.add(kind)
+        all_files += files
+        origin = files[0].name + (f" and {len(files) - 1} more file(s)" if len(files) > 1 else "")
+        if kind == "netcdf":
+            opened[name] = (_io.open_gridded(files, chunks=None if len(files) == 1 else _file_chunks(wf, files)),
+                            origin)
+        else:
+            tables.append((name, files, kind))
+    if len(kinds) > 1:
+        raise ConfigError(f"{wf.source}: input.sources mix gridded and table inputs ({', '.join(sorted(kinds))}): "
+                          "every source must have the same layout")
+    if opened:
+        return plan_from_dataset(wf, opened, files=all_files, origin=", ".join(o for _, o in opened.values()))
+    frames, index = [], []
+    for k, (name, files, kind) in enumerate(tables):
+        table = _read_table_of(wf, files, kind)
+        missing = [v for v in wf.variables if v not in table.columns]
+        if missing:
+            raise InputError(f"input.sources.{name} ({files[0].name}) has no column {', '.join(missing)}: every "
+                             f"source needs input.variables = {wf.variables}")
+        frames.append(table)
+        index.append(np.full(len(table), k, dtype=np.int16))
+    return plan_from_table(wf, pd.concat(frames, ignore_index=True), files=all_files, kind=tables[0][2],
+                           origin=tables[0][1][0].name, source_of=np.concatenate(index))
 
 
 def available_memory() -> int:
@@ -253,30 +316,13 @@ def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "
     inp, src = wf["input"], wf.source
     names = wf.variables
     files = list(files)
-    missing = [v for v in names if v not in ds.data_vars]
-    if missing:
-        raise InputError(f"input.variables: {', '.join(missing)} not in {origin}; data variables there: "
-                         f"{', '.join(map(str, ds.data_vars))}")
-    for v in names:
-        if ds[v].dtype.kind not in "fiu":
-            raise InputError(f"input.variables: {v} in {origin} holds {ds[v].dtype} values, not "
-                             "numbers: choose a numeric variable")
-    dims = ds[names[0]].dims
-    for v in names[1:]:
-        if set(ds[v].dims) != set(dims):
-            raise InputError(f"input.variables: {v} has dims {ds[v].dims} but {names[0]} has {dims}: "
-                             "the variables must share their dimensions")
-    for s in inp["sample_dims"]:
-        if s not in dims:
-            raise ConfigError(f"{src}: input.sample_dims names {s!r}, which is not a dimension of "
-                              f"{names[0]} (dims: {', '.join(dims)})")
-    sample_dims = list(inp["sample_dims"])
-    cell_dims = [d for d in dims if d not in sample_dims]
-    clash = set(names) & set(cell_dims)
-    if clash:
-        raise InputError(f"variable name(s) {sorted(clash)} equal cell dimension names: rename them")
-    ds = _select(ds[names], wf, dims, sample_dims, origin)
     tname = inp["time"]
+    source_of = None
+    if isinstance(ds, dict):  # input.sources: name -> (Dataset, how messages name it)
+        ds, source_of, dims, sample_dims, cell_dims = _combine_sources(wf, ds)
+    else:
+        dims, sample_dims, cell_dims = _check_dataset(wf, ds, origin)
+        ds = _select(ds[names], wf, dims, sample_dims, origin)
 
     cell_shape = tuple(ds.sizes[d] for d in cell_dims)
     n_per_cell = int(np.prod([ds.sizes[d] for d in sample_dims]))
@@ -309,8 +355,194 @@ def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "
         per = np.bincount(codes.ravel()[codes.ravel() >= 0], minlength=len(labels))
         per = per * (n // max(1, codes.size))
         counts = (int(per.min()), int(np.median(per)), int(per.max()))
-    return Plan(wf, "netcdf", files, arr, codes, cell_dims, {d: ds[d] for d in cell_dims if d in ds.coords},
-                inp["split_by"], labels, tile, list(names), units, attrs, counts, origin=origin)
+    split_codes_1d = codes.ravel()
+    times = ds[tname].values if tname in ds.coords else np.arange(ds.sizes.get(tname, 0))
+    label_dims, label_names, label_info, members = [], {}, {}, None
+    if inp["windows"] or source_of is not None:
+        if tname not in sample_dims:
+            raise ConfigError(f"{src}: input.windows selects along the time dimension {tname!r}: list it in "
+                              "input.sample_dims")
+        label_dims, label_names, label_info, members = _label_members(
+            wf, times, source_of, list(inp["sources"]), origin)
+    n_season = max(1, len(labels)) if inp["split_by"] else 1
+    n_labels = 1 if members is None else members.shape[0]
+    rates = _rates(wf, times, members, split_codes_1d if inp["split_by"] else None, n_season, n_labels, origin) \
+        if tname in sample_dims else _rates(wf, [], None, None, n_season, n_labels, origin)
+    if members is not None:
+        per = [int(np.sum(members[m] & (split_codes_1d == s) if inp["split_by"] else members[m]))
+               * (n // max(1, members.shape[1])) for m in range(n_labels) for s in range(n_season)]
+        counts = (int(min(per)), int(np.median(per)), int(max(per)))
+        shape = [1] * (len(cell_dims) + len(sample_dims))
+        shape[len(cell_dims) + sample_dims.index(tname)] = members.shape[1]
+        members = members.reshape((members.shape[0],) + tuple(shape))
+    plan = Plan(wf, "netcdf", files, arr, codes, cell_dims, {d: ds[d] for d in cell_dims if d in ds.coords},
+                inp["split_by"], labels, tile, list(names), units, attrs, counts, origin=origin,
+                label_dims=label_dims, label_names=label_names, label_info=label_info, members=members,
+                rates=rates)
+    _note_empty_labels(plan)
+    return plan
+
+
+def _rates_by_unique(wf: Workflow, row_times, codes_flat, n_season, where):
+    """Observations per year per season of a table: over its distinct dates (stations share them)."""
+    times, first = np.unique(row_times, return_index=True)
+    return _rates(wf, times, None, np.asarray(codes_flat)[first], n_season, 1, where)
+
+
+def _note_empty_labels(plan: Plan) -> None:
+    """A window (or source) with no sample of the selection: its cells are flagged, not fatal."""
+    if plan.members is None:
+        return
+    flat = plan.members.reshape(plan.members.shape[0], -1)
+    sizes = [len(plan.label_names[d]) for d in plan.label_dims]
+    for m, idx in enumerate(np.ndindex(*sizes)):
+        if not flat[m].any():
+            what = ", ".join(f"{d}={plan.label_names[d][i]}" for d, i in zip(plan.label_dims, idx))
+            plan.notes.append(f"{what} holds no sample of the selection: its cells get NaN and the "
+                              "too_few_samples flag")
+
+
+def _check_dataset(wf: Workflow, ds: xr.Dataset, origin: str):
+    """(dims, sample_dims, cell_dims) of a gridded input, after refusing what cannot be a sample."""
+    inp, src = wf["input"], wf.source
+    names = wf.variables
+    missing = [v for v in names if v not in ds.data_vars]
+    if missing:
+        raise InputError(f"input.variables: {', '.join(missing)} not in {origin}; data variables there: "
+                         f"{', '.join(map(str, ds.data_vars))}")
+    for v in names:
+        if ds[v].dtype.kind not in "fiu":
+            raise InputError(f"input.variables: {v} in {origin} holds {ds[v].dtype} values, not "
+                             "numbers: choose a numeric variable")
+    dims = ds[names[0]].dims
+    for v in names[1:]:
+        if set(ds[v].dims) != set(dims):
+            raise InputError(f"input.variables: {v} has dims {ds[v].dims} but {names[0]} has {dims}: "
+                             "the variables must share their dimensions")
+    for s in inp["sample_dims"]:
+        if s not in dims:
+            raise ConfigError(f"{src}: input.sample_dims names {s!r}, which is not a dimension of "
+                              f"{names[0]} (dims: {', '.join(dims)})")
+    sample_dims = list(inp["sample_dims"])
+    cell_dims = [d for d in dims if d not in sample_dims]
+    clash = set(names) & set(cell_dims)
+    if clash:
+        raise InputError(f"variable name(s) {sorted(clash)} equal cell dimension names: rename them")
+    return dims, sample_dims, cell_dims
+
+
+def _combine_sources(wf: Workflow, parts: dict):
+    """input.sources: each source checked and selected, then joined along the time dimension.
+
+    Returns (dataset, source index per time step, dims, sample_dims, cell_dims).  Every source must
+    hold input.variables with the same units and the same cells.
+    """
+    inp, src = wf["input"], wf.source
+    names, tname = wf.variables, inp["time"]
+    selected, index, first = [], [], None
+    for k, (name, (ds, origin)) in enumerate(parts.items()):
+        where = f"input.sources.{name} ({origin})"
+        missing = [v for v in names if v not in ds.data_vars]
+        if missing:
+            raise InputError(f"{where} has no variable {', '.join(missing)}: every source needs input.variables "
+                             f"= {names}; its data variables are {', '.join(map(str, ds.data_vars))}")
+        dims, sample_dims, cell_dims = _check_dataset(wf, ds, where)
+        if tname not in sample_dims:
+            raise ConfigError(f"{src}: input.sources joins the sources along the time dimension {tname!r}: "
+                              "list it in input.sample_dims")
+        part = _select(ds[names], wf, dims, sample_dims, where)
+        if first is None:
+            first = (name, part, dims, sample_dims, cell_dims)
+        else:
+            fname, fpart = first[0], first[1]
+            if set(dims) != set(first[2]):
+                raise InputError(f"{where} has dims {dims} but input.sources.{fname} has {first[2]}: the sources "
+                                 "must share their dimensions")
+            for v in names:
+                u, fu = part[v].attrs.get("units"), fpart[v].attrs.get("units")
+                if u != fu and wf.variable(v)["units"] is None:
+                    raise InputError(f"{where}: variable {v} has units {u!r} but input.sources.{fname} has "
+                                     f"{fu!r}: convert one source (or set variables.{v}.units if they agree)")
+            for c in cell_dims:
+                if part.sizes[c] != fpart.sizes[c] or (c in part.coords and c in fpart.coords and not np.allclose(
+                        np.asarray(part[c].values, dtype=float), np.asarray(fpart[c].values, dtype=float))):
+                    raise InputError(f"{where}: its {c!r} cells differ from those of input.sources.{fname}: the "
+                                     "sources must cover the same cells (select them with input.box)")
+            part = part.assign_coords({c: fpart[c] for c in cell_dims if c in fpart.coords})
+        selected.append(part.chunk({}))  # dask-backed: the join stays lazy
+        index.append(np.full(part.sizes[tname], k, dtype=np.int16))
+    ds = xr.concat(selected, dim=tname, coords="minimal", compat="override", join="override")
+    return ds, np.concatenate(index), first[2], first[3], first[4]
+
+
+def _label_members(wf: Workflow, times, source_of, source_names, where: str):
+    """(label_dims, label_names, label_info, members (M, T) bool) of the windows and sources."""
+    inp = wf["input"]
+    dims, names, info, layers = [], {}, {}, []
+    if inp["windows"]:
+        stamps = _as_datetimes(times, wf, where, "input.windows")
+        dims.append("window")
+        names["window"] = list(inp["windows"])
+        info["window"] = [f"{a} to {b}" for a, b in inp["windows"].values()]
+        rows = []
+        for a, b in inp["windows"].values():
+            start, end = pd.Timestamp(a), pd.Timestamp(b) + pd.Timedelta(days=1)  # the end day included
+            rows.append((stamps >= start) & (stamps < end))
+        layers.append(np.array(rows))
+    if source_of is not None:
+        dims.append("source")
+        names["source"] = list(source_names)
+        info["source"] = [inp["sources"][n] for n in source_names]
+        layers.append(np.array([source_of == k for k in range(len(source_names))]))
+    if not dims:
+        return [], {}, {}, None
+    members = layers[0]
+    for more in layers[1:]:
+        members = (members[:, None, :] & more[None, :, :]).reshape(-1, members.shape[-1])
+    return dims, names, info, members
+
+
+def _as_datetimes(times, wf: Workflow, where: str, key: str) -> pd.DatetimeIndex:
+    values = np.asarray(times)
+    if np.issubdtype(values.dtype, np.datetime64):
+        return pd.DatetimeIndex(values)
+    if values.dtype == object and values.size and hasattr(values.flat[0], "year"):
+        return pd.DatetimeIndex([pd.Timestamp(t.year, t.month, t.day) for t in values.ravel()])
+    raise ConfigError(f"{wf.source}: {key} selects by date, but the time coordinate "
+                      f"{wf['input']['time']!r} of {where} holds plain {values.dtype} numbers: give the "
+                      "input a CF time coordinate (units 'days since YYYY-MM-DD')")
+
+
+def _rates(wf: Workflow, times, members, season_codes, n_season, n_labels, where: str):
+    """Observations per year of every split (label combination x season): its samples over the years
+    its label spans; ``products.observations_per_year`` when given; None when not asked for."""
+    prod = wf["products"]
+    S = n_labels * n_season
+    if not prod["return_periods"]:
+        return None
+    if prod["observations_per_year"] is not None:
+        return np.full(S, float(prod["observations_per_year"]))
+    values = np.asarray(times)
+    if not (np.issubdtype(values.dtype, np.datetime64) or (values.dtype == object and values.size
+                                                            and hasattr(values.flat[0], "year"))):
+        raise ConfigError(f"{wf.source}: products.return_periods needs the observations per year, and the time "
+                          f"coordinate {wf['input']['time']!r} of {where} holds plain {values.dtype} numbers, "
+                          "not dates: set products.observations_per_year (e.g. 365.25 for daily samples, 1 "
+                          "for annual maxima)")
+    stamps = _as_datetimes(values, wf, where, "products.return_periods")
+    day = np.asarray(stamps.values, dtype="datetime64[ns]").astype(np.int64) / 86400e9
+    members = np.ones((1, day.size), dtype=bool) if members is None else members
+    codes = np.zeros(day.size, dtype=int) if season_codes is None else np.asarray(season_codes).ravel()
+    out = np.full(S, np.nan)
+    for m in range(n_labels):
+        t = np.sort(day[members[m]])
+        if t.size < 2:
+            continue
+        step = float(np.median(np.diff(t))) if t.size > 1 else 1.0
+        years = (t[-1] - t[0] + step) / 365.2425  # mean Gregorian year
+        for s in range(n_season):
+            out[m * n_season + s] = float(np.sum(members[m] & (codes == s))) / years
+    return out
 
 
 def _select(ds: xr.Dataset, wf: Workflow, dims, sample_dims, origin: str) -> xr.Dataset:
@@ -371,12 +603,23 @@ def _file_chunks(wf: Workflow, files) -> dict:
 
 
 def _prepare_table(wf: Workflow, files, kind) -> Plan:
+    table = _read_table_of(wf, files, kind)
+    return plan_from_table(wf, table, files=files, kind=kind, origin=files[0].name)
+
+
+def _table_needs_time(inp, prod) -> bool:
+    return bool(inp["time_range"] or inp["months"] or inp["seasons"] or inp["split_by"] or inp["windows"]
+                or (prod["return_periods"] and prod["observations_per_year"] is None))
+
+
+def _read_table_of(wf: Workflow, files, kind) -> pd.DataFrame:
+    """The columns a workflow needs from a table input, after checking they are there."""
     inp, src = wf["input"], wf.source
     names = wf.variables
     header = _io.table_columns(files, kind)
     group = inp["group_by"]
     tname = inp["time"]
-    needs_time = bool(inp["time_range"] or inp["months"] or inp["seasons"] or inp["split_by"])
+    needs_time = _table_needs_time(inp, wf["products"])
     wanted = list(names) + ([group] if group else []) + ([tname] if needs_time else []) + list(inp["box"])
     wanted = list(dict.fromkeys(wanted))
     for col in wanted:
@@ -385,19 +628,23 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
                     else "input.time" if col == tname else f"input.box.{col}")
             raise ConfigError(f"{src}: {what} names column {col!r}, which is not in {files[0].name} "
                               f"(columns: {', '.join(header)})")
-    table = _io.read_table(files, kind, wanted)
-    return plan_from_table(wf, table, files=files, kind=kind, origin=files[0].name)
+    return _io.read_table(files, kind, wanted)
 
 
 def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = "table",
-                    origin: str = "the DataFrame") -> Plan:
-    """The plan of a table already read (one density per ``input.group_by`` value)."""
+                    origin: str = "the DataFrame", source_of=None) -> Plan:
+    """The plan of a table already read (one density per ``input.group_by`` value).
+
+    ``source_of`` (the source index of every row) labels the rows of joined ``input.sources``.
+    """
     inp = wf["input"]
     names = wf.variables
     files = list(files)
     group = inp["group_by"]
     tname = inp["time"]
-    needs_time = bool(inp["time_range"] or inp["months"] or inp["seasons"] or inp["split_by"])
+    needs_time = _table_needs_time(inp, wf["products"])
+    if source_of is not None:
+        table = table.assign(_mvkde_source=np.asarray(source_of))
     for v in names:
         if not pd.api.types.is_numeric_dtype(table[v]):
             raise InputError(f"input.variables: column {v!r} of {origin} is not numeric: list numeric "
@@ -430,6 +677,18 @@ def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = 
                                           inp["split_by"], inp["seasons"])
     else:
         codes_flat, labels = np.zeros(len(table), dtype=np.int16), []
+    label_dims, label_names, label_info, members_flat = [], {}, {}, None
+    row_times = pd.to_datetime(table[tname]).to_numpy() if needs_time else np.arange(len(table))
+    if inp["windows"] or source_of is not None:
+        label_dims, label_names, label_info, members_flat = _label_members(
+            wf, row_times, table["_mvkde_source"].to_numpy() if source_of is not None else None,
+            list(inp["sources"]), origin)
+    n_season = max(1, len(labels)) if inp["split_by"] else 1
+    n_labels = 1 if members_flat is None else members_flat.shape[0]
+    rates = _rates(wf, np.unique(row_times) if members_flat is None else row_times, members_flat,
+                   codes_flat if inp["split_by"] else None, n_season, n_labels, origin) \
+        if members_flat is not None else _rates(wf, np.unique(row_times), None, None, n_season, 1, origin) \
+        if not inp["split_by"] else _rates_by_unique(wf, row_times, codes_flat, n_season, origin)
     if group:
         keys, uniques = pd.factorize(table[group], sort=True)
     else:
@@ -443,10 +702,15 @@ def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = 
     pos = np.arange(len(keys)) - np.repeat(np.cumsum(sizes) - sizes, sizes)
     values[keys[order], pos] = table[names].to_numpy(dtype=float)[order]
     codes[keys[order], pos] = codes_flat[order]
+    members = None
+    if members_flat is not None:
+        members = np.zeros((members_flat.shape[0], n_groups, width), dtype=bool)
+        members[:, keys[order], pos] = members_flat[:, order]
 
     cell_dims = [group] if group else []
     if not group:
         values, codes = values[0], codes[0]
+        members = None if members is None else members[:, 0]
     tile = _tile_shape((n_groups,) if group else (), block_cells(wf, n_groups))
     import dask.array as da
 
@@ -457,7 +721,9 @@ def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = 
     units = [wf.variable(v)["units"] or "" for v in names]
     counts = (int(sizes.min()), int(np.median(sizes)), int(sizes.max()))
     plan = Plan(wf, kind, files, arr, codes, cell_dims, cell_coords, inp["split_by"], labels, tile,
-                list(names), units, {v: {} for v in names}, counts, origin=origin)
+                list(names), units, {v: {} for v in names}, counts, origin=origin, label_dims=label_dims,
+                label_names=label_names, label_info=label_info, members=members, rates=rates)
+    _note_empty_labels(plan)
     if inp["sample_dims"] != ["time"]:
         plan.notes.append("input.sample_dims is ignored for tables: every row of a group is a sample")
     if not any(units):
