@@ -22,6 +22,7 @@ import xarray as xr
 
 from ..cells import engine_work_bytes
 from ..errors import ConfigError, InputError
+from . import labels as _labels
 from . import readers as _io
 from .workflow import SEASONS, Workflow
 
@@ -164,7 +165,7 @@ def prepare(wf: Workflow) -> Plan:
     """Open the inputs lazily, apply the selection and tile the cells."""
     inp = wf["input"]
     if inp["sources"]:
-        return _prepare_sources(wf)
+        return _labels.prepare_sources(wf, plan_from_dataset, plan_from_table, _read_table_of, _file_chunks)
     files = _io.expand_paths(wf.input_paths())
     kind = _io.input_format(files, inp["format"])
     if kind == "netcdf":
@@ -172,39 +173,6 @@ def prepare(wf: Workflow) -> Plan:
     else:
         plan = _prepare_table(wf, files, kind)
     return plan
-
-
-def _prepare_sources(wf: Workflow) -> Plan:
-    """input.sources: each source opened (gridded: lazily) and joined into one plan with a source label."""
-    inp = wf["input"]
-    opened, tables, all_files, kinds = {}, [], [], set()
-    for name, pattern in inp["sources"].items():
-        files = _io.expand_paths(wf.resolve_paths([pattern]))
-        kind = _io.input_format(files, inp["format"])
-        kinds.add(kind)
-        all_files += files
-        origin = files[0].name + (f" and {len(files) - 1} more file(s)" if len(files) > 1 else "")
-        if kind == "netcdf":
-            opened[name] = (_io.open_gridded(files, chunks=None if len(files) == 1 else _file_chunks(wf, files)),
-                            origin)
-        else:
-            tables.append((name, files, kind))
-    if len(kinds) > 1:
-        raise ConfigError(f"{wf.source}: input.sources mix gridded and table inputs ({', '.join(sorted(kinds))}): "
-                          "every source must have the same layout")
-    if opened:
-        return plan_from_dataset(wf, opened, files=all_files, origin=", ".join(o for _, o in opened.values()))
-    frames, index = [], []
-    for k, (name, files, kind) in enumerate(tables):
-        table = _read_table_of(wf, files, kind)
-        missing = [v for v in wf.variables if v not in table.columns]
-        if missing:
-            raise InputError(f"input.sources.{name} ({files[0].name}) has no column {', '.join(missing)}: every "
-                             f"source needs input.variables = {wf.variables}")
-        frames.append(table)
-        index.append(np.full(len(table), k, dtype=np.int16))
-    return plan_from_table(wf, pd.concat(frames, ignore_index=True), files=all_files, kind=tables[0][2],
-                           origin=tables[0][1][0].name, source_of=np.concatenate(index))
 
 
 def available_memory() -> int:
@@ -319,7 +287,7 @@ def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "
     tname = inp["time"]
     source_of = None
     if isinstance(ds, dict):  # input.sources: name -> (Dataset, how messages name it)
-        ds, source_of, dims, sample_dims, cell_dims = _combine_sources(wf, ds)
+        ds, source_of, dims, sample_dims, cell_dims = _labels.combine_sources(wf, ds, _check_dataset, _select)
     else:
         dims, sample_dims, cell_dims = _check_dataset(wf, ds, origin)
         ds = _select(ds[names], wf, dims, sample_dims, origin)
@@ -362,12 +330,12 @@ def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "
         if tname not in sample_dims:
             raise ConfigError(f"{src}: input.windows selects along the time dimension {tname!r}: list it in "
                               "input.sample_dims")
-        label_dims, label_names, label_info, members = _label_members(
+        label_dims, label_names, label_info, members = _labels.label_members(
             wf, times, source_of, list(inp["sources"]), origin)
     n_season = max(1, len(labels)) if inp["split_by"] else 1
     n_labels = 1 if members is None else members.shape[0]
-    rates = _rates(wf, times, members, split_codes_1d if inp["split_by"] else None, n_season, n_labels, origin) \
-        if tname in sample_dims else _rates(wf, [], None, None, n_season, n_labels, origin)
+    rates = _labels.rates(wf, times, members, split_codes_1d if inp["split_by"] else None, n_season, n_labels, origin) \
+        if tname in sample_dims else _labels.rates(wf, [], None, None, n_season, n_labels, origin)
     if members is not None:
         per = [int(np.sum(members[m] & (split_codes_1d == s) if inp["split_by"] else members[m]))
                * (n // max(1, members.shape[1])) for m in range(n_labels) for s in range(n_season)]
@@ -379,27 +347,8 @@ def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "
                 inp["split_by"], labels, tile, list(names), units, attrs, counts, origin=origin,
                 label_dims=label_dims, label_names=label_names, label_info=label_info, members=members,
                 rates=rates)
-    _note_empty_labels(plan)
+    _labels.note_empty_labels(plan)
     return plan
-
-
-def _rates_by_unique(wf: Workflow, row_times, codes_flat, n_season, where):
-    """Observations per year per season of a table: over its distinct dates (stations share them)."""
-    times, first = np.unique(row_times, return_index=True)
-    return _rates(wf, times, None, np.asarray(codes_flat)[first], n_season, 1, where)
-
-
-def _note_empty_labels(plan: Plan) -> None:
-    """A window (or source) with no sample of the selection: its cells are flagged, not fatal."""
-    if plan.members is None:
-        return
-    flat = plan.members.reshape(plan.members.shape[0], -1)
-    sizes = [len(plan.label_names[d]) for d in plan.label_dims]
-    for m, idx in enumerate(np.ndindex(*sizes)):
-        if not flat[m].any():
-            what = ", ".join(f"{d}={plan.label_names[d][i]}" for d, i in zip(plan.label_dims, idx))
-            plan.notes.append(f"{what} holds no sample of the selection: its cells get NaN and the "
-                              "too_few_samples flag")
 
 
 def _check_dataset(wf: Workflow, ds: xr.Dataset, origin: str):
@@ -429,120 +378,6 @@ def _check_dataset(wf: Workflow, ds: xr.Dataset, origin: str):
     if clash:
         raise InputError(f"variable name(s) {sorted(clash)} equal cell dimension names: rename them")
     return dims, sample_dims, cell_dims
-
-
-def _combine_sources(wf: Workflow, parts: dict):
-    """input.sources: each source checked and selected, then joined along the time dimension.
-
-    Returns (dataset, source index per time step, dims, sample_dims, cell_dims).  Every source must
-    hold input.variables with the same units and the same cells.
-    """
-    inp, src = wf["input"], wf.source
-    names, tname = wf.variables, inp["time"]
-    selected, index, first = [], [], None
-    for k, (name, (ds, origin)) in enumerate(parts.items()):
-        where = f"input.sources.{name} ({origin})"
-        missing = [v for v in names if v not in ds.data_vars]
-        if missing:
-            raise InputError(f"{where} has no variable {', '.join(missing)}: every source needs input.variables "
-                             f"= {names}; its data variables are {', '.join(map(str, ds.data_vars))}")
-        dims, sample_dims, cell_dims = _check_dataset(wf, ds, where)
-        if tname not in sample_dims:
-            raise ConfigError(f"{src}: input.sources joins the sources along the time dimension {tname!r}: "
-                              "list it in input.sample_dims")
-        part = _select(ds[names], wf, dims, sample_dims, where)
-        if first is None:
-            first = (name, part, dims, sample_dims, cell_dims)
-        else:
-            fname, fpart = first[0], first[1]
-            if set(dims) != set(first[2]):
-                raise InputError(f"{where} has dims {dims} but input.sources.{fname} has {first[2]}: the sources "
-                                 "must share their dimensions")
-            for v in names:
-                u, fu = part[v].attrs.get("units"), fpart[v].attrs.get("units")
-                if u != fu and wf.variable(v)["units"] is None:
-                    raise InputError(f"{where}: variable {v} has units {u!r} but input.sources.{fname} has "
-                                     f"{fu!r}: convert one source (or set variables.{v}.units if they agree)")
-            for c in cell_dims:
-                if part.sizes[c] != fpart.sizes[c] or (c in part.coords and c in fpart.coords and not np.allclose(
-                        np.asarray(part[c].values, dtype=float), np.asarray(fpart[c].values, dtype=float))):
-                    raise InputError(f"{where}: its {c!r} cells differ from those of input.sources.{fname}: the "
-                                     "sources must cover the same cells (select them with input.box)")
-            part = part.assign_coords({c: fpart[c] for c in cell_dims if c in fpart.coords})
-        selected.append(part.chunk({}))  # dask-backed: the join stays lazy
-        index.append(np.full(part.sizes[tname], k, dtype=np.int16))
-    ds = xr.concat(selected, dim=tname, coords="minimal", compat="override", join="override")
-    return ds, np.concatenate(index), first[2], first[3], first[4]
-
-
-def _label_members(wf: Workflow, times, source_of, source_names, where: str):
-    """(label_dims, label_names, label_info, members (M, T) bool) of the windows and sources."""
-    inp = wf["input"]
-    dims, names, info, layers = [], {}, {}, []
-    if inp["windows"]:
-        stamps = _as_datetimes(times, wf, where, "input.windows")
-        dims.append("window")
-        names["window"] = list(inp["windows"])
-        info["window"] = [f"{a} to {b}" for a, b in inp["windows"].values()]
-        rows = []
-        for a, b in inp["windows"].values():
-            start, end = pd.Timestamp(a), pd.Timestamp(b) + pd.Timedelta(days=1)  # the end day included
-            rows.append((stamps >= start) & (stamps < end))
-        layers.append(np.array(rows))
-    if source_of is not None:
-        dims.append("source")
-        names["source"] = list(source_names)
-        info["source"] = [inp["sources"][n] for n in source_names]
-        layers.append(np.array([source_of == k for k in range(len(source_names))]))
-    if not dims:
-        return [], {}, {}, None
-    members = layers[0]
-    for more in layers[1:]:
-        members = (members[:, None, :] & more[None, :, :]).reshape(-1, members.shape[-1])
-    return dims, names, info, members
-
-
-def _as_datetimes(times, wf: Workflow, where: str, key: str) -> pd.DatetimeIndex:
-    values = np.asarray(times)
-    if np.issubdtype(values.dtype, np.datetime64):
-        return pd.DatetimeIndex(values)
-    if values.dtype == object and values.size and hasattr(values.flat[0], "year"):
-        return pd.DatetimeIndex([pd.Timestamp(t.year, t.month, t.day) for t in values.ravel()])
-    raise ConfigError(f"{wf.source}: {key} selects by date, but the time coordinate "
-                      f"{wf['input']['time']!r} of {where} holds plain {values.dtype} numbers: give the "
-                      "input a CF time coordinate (units 'days since YYYY-MM-DD')")
-
-
-def _rates(wf: Workflow, times, members, season_codes, n_season, n_labels, where: str):
-    """Observations per year of every split (label combination x season): its samples over the years
-    its label spans; ``products.observations_per_year`` when given; None when not asked for."""
-    prod = wf["products"]
-    S = n_labels * n_season
-    if not prod["return_periods"]:
-        return None
-    if prod["observations_per_year"] is not None:
-        return np.full(S, float(prod["observations_per_year"]))
-    values = np.asarray(times)
-    if not (np.issubdtype(values.dtype, np.datetime64) or (values.dtype == object and values.size
-                                                            and hasattr(values.flat[0], "year"))):
-        raise ConfigError(f"{wf.source}: products.return_periods needs the observations per year, and the time "
-                          f"coordinate {wf['input']['time']!r} of {where} holds plain {values.dtype} numbers, "
-                          "not dates: set products.observations_per_year (e.g. 365.25 for daily samples, 1 "
-                          "for annual maxima)")
-    stamps = _as_datetimes(values, wf, where, "products.return_periods")
-    day = np.asarray(stamps.values, dtype="datetime64[ns]").astype(np.int64) / 86400e9
-    members = np.ones((1, day.size), dtype=bool) if members is None else members
-    codes = np.zeros(day.size, dtype=int) if season_codes is None else np.asarray(season_codes).ravel()
-    out = np.full(S, np.nan)
-    for m in range(n_labels):
-        t = np.sort(day[members[m]])
-        if t.size < 2:
-            continue
-        step = float(np.median(np.diff(t))) if t.size > 1 else 1.0
-        years = (t[-1] - t[0] + step) / 365.2425  # mean Gregorian year
-        for s in range(n_season):
-            out[m * n_season + s] = float(np.sum(members[m] & (codes == s))) / years
-    return out
 
 
 def _select(ds: xr.Dataset, wf: Workflow, dims, sample_dims, origin: str) -> xr.Dataset:
@@ -680,15 +515,15 @@ def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = 
     label_dims, label_names, label_info, members_flat = [], {}, {}, None
     row_times = pd.to_datetime(table[tname]).to_numpy() if needs_time else np.arange(len(table))
     if inp["windows"] or source_of is not None:
-        label_dims, label_names, label_info, members_flat = _label_members(
+        label_dims, label_names, label_info, members_flat = _labels.label_members(
             wf, row_times, table["_mvkde_source"].to_numpy() if source_of is not None else None,
             list(inp["sources"]), origin)
     n_season = max(1, len(labels)) if inp["split_by"] else 1
     n_labels = 1 if members_flat is None else members_flat.shape[0]
-    rates = _rates(wf, np.unique(row_times) if members_flat is None else row_times, members_flat,
+    rates = _labels.rates(wf, np.unique(row_times) if members_flat is None else row_times, members_flat,
                    codes_flat if inp["split_by"] else None, n_season, n_labels, origin) \
-        if members_flat is not None else _rates(wf, np.unique(row_times), None, None, n_season, 1, origin) \
-        if not inp["split_by"] else _rates_by_unique(wf, row_times, codes_flat, n_season, origin)
+        if members_flat is not None else _labels.rates(wf, np.unique(row_times), None, None, n_season, 1, origin) \
+        if not inp["split_by"] else _labels.rates_by_unique(wf, row_times, codes_flat, n_season, origin)
     if group:
         keys, uniques = pd.factorize(table[group], sort=True)
     else:
@@ -723,7 +558,7 @@ def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = 
     plan = Plan(wf, kind, files, arr, codes, cell_dims, cell_coords, inp["split_by"], labels, tile,
                 list(names), units, {v: {} for v in names}, counts, origin=origin, label_dims=label_dims,
                 label_names=label_names, label_info=label_info, members=members, rates=rates)
-    _note_empty_labels(plan)
+    _labels.note_empty_labels(plan)
     if inp["sample_dims"] != ["time"]:
         plan.notes.append("input.sample_dims is ignored for tables: every row of a group is a sample")
     if not any(units):
