@@ -125,7 +125,8 @@ def as_datetimes(times, wf, where: str, key: str) -> pd.DatetimeIndex:
 
 def rates(wf, times, members, season_codes, n_season, n_labels, where: str):
     """Observations per year of every split (label combination x season): its samples over the years
-    its label spans; ``products.observations_per_year`` when given; None when not asked for."""
+    its label spans (over the calendar years holding samples when input.months / seasons select part
+    of each year); ``products.observations_per_year`` when given; None when not asked for."""
     prod = wf["products"]
     S = n_labels * n_season
     if not prod["return_periods"]:
@@ -144,12 +145,18 @@ def rates(wf, times, members, season_codes, n_season, n_labels, where: str):
     members = np.ones((1, day.size), dtype=bool) if members is None else members
     codes = np.zeros(day.size, dtype=int) if season_codes is None else np.asarray(season_codes).ravel()
     out = np.full(S, np.nan)
+    # with a month or season selection the samples of a year are one part of it: count the calendar
+    # years that hold samples; otherwise the span of the label's samples (one step added) in years
+    by_year = bool(wf["input"]["months"] or wf["input"]["seasons"])
     for m in range(n_labels):
-        t = np.sort(day[members[m]])
+        order = np.argsort(day[members[m]])
+        t = day[members[m]][order]
         if t.size < 2:
             continue
-        step = float(np.median(np.diff(t))) if t.size > 1 else 1.0
-        years = (t[-1] - t[0] + step) / 365.2425  # mean Gregorian year
+        if by_year:
+            years = float(np.unique(np.asarray(stamps.year)[members[m]]).size)
+        else:
+            years = (t[-1] - t[0] + float(np.median(np.diff(t)))) / 365.2425  # mean Gregorian year
         for s in range(n_season):
             out[m * n_season + s] = float(np.sum(members[m] & (codes == s))) / years
     return out
