@@ -331,7 +331,9 @@ def _validate(raw: dict, source: str, overridden=frozenset()) -> dict:
             path = f"{sec}.{k}"
             if k in given:
                 spec[sec][k] = key.check(given[k], _where(source, path, overridden))
-            elif key.default is REQUIRED and not (path == "input.path" and given.get("sources")):
+            elif key.default is REQUIRED and path == "input.path" and given.get("sources"):
+                spec[sec][k] = None  # every input is a source
+            elif key.default is REQUIRED:
                 raise ConfigError(f"{source}: missing required key {path!r} ({key.doc})")
             else:
                 spec[sec][k] = copy.deepcopy(key.default)
@@ -357,8 +359,6 @@ def _validate(raw: dict, source: str, overridden=frozenset()) -> dict:
             for k, key in VARIABLE_KEYS.items()
         }
 
-    if spec["input"]["path"] is REQUIRED:
-        spec["input"]["path"] = None
     _cross_checks(spec, source)
     _label_checks(spec, source)
     return spec
