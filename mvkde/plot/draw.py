@@ -439,6 +439,30 @@ def _category_colours(n_flagged: int):
     return [_cmap_colour(f) for f in np.linspace(0.1, 0.85, n_flagged)]
 
 
+def _ratio_mesh(ax, xs, ys, grid):
+    """A ratio map: log scale centred on 1 (halving and doubling equally far), diverging colours."""
+    from matplotlib.colors import LogNorm
+
+    finite = grid[np.isfinite(grid) & (grid > 0)]
+    reach = float(np.nanmax(np.abs(np.log10(finite)))) if finite.size else 1.0
+    reach = max(reach, np.log10(1.5))
+    return ax.pcolormesh(xs, ys, np.where(grid > 0, grid, np.nan), shading="nearest", cmap=DIVERGING,
+                         norm=LogNorm(10 ** -reach, 10 ** reach))
+
+
+def _map_colour_bar(fig, ax, mesh, levels, label, stretch):
+    """The colour bar beside a map (round levels, or a log-scale ratio bar when ``levels`` is None)."""
+    if stretch != 1.0:
+        ax.set_aspect(stretch)
+    ax.apply_aspect()
+    box = ax.get_position()
+    W, H = fig.get_size_inches() * DPI
+    cax = fig.add_axes((box.x1 + 14 / W, box.y0, 16 / W, box.height))
+    if levels is None:
+        return fig.colorbar(mesh, cax=cax, label="probability ratio (log scale; 1 = no change)")
+    return _colour_bar(fig, mesh, levels, _short_label(label), cax=cax)
+
+
 def _draw_map(fig, ds, da: xr.DataArray, label, title, fontsize):
     values = np.asarray(da.values, dtype=float)
     if not np.isfinite(values).any():
@@ -478,35 +502,13 @@ def _draw_map(fig, ds, da: xr.DataArray, label, title, fontsize):
             mesh = ax.pcolormesh(xs, ys, np.where(np.isfinite(grid), 0.3, np.nan), shading="nearest",
                                  cmap=COLOUR_MAP, vmin=0, vmax=1)
         elif da.name == "probability_ratio":
-            # a ratio: log scale centred on 1 (halving and doubling equally far), diverging colours
-            from matplotlib.colors import LogNorm
-
-            finite = grid[np.isfinite(grid) & (grid > 0)]
-            reach = float(np.nanmax(np.abs(np.log10(finite)))) if finite.size else 1.0
-            reach = max(reach, np.log10(1.5))
-            mesh = ax.pcolormesh(xs, ys, np.where(grid > 0, grid, np.nan), shading="nearest", cmap=DIVERGING,
-                                 norm=LogNorm(10 ** -reach, 10 ** reach))
-            levels = None
+            mesh, levels = _ratio_mesh(ax, xs, ys, grid), None
         else:
             levels = nice_levels(lo, hi)
             norm_c = BoundaryNorm(levels, 256, extend="neither")
             mesh = ax.pcolormesh(xs, ys, grid, shading="nearest", cmap=COLOUR_MAP, norm=norm_c)
-        if categories is None and not constant and levels is None:
-            if stretch != 1.0:
-                ax.set_aspect(stretch)
-            ax.apply_aspect()
-            box = ax.get_position()
-            W, H = fig.get_size_inches() * DPI
-            cax = fig.add_axes((box.x1 + 14 / W, box.y0, 16 / W, box.height))
-            artists["colour_bar"] = fig.colorbar(mesh, cax=cax, label="probability ratio (log scale; 1 = no change)")
-        elif categories is None and not constant:
-            if stretch != 1.0:
-                ax.set_aspect(stretch)
-            ax.apply_aspect()
-            box = ax.get_position()
-            W, H = fig.get_size_inches() * DPI
-            cax = fig.add_axes((box.x1 + 14 / W, box.y0, 16 / W, box.height))
-            artists["colour_bar"] = _colour_bar(fig, mesh, levels, _short_label(label), cax=cax)
+        if categories is None and not constant:
+            artists["colour_bar"] = _map_colour_bar(fig, ax, mesh, levels, label, stretch)
         if not numeric:
             ax.set_xticks(xs, [str(v) for v in ds[xdim].values], rotation=60)
             ax.set_yticks(ys, [str(v) for v in ds[ydim].values])
