@@ -22,7 +22,8 @@ from .kernels import get_kernel, get_multivariate_kernel
 from .products import grid as _grid
 
 __all__ = ["common_bandwidth_cells", "densities_with_bandwidth_cells", "difference_test_cells",
-           "exceedance_from_grids", "bootstrap_exceedance_cells", "probability_ratio_cells", "DEFAULT_FLOOR"]
+           "exceedance_from_grids", "bootstrap_exceedance_cells", "probability_ratio_cells", "DEFAULT_FLOOR",
+           "kernel_roughness", "compare_pairs_cells"]
 
 #: nodes whose mean density is below this share of its largest value are not tested
 DEFAULT_FLOOR = 0.05
@@ -474,3 +475,83 @@ def _ratio(num, den) -> np.ndarray:
     den = np.maximum(np.asarray(den, dtype=float), 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
         return np.where((num == 0) & (den == 0), np.nan, num / den)
+
+
+def kernel_roughness(kernel="gaussian", form="product", d=1) -> float:
+    """R(K) of the unit-covariance d-variate kernel (the constant of the pointwise variance)."""
+    return float(get_multivariate_kernel(get_kernel(kernel).name, form, d).roughness)
+
+
+def compare_pairs_cells(reference_samples, other_samples, *, axes, selector="plugin", parametrization="full",
+                        H=None, thresholds=None, alpha=0.05, floor=DEFAULT_FLOOR, bootstrap=0, band_level=0.9,
+                        seed=None, keys=None, kernel="gaussian", form="product", bounds=None, boundary=None,
+                        point_masses=None, periods=None, sphere=None, engine="auto", names=None,
+                        units=None) -> dict:
+    """Every comparison output for a block of pairs (reference, other), the pair axis first.
+
+    The sequence :func:`mvkde.compare` runs on one pair, for many pairs at
+    once: a common H per pair (``selector`` on the pooled sample, or the
+    given ``H``), both samples refitted with it in one batch call, the local
+    test, and at ``thresholds`` the two exceedances, their bootstrap
+    replicates (``bootstrap`` > 0, H held fixed) and the probability ratio.
+
+    Returns
+    -------
+    dict
+        ``difference``, ``significant`` (P, *grid), ``H`` (P, d, d),
+        ``errors`` (list: None or why the pair has no comparison), and with
+        thresholds ``ratio`` (P, m) (``lower``/``upper`` with bootstrap);
+        with a point mass ``point_mass_change`` (P,).
+    """
+    P = len(reference_samples)
+    d = len(axes)
+    settings = dict(kernel=kernel, form=form, bounds=bounds, boundary=boundary, point_masses=point_masses,
+                    periods=periods, sphere=sphere, engine=engine, names=names, units=units)
+    shape = tuple(len(a) for a in axes)
+    out = {"difference": np.full((P,) + shape, np.nan), "significant": np.zeros((P,) + shape, dtype=bool),
+           "H": np.full((P, d, d), np.nan), "errors": [None] * P}
+    if P == 0:
+        return out
+    if H is None:
+        H = common_bandwidth_cells(reference_samples, other_samples, axes=axes, selector=selector,
+                                   parametrization=parametrization, **settings)
+    H = np.asarray(H, dtype=float).reshape(P, d, d)
+    out["H"] = H
+    res = densities_with_bandwidth_cells(list(reference_samples) + list(other_samples), np.concatenate([H, H]),
+                                         axes=axes, groups=list(range(P)) * 2, **settings)
+    f = res["density"]
+    ok = np.array([res["errors"][p] is None and res["errors"][P + p] is None for p in range(P)])
+    for p in np.flatnonzero(~ok):
+        out["errors"][p] = res["errors"][p] or res["errors"][P + p]
+    n_r = np.array([len(x) for x in reference_samples], dtype=float)
+    n_o = np.array([len(x) for x in other_samples], dtype=float)
+    with np.errstate(invalid="ignore"):
+        root = np.sqrt(np.linalg.det(H))
+    test = difference_test_cells(f[:P], f[P:], n_r, n_o, sqrt_det_H=root,
+                                 roughness=kernel_roughness(kernel, form, d), alpha=alpha, floor=floor)
+    out["difference"] = np.where(ok.reshape((P,) + (1,) * d), test["difference"], np.nan)
+    out["significant"] = test["significant"] & ok.reshape((P,) + (1,) * d)
+    pmp = res["point_mass_probability"]
+    j = None if point_masses is None else next((k for k, v in enumerate(point_masses) if v is not None), None)
+    if pmp is not None:
+        out["point_mass_change"] = np.where(ok, pmp[P:] - pmp[:P], np.nan)
+    if thresholds is not None and len(thresholds):
+        t = np.atleast_2d(np.asarray(thresholds, dtype=float))
+        bound = None if j is None else float(bounds[j][0])
+        ex = exceedance_from_grids(f, axes, t, point_mass_probability=pmp,
+                                   density_at_point_mass=res["density_at_point_mass"], point_mass_index=j,
+                                   point_mass_bound=bound)
+        reps = [None, None]
+        if bootstrap:
+            keys = list(keys) if keys is not None else [(p,) for p in range(P)]
+            boot = bootstrap_exceedance_cells(list(reference_samples) + list(other_samples), np.concatenate([H, H]),
+                                              t, axes=axes, replicates=bootstrap, seed=seed,
+                                              keys=[tuple(k) + (0,) for k in keys] + [tuple(k) + (1,) for k in keys],
+                                              **settings)
+            reps = [boot[:P], boot[P:]]
+        pr = probability_ratio_cells(ex[:P], ex[P:], *reps, band_level=band_level)
+        for name in ("ratio", "lower", "upper"):
+            if name in pr:
+                out[name] = np.where(ok[:, None], pr[name], np.nan)
+        out["exceedance_reference"], out["exceedance_other"] = ex[:P], ex[P:]
+    return out

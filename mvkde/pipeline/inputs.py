@@ -22,6 +22,7 @@ import xarray as xr
 
 from ..cells import engine_work_bytes
 from ..errors import ConfigError, InputError
+from . import labels as _labels
 from . import readers as _io
 from .workflow import SEASONS, Workflow
 
@@ -52,6 +53,11 @@ class Plan:
     sample_counts: tuple = (0, 0, 0)           # min, median, max samples per cell before dropping NaN
     notes: list = field(default_factory=list)
     origin: str = ""                           # how messages name the input when there are no files
+    label_dims: list = field(default_factory=list)    # "window" and/or "source", in this order
+    label_names: dict = field(default_factory=dict)   # dim -> label names
+    label_info: dict = field(default_factory=dict)    # dim -> what each label is (date range, path)
+    members: np.ndarray | None = None          # (label combinations, *codes shape) bool, or None
+    rates: np.ndarray | None = None            # observations per year of every split (return periods)
 
     @property
     def cell_shape(self) -> tuple:
@@ -62,8 +68,28 @@ class Plan:
         return int(np.prod(self.cell_shape)) if self.cell_dims else 1
 
     @property
-    def n_splits(self) -> int:
+    def n_season(self) -> int:
+        """Splits by season or month within one label combination."""
         return max(1, len(self.split_labels)) if self.split_dim else 1
+
+    @property
+    def n_labels(self) -> int:
+        """Label combinations (windows x sources); 1 without labels."""
+        return int(np.prod([len(self.label_names[d]) for d in self.label_dims])) if self.label_dims else 1
+
+    @property
+    def n_splits(self) -> int:
+        """Every sample set of a cell: label combinations x seasons (flattened in that order)."""
+        return self.n_labels * self.n_season
+
+    @property
+    def split_shape(self) -> tuple:
+        """The flattened split axis as output dims: one per label dim, then the season/month split."""
+        return tuple(len(self.label_names[d]) for d in self.label_dims) + ((self.n_season,) if self.split_dim else ())
+
+    @property
+    def split_dims(self) -> list:
+        return list(self.label_dims) + ([self.split_dim] if self.split_dim else [])
 
     def tiles(self):
         """Slices over the cell dims, one tuple per block."""
@@ -87,8 +113,11 @@ class Plan:
                 elif isinstance(value, np.datetime64):
                     value = str(value)[:10]
                 parts.append(f"{dim}={value}")
+        index = np.unravel_index(int(split), self.split_shape) if self.split_shape else ()
+        for dim, i in zip(self.label_dims, index):
+            parts.append(f"{dim}={self.label_names[dim][i]}")
         if self.split_dim:
-            parts.append(f"{self.split_dim}={self.split_labels[split]}")
+            parts.append(f"{self.split_dim}={self.split_labels[int(split) % self.n_season]}")
         return ", ".join(parts) if parts else "the only cell"
 
     @property
@@ -135,6 +164,8 @@ def _tile_shape(shape, block_size) -> tuple:
 def prepare(wf: Workflow) -> Plan:
     """Open the inputs lazily, apply the selection and tile the cells."""
     inp = wf["input"]
+    if inp["sources"]:
+        return _labels.prepare_sources(wf, plan_from_dataset, plan_from_table, _read_table_of, _file_chunks)
     files = _io.expand_paths(wf.input_paths())
     kind = _io.input_format(files, inp["format"])
     if kind == "netcdf":
@@ -253,30 +284,13 @@ def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "
     inp, src = wf["input"], wf.source
     names = wf.variables
     files = list(files)
-    missing = [v for v in names if v not in ds.data_vars]
-    if missing:
-        raise InputError(f"input.variables: {', '.join(missing)} not in {origin}; data variables there: "
-                         f"{', '.join(map(str, ds.data_vars))}")
-    for v in names:
-        if ds[v].dtype.kind not in "fiu":
-            raise InputError(f"input.variables: {v} in {origin} holds {ds[v].dtype} values, not "
-                             "numbers: choose a numeric variable")
-    dims = ds[names[0]].dims
-    for v in names[1:]:
-        if set(ds[v].dims) != set(dims):
-            raise InputError(f"input.variables: {v} has dims {ds[v].dims} but {names[0]} has {dims}: "
-                             "the variables must share their dimensions")
-    for s in inp["sample_dims"]:
-        if s not in dims:
-            raise ConfigError(f"{src}: input.sample_dims names {s!r}, which is not a dimension of "
-                              f"{names[0]} (dims: {', '.join(dims)})")
-    sample_dims = list(inp["sample_dims"])
-    cell_dims = [d for d in dims if d not in sample_dims]
-    clash = set(names) & set(cell_dims)
-    if clash:
-        raise InputError(f"variable name(s) {sorted(clash)} equal cell dimension names: rename them")
-    ds = _select(ds[names], wf, dims, sample_dims, origin)
     tname = inp["time"]
+    source_of = None
+    if isinstance(ds, dict):  # input.sources: name -> (Dataset, how messages name it)
+        ds, source_of, dims, sample_dims, cell_dims = _labels.combine_sources(wf, ds, _check_dataset, _select)
+    else:
+        dims, sample_dims, cell_dims = _check_dataset(wf, ds, origin)
+        ds = _select(ds[names], wf, dims, sample_dims, origin)
 
     cell_shape = tuple(ds.sizes[d] for d in cell_dims)
     n_per_cell = int(np.prod([ds.sizes[d] for d in sample_dims]))
@@ -309,8 +323,61 @@ def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "
         per = np.bincount(codes.ravel()[codes.ravel() >= 0], minlength=len(labels))
         per = per * (n // max(1, codes.size))
         counts = (int(per.min()), int(np.median(per)), int(per.max()))
-    return Plan(wf, "netcdf", files, arr, codes, cell_dims, {d: ds[d] for d in cell_dims if d in ds.coords},
-                inp["split_by"], labels, tile, list(names), units, attrs, counts, origin=origin)
+    split_codes_1d = codes.ravel()
+    times = ds[tname].values if tname in ds.coords else np.arange(ds.sizes.get(tname, 0))
+    label_dims, label_names, label_info, members = [], {}, {}, None
+    if inp["windows"] or source_of is not None:
+        if tname not in sample_dims:
+            raise ConfigError(f"{src}: input.windows selects along the time dimension {tname!r}: list it in "
+                              "input.sample_dims")
+        label_dims, label_names, label_info, members = _labels.label_members(
+            wf, times, source_of, list(inp["sources"]), origin)
+    n_season = max(1, len(labels)) if inp["split_by"] else 1
+    n_labels = 1 if members is None else members.shape[0]
+    rates = _labels.rates(wf, times, members, split_codes_1d if inp["split_by"] else None, n_season, n_labels, origin) \
+        if tname in sample_dims else _labels.rates(wf, [], None, None, n_season, n_labels, origin)
+    if members is not None:
+        per = [int(np.sum(members[m] & (split_codes_1d == s) if inp["split_by"] else members[m]))
+               * (n // max(1, members.shape[1])) for m in range(n_labels) for s in range(n_season)]
+        counts = (int(min(per)), int(np.median(per)), int(max(per)))
+        shape = [1] * (len(cell_dims) + len(sample_dims))
+        shape[len(cell_dims) + sample_dims.index(tname)] = members.shape[1]
+        members = members.reshape((members.shape[0],) + tuple(shape))
+    plan = Plan(wf, "netcdf", files, arr, codes, cell_dims, {d: ds[d] for d in cell_dims if d in ds.coords},
+                inp["split_by"], labels, tile, list(names), units, attrs, counts, origin=origin,
+                label_dims=label_dims, label_names=label_names, label_info=label_info, members=members,
+                rates=rates)
+    _labels.note_empty_labels(plan)
+    return plan
+
+
+def _check_dataset(wf: Workflow, ds: xr.Dataset, origin: str):
+    """(dims, sample_dims, cell_dims) of a gridded input, after refusing what cannot be a sample."""
+    inp, src = wf["input"], wf.source
+    names = wf.variables
+    missing = [v for v in names if v not in ds.data_vars]
+    if missing:
+        raise InputError(f"input.variables: {', '.join(missing)} not in {origin}; data variables there: "
+                         f"{', '.join(map(str, ds.data_vars))}")
+    for v in names:
+        if ds[v].dtype.kind not in "fiu":
+            raise InputError(f"input.variables: {v} in {origin} holds {ds[v].dtype} values, not "
+                             "numbers: choose a numeric variable")
+    dims = ds[names[0]].dims
+    for v in names[1:]:
+        if set(ds[v].dims) != set(dims):
+            raise InputError(f"input.variables: {v} has dims {ds[v].dims} but {names[0]} has {dims}: "
+                             "the variables must share their dimensions")
+    for s in inp["sample_dims"]:
+        if s not in dims:
+            raise ConfigError(f"{src}: input.sample_dims names {s!r}, which is not a dimension of "
+                              f"{names[0]} (dims: {', '.join(dims)})")
+    sample_dims = list(inp["sample_dims"])
+    cell_dims = [d for d in dims if d not in sample_dims]
+    clash = set(names) & set(cell_dims)
+    if clash:
+        raise InputError(f"variable name(s) {sorted(clash)} equal cell dimension names: rename them")
+    return dims, sample_dims, cell_dims
 
 
 def _select(ds: xr.Dataset, wf: Workflow, dims, sample_dims, origin: str) -> xr.Dataset:
@@ -371,12 +438,23 @@ def _file_chunks(wf: Workflow, files) -> dict:
 
 
 def _prepare_table(wf: Workflow, files, kind) -> Plan:
+    table = _read_table_of(wf, files, kind)
+    return plan_from_table(wf, table, files=files, kind=kind, origin=files[0].name)
+
+
+def _table_needs_time(inp, prod) -> bool:
+    return bool(inp["time_range"] or inp["months"] or inp["seasons"] or inp["split_by"] or inp["windows"]
+                or (prod["return_periods"] and prod["observations_per_year"] is None))
+
+
+def _read_table_of(wf: Workflow, files, kind) -> pd.DataFrame:
+    """The columns a workflow needs from a table input, after checking they are there."""
     inp, src = wf["input"], wf.source
     names = wf.variables
     header = _io.table_columns(files, kind)
     group = inp["group_by"]
     tname = inp["time"]
-    needs_time = bool(inp["time_range"] or inp["months"] or inp["seasons"] or inp["split_by"])
+    needs_time = _table_needs_time(inp, wf["products"])
     wanted = list(names) + ([group] if group else []) + ([tname] if needs_time else []) + list(inp["box"])
     wanted = list(dict.fromkeys(wanted))
     for col in wanted:
@@ -385,19 +463,23 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
                     else "input.time" if col == tname else f"input.box.{col}")
             raise ConfigError(f"{src}: {what} names column {col!r}, which is not in {files[0].name} "
                               f"(columns: {', '.join(header)})")
-    table = _io.read_table(files, kind, wanted)
-    return plan_from_table(wf, table, files=files, kind=kind, origin=files[0].name)
+    return _io.read_table(files, kind, wanted)
 
 
 def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = "table",
-                    origin: str = "the DataFrame") -> Plan:
-    """The plan of a table already read (one density per ``input.group_by`` value)."""
+                    origin: str = "the DataFrame", source_of=None) -> Plan:
+    """The plan of a table already read (one density per ``input.group_by`` value).
+
+    ``source_of`` (the source index of every row) labels the rows of joined ``input.sources``.
+    """
     inp = wf["input"]
     names = wf.variables
     files = list(files)
     group = inp["group_by"]
     tname = inp["time"]
-    needs_time = bool(inp["time_range"] or inp["months"] or inp["seasons"] or inp["split_by"])
+    needs_time = _table_needs_time(inp, wf["products"])
+    if source_of is not None:
+        table = table.assign(_mvkde_source=np.asarray(source_of))
     for v in names:
         if not pd.api.types.is_numeric_dtype(table[v]):
             raise InputError(f"input.variables: column {v!r} of {origin} is not numeric: list numeric "
@@ -430,6 +512,18 @@ def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = 
                                           inp["split_by"], inp["seasons"])
     else:
         codes_flat, labels = np.zeros(len(table), dtype=np.int16), []
+    label_dims, label_names, label_info, members_flat = [], {}, {}, None
+    row_times = pd.to_datetime(table[tname]).to_numpy() if needs_time else np.arange(len(table))
+    if inp["windows"] or source_of is not None:
+        label_dims, label_names, label_info, members_flat = _labels.label_members(
+            wf, row_times, table["_mvkde_source"].to_numpy() if source_of is not None else None,
+            list(inp["sources"]), origin)
+    n_season = max(1, len(labels)) if inp["split_by"] else 1
+    n_labels = 1 if members_flat is None else members_flat.shape[0]
+    rates = _labels.rates(wf, np.unique(row_times) if members_flat is None else row_times, members_flat,
+                   codes_flat if inp["split_by"] else None, n_season, n_labels, origin) \
+        if members_flat is not None else _labels.rates(wf, np.unique(row_times), None, None, n_season, 1, origin) \
+        if not inp["split_by"] else _labels.rates_by_unique(wf, row_times, codes_flat, n_season, origin)
     if group:
         keys, uniques = pd.factorize(table[group], sort=True)
     else:
@@ -443,10 +537,15 @@ def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = 
     pos = np.arange(len(keys)) - np.repeat(np.cumsum(sizes) - sizes, sizes)
     values[keys[order], pos] = table[names].to_numpy(dtype=float)[order]
     codes[keys[order], pos] = codes_flat[order]
+    members = None
+    if members_flat is not None:
+        members = np.zeros((members_flat.shape[0], n_groups, width), dtype=bool)
+        members[:, keys[order], pos] = members_flat[:, order]
 
     cell_dims = [group] if group else []
     if not group:
         values, codes = values[0], codes[0]
+        members = None if members is None else members[:, 0]
     tile = _tile_shape((n_groups,) if group else (), block_cells(wf, n_groups))
     import dask.array as da
 
@@ -457,7 +556,9 @@ def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = 
     units = [wf.variable(v)["units"] or "" for v in names]
     counts = (int(sizes.min()), int(np.median(sizes)), int(sizes.max()))
     plan = Plan(wf, kind, files, arr, codes, cell_dims, cell_coords, inp["split_by"], labels, tile,
-                list(names), units, {v: {} for v in names}, counts, origin=origin)
+                list(names), units, {v: {} for v in names}, counts, origin=origin, label_dims=label_dims,
+                label_names=label_names, label_info=label_info, members=members, rates=rates)
+    _labels.note_empty_labels(plan)
     if inp["sample_dims"] != ["time"]:
         plan.notes.append("input.sample_dims is ignored for tables: every row of a group is a sample")
     if not any(units):

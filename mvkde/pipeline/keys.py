@@ -297,3 +297,53 @@ def _bounds(value, where):
     if math.isnan(lo) or math.isnan(hi) or not lo < hi:
         raise _fail(where, value, "[lo, hi] with lo < hi")
     return [lo, hi]
+
+
+def _windows(value, where):
+    """input.windows: NAME = [start, end] (ISO dates, inclusive); windows may overlap."""
+    if value is None:
+        return {}
+    if not isinstance(value, dict):
+        raise _fail(where, value, 'a table of NAME = ["YYYY-MM-DD", "YYYY-MM-DD"], e.g. '
+                                  'windows.baseline = ["2001-01-01", "2004-12-31"]')
+    out = {}
+    for name, pair in value.items():
+        here = f"{where}.{name}"
+        if not isinstance(pair, list) or len(pair) != 2:
+            raise _fail(here, pair, '[start, end] as ISO dates, e.g. ["2001-01-01", "2004-12-31"]')
+        dates = []
+        for v in pair:
+            if isinstance(v, _dt.datetime):
+                v = v.date()
+            if isinstance(v, _dt.date):
+                dates.append(v)
+                continue
+            try:
+                dates.append(_dt.date.fromisoformat(str(v)) if isinstance(v, str) else None)
+            except ValueError:
+                dates.append(None)
+            if dates[-1] is None:
+                raise _fail(here, pair, f'ISO dates YYYY-MM-DD ({_show(v)} is not one), e.g. '
+                                        '["2001-01-01", "2004-12-31"]')
+        if dates[1] < dates[0]:
+            raise ConfigError(f"{here} = {_show([d.isoformat() for d in dates])} is not valid: the end "
+                              f"{dates[1].isoformat()} is before the start {dates[0].isoformat()}; "
+                              "give [start, end] (both days included)")
+        out[str(name)] = [d.isoformat() for d in dates]
+    return out
+
+
+def _sources(value, where):
+    """input.sources: NAME = "path or glob" (several inputs with the same variables)."""
+    if value is None:
+        return {}
+    if not isinstance(value, dict) or not all(isinstance(v, str) and v for v in value.values()):
+        raise _fail(where, value, 'a table of NAME = "path or glob", e.g. sources.observed = '
+                                  '"obs/*.nc"')
+    return {str(k): v for k, v in value.items()}
+
+
+def _alpha(value, where):
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 < value < 1:
+        raise _fail(where, value, "a number strictly between 0 and 1, e.g. 0.05")
+    return float(value)

@@ -24,7 +24,7 @@ from ..units import density_units
 from . import provenance as _prov
 from .blocks import FLAGS, CellSettings
 from .inputs import Plan
-from .products import add_cell_products, add_grid_products
+from .products import add_cell_products, add_comparison, add_grid_products, add_return_periods
 
 
 def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Dataset:
@@ -35,18 +35,21 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
     results = results["arrays"]
     names, units = plan.names, plan.units
     cdims = list(plan.cell_dims)
-    split = [plan.split_dim] if plan.split_dim else []
+    split = plan.split_dims
     lead = cdims + split
+    split_shape = plan.split_shape
 
-    def squeeze(a):  # drop the split axis when there is no split
-        return a if split else a.reshape(a.shape[: len(cdims)] + a.shape[len(cdims) + 1:])
+    def squeeze(a):  # the flat split axis as the label dims and the season split (none without them)
+        a = np.asarray(a)
+        return a.reshape(a.shape[: len(cdims)] + split_shape + a.shape[len(cdims) + 1:])
 
     coords = {}
     for dname in cdims:
         if dname in plan.cell_coords:
             c = plan.cell_coords[dname]
             coords[dname] = (dname, np.asarray(c.values), dict(getattr(c, "attrs", {})))
-    if split:
+    coords.update(label_coords(plan))
+    if plan.split_dim:
         coords[plan.split_dim] = (plan.split_dim, np.asarray(plan.split_labels),
                                   {"long_name": "meteorological season (DJF, MAM, JJA, SON)"
                                    if plan.split_dim == "season" else "month of the year"})
@@ -116,7 +119,30 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
     add_grid_products(ds, plan.workflow["products"], names, j,
                       settings.bounds[j][0] if j is not None else float("nan"),
                       sphere=(names.index(sphere[0]), names.index(sphere[1])) if sphere else None)
+    if plan.workflow["products"]["return_periods"] and len(settings.products.thresholds):
+        add_return_periods(ds, settings, np.asarray(plan.rates, dtype=float).reshape(split_shape),
+                           cdims, split, pm_bound=settings.bounds[j][0] if j is not None else None)
+    if settings.compare is not None:
+        add_comparison(ds, plan, settings, results, squeeze, lead)
     return ds
+
+
+def label_coords(plan: Plan) -> dict:
+    """Coordinates of the window and source dims: names, and the dates or paths of each label."""
+    coords = {}
+    if "window" in plan.label_dims:
+        spans = list(plan.workflow["input"]["windows"].values())
+        coords["window"] = ("window", np.asarray(plan.label_names["window"]), {
+            "long_name": "named time window of the samples (input.windows; both end days included)",
+            "note": "windows may overlap and differ in length; a sample in two windows counts in both"})
+        coords["window_start"] = ("window", np.array([a for a, _ in spans]), {"long_name": "first day of the window"})
+        coords["window_end"] = ("window", np.array([b for _, b in spans]), {"long_name": "last day of the window"})
+    if "source" in plan.label_dims:
+        coords["source"] = ("source", np.asarray(plan.label_names["source"]), {
+            "long_name": "named input the samples come from (input.sources)"})
+        coords["source_path"] = ("source", np.asarray(plan.label_info["source"]),
+                                 {"long_name": "path or glob of the source"})
+    return coords
 
 
 def global_attributes(wf, settings: CellSettings, names: list, rec: dict) -> dict:

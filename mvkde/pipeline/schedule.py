@@ -177,14 +177,17 @@ def block_tasks(plan: Plan, settings: CellSettings, skip=(), token: str | None =
         if b in skip:
             continue
         block = data[tile] if tile else data
-        codes = plan.codes
+        codes, members = plan.codes, plan.members
         if nd:
-            # codes carry the cell dims only for tables (one row layout per group)
+            # codes (and label members) carry the cell dims only for tables (one row layout per group)
             codes = codes[tuple(t if codes.shape[k] > 1 else slice(None) for k, t in enumerate(tile))]
+            if members is not None:
+                members = members[(slice(None),) + tuple(t if members.shape[k + 1] > 1 else slice(None)
+                                                         for k, t in enumerate(tile))]
         tile_shape = tuple(t.stop - t.start for t in tile)
         first = _first_cell(tile, plan.cell_shape)
         tasks.append(dask.delayed(process_block, pure=True)(
-            block, codes, first, tile_shape, settings, dask_key_name=f"mvkde-block-{b}-{token}"))
+            block, codes, first, tile_shape, settings, members, dask_key_name=f"mvkde-block-{b}-{token}"))
     return tasks
 
 

@@ -24,7 +24,7 @@ from ..bandwidth import BandwidthMatrix
 from ..errors import ConfigError, MvkdeError, closest_names
 from .keys import (Key, SEASONS, _bandwidth, _block_size, _bool, _bounds, _box, _choice, _float, _fractions, _int,
                    _limits, _months, _number_list, _one_of, _opt_str, _paths, _scheduler, _seasons, _show, _size, _str,
-                   _str_list, _thresholds, _time_range, estimator_choices)
+                   _str_list, _thresholds, _time_range, estimator_choices, _windows, _sources, _alpha)
 
 __all__ = ["SCHEMA", "Workflow", "load", "loads", "from_arguments", "apply_override", "SEASONS", "REQUIRED",
            "estimator_choices", "key_reference"]
@@ -50,7 +50,12 @@ SCHEMA: dict[str, dict[str, Key]] = {
     "input": {
         "path": Key(REQUIRED, _paths, "a netCDF file, a glob of netCDF files, a .csv or .parquet table, or a "
                                       "list of files; relative paths are looked up from the current folder, "
-                                      "then from the workflow file's folder"),
+                                      "then from the workflow file's folder (not needed with input.sources)"),
+        "windows": Key({}, _windows, "NAME = [start, end]: named time windows (ISO dates, both days included) "
+                                     "giving an output dimension window; windows may differ in length and may "
+                                     "overlap (a sample in two windows counts in both)"),
+        "sources": Key({}, _sources, "NAME = \"path or glob\": several inputs with the same variables and "
+                                     "cells, giving an output dimension source (replaces input.path)"),
         "variables": Key(REQUIRED, _str_list(), "variables whose joint density is estimated, in order"),
         "sample_dims": Key(["time"], _str_list(), "dimensions pooled into each sample; every other "
                                                   "dimension of the variables is a cell dimension"),
@@ -129,6 +134,24 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "bootstrap": Key(0, _int(lo=0), "bootstrap replicates for percentile bands of the density "
                                         "(density_lower/upper) and of exceedance_at_threshold; 0 = none"),
         "band_level": Key(0.9, _float(positive=True), "coverage of the bootstrap bands (0 < level < 1)"),
+        "return_periods": Key(False, _bool, "write return_period_and and return_period_or (years) at "
+                                            "products.thresholds (Salvadori & De Michele 2004); needs "
+                                            "thresholds"),
+        "observations_per_year": Key(None, _float(optional=True, positive=True),
+                                     "samples per year for the return periods; default: the mean number "
+                                     "per year of the selection, from the time coordinate (required when "
+                                     "time is not a date)"),
+    },
+    "compare": {
+        "reference": Key(None, _opt_str, "a label of input.windows or input.sources: writes "
+                                         "density_difference, density_change_significant, and at "
+                                         "products.thresholds probability_ratio (with _lower/_upper from "
+                                         "products.bootstrap) for every other label"),
+        "alpha": Key(0.05, _alpha, "false discovery rate of the local test over each cell's grid "
+                                   "(Benjamini-Hochberg)"),
+        "dim": Key(None, _one_of("window", "source", optional=True),
+                   "which labels are compared (window or source), when both input.windows and "
+                   "input.sources are given; the other stays a plain dimension"),
     },
     "output": {
         "path": Key(REQUIRED, _str, "output netCDF file, or a Zarr store when it ends in .zarr (needs the zarr "
@@ -184,8 +207,12 @@ class Workflow:
 
     def input_paths(self) -> list[str]:
         """Input paths resolved: the current folder first, then the workflow's folder."""
+        return self.resolve_paths(self.spec["input"]["path"] or [])
+
+    def resolve_paths(self, paths) -> list[str]:
+        """Paths (or globs) resolved: the current folder first, then the workflow's folder."""
         out = []
-        for p in self.spec["input"]["path"]:
+        for p in paths:
             q = Path(os.path.expanduser(p))
             if not q.is_absolute() and self.path is not None and not _exists(q):
                 alt = self.path.parent / q
@@ -304,6 +331,8 @@ def _validate(raw: dict, source: str, overridden=frozenset()) -> dict:
             path = f"{sec}.{k}"
             if k in given:
                 spec[sec][k] = key.check(given[k], _where(source, path, overridden))
+            elif key.default is REQUIRED and path == "input.path" and given.get("sources"):
+                spec[sec][k] = None  # every input is a source
             elif key.default is REQUIRED:
                 raise ConfigError(f"{source}: missing required key {path!r} ({key.doc})")
             else:
@@ -331,7 +360,39 @@ def _validate(raw: dict, source: str, overridden=frozenset()) -> dict:
         }
 
     _cross_checks(spec, source)
+    _label_checks(spec, source)
     return spec
+
+
+def _label_checks(spec: dict, source: str) -> None:
+    """input.windows / input.sources, [compare] and the return periods: the combinations that cannot run."""
+    inp, cmp_, prod = spec["input"], spec["compare"], spec["products"]
+    if inp["sources"] and inp["path"] is not None:
+        raise ConfigError(f"{source}: input.path and input.sources are both given: with sources, every input "
+                          "is a source (drop input.path)")
+    present = {dim: list(inp[key]) for dim, key in (("window", "windows"), ("source", "sources")) if inp[key]}
+    if cmp_["dim"] is not None and cmp_["dim"] not in present:
+        raise ConfigError(f"{source}: compare.dim = {cmp_['dim']!r} but input.{cmp_['dim']}s is not given")
+    if cmp_["reference"] is not None:
+        if not present:
+            raise ConfigError(f"{source}: compare.reference = {cmp_['reference']!r} needs labels to compare: "
+                              "give input.windows or input.sources")
+        if len(present) == 2 and cmp_["dim"] is None:
+            raise ConfigError(f"{source}: both input.windows and input.sources are given: set compare.dim = "
+                              "\"window\" or \"source\" to say which labels are compared")
+        dim = cmp_["dim"] or next(iter(present))
+        labels = present[dim]
+        if cmp_["reference"] not in labels:
+            raise ConfigError(f"{source}: compare.reference = {cmp_['reference']!r} is not a {dim} label; the "
+                              f"{dim} labels are: {', '.join(labels)}" + closest_names(cmp_["reference"], labels))
+        if len(labels) < 2:
+            raise ConfigError(f"{source}: compare.reference = {cmp_['reference']!r} is the only {dim} label: "
+                              f"give at least two input.{dim}s")
+    elif cmp_["dim"] is not None:
+        raise ConfigError(f"{source}: compare.dim is set but compare.reference is not: name the reference label")
+    if prod["return_periods"] and not prod["thresholds"]:
+        raise ConfigError(f"{source}: products.return_periods = true needs products.thresholds (the points "
+                          "whose joint return periods are written)")
 
 
 def _cross_checks(spec: dict, source: str) -> None:

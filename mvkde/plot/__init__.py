@@ -170,12 +170,19 @@ def _build_grid_product(ds, lay, name, selection, size, notes):
         chosen[d] = _value_text(ds, d, i)
     da = da.isel(idx)
     density_idx = {d: i for d, i in idx.items() if d in ds["density"].dims} if "density" in ds.data_vars else {}
+    significant = None
+    if name == "density_difference" and "density_change_significant" in ds.data_vars:
+        significant = ds["density_change_significant"].isel(idx)
+        for d in idx:  # a compared label: the density box of that label (window_compared -> window)
+            base = d[: -len("_compared")] if d.endswith("_compared") else None
+            if base and base in ds["density"].dims:
+                density_idx[base] = list(ds[base].values).index(ds[d].values[idx[d]])
     size = tuple(size) if size is not None else DEFAULT_SIZE
     fontsize = _font_size(size)
     title = label.split(" [")[0] + (f" ({_where(chosen)})" if chosen else "")
     with matplotlib.rc_context({"font.size": fontsize}):
         fig = _new_figure(size)
-        artists = _draw_grid_product(fig, ds, lay, da, label, density_idx, title, fontsize)
+        artists = _draw_grid_product(fig, ds, lay, da, label, density_idx, title, fontsize, significant)
     return fig, PlotResult(None, "grid", size, title, None, artists, notes)
 
 

@@ -10,7 +10,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import InputError
-from .style import (MAX_PIXELS, MIN_PIXELS, COLOUR_MAP, CONSTANT_DIGITS, DEFAULT_SIZE, DPI, FIT_MARGIN, FIT_MASS, FRAME, GRID, HALO,
+from .style import (MAX_PIXELS, MIN_PIXELS, COLOUR_MAP, DIVERGING, CONSTANT_DIGITS, DEFAULT_SIZE, DPI, FIT_MARGIN, FIT_MASS, FRAME, GRID, HALO,
                     LATITUDE_NAMES, LINE, NO_DATA, require_matplotlib)
 from .fields import CellDensity, _integrate_to, cd_units, hdr_levels
 
@@ -439,6 +439,30 @@ def _category_colours(n_flagged: int):
     return [_cmap_colour(f) for f in np.linspace(0.1, 0.85, n_flagged)]
 
 
+def _ratio_mesh(ax, xs, ys, grid):
+    """A ratio map: log scale centred on 1 (halving and doubling equally far), diverging colours."""
+    from matplotlib.colors import LogNorm
+
+    finite = grid[np.isfinite(grid) & (grid > 0)]
+    reach = float(np.nanmax(np.abs(np.log10(finite)))) if finite.size else 1.0
+    reach = max(reach, np.log10(1.5))
+    return ax.pcolormesh(xs, ys, np.where(grid > 0, grid, np.nan), shading="nearest", cmap=DIVERGING,
+                         norm=LogNorm(10 ** -reach, 10 ** reach))
+
+
+def _map_colour_bar(fig, ax, mesh, levels, label, stretch):
+    """The colour bar beside a map (round levels, or a log-scale ratio bar when ``levels`` is None)."""
+    if stretch != 1.0:
+        ax.set_aspect(stretch)
+    ax.apply_aspect()
+    box = ax.get_position()
+    W, H = fig.get_size_inches() * DPI
+    cax = fig.add_axes((box.x1 + 14 / W, box.y0, 16 / W, box.height))
+    if levels is None:
+        return fig.colorbar(mesh, cax=cax, label="probability ratio (log scale; 1 = no change)")
+    return _colour_bar(fig, mesh, levels, _short_label(label), cax=cax)
+
+
 def _draw_map(fig, ds, da: xr.DataArray, label, title, fontsize):
     values = np.asarray(da.values, dtype=float)
     if not np.isfinite(values).any():
@@ -477,17 +501,14 @@ def _draw_map(fig, ds, da: xr.DataArray, label, title, fontsize):
         elif constant:
             mesh = ax.pcolormesh(xs, ys, np.where(np.isfinite(grid), 0.3, np.nan), shading="nearest",
                                  cmap=COLOUR_MAP, vmin=0, vmax=1)
+        elif da.name == "probability_ratio":
+            mesh, levels = _ratio_mesh(ax, xs, ys, grid), None
         else:
             levels = nice_levels(lo, hi)
             norm_c = BoundaryNorm(levels, 256, extend="neither")
             mesh = ax.pcolormesh(xs, ys, grid, shading="nearest", cmap=COLOUR_MAP, norm=norm_c)
-            if stretch != 1.0:
-                ax.set_aspect(stretch)
-            ax.apply_aspect()
-            box = ax.get_position()
-            W, H = fig.get_size_inches() * DPI
-            cax = fig.add_axes((box.x1 + 14 / W, box.y0, 16 / W, box.height))
-            artists["colour_bar"] = _colour_bar(fig, mesh, levels, _short_label(label), cax=cax)
+        if categories is None and not constant:
+            artists["colour_bar"] = _map_colour_bar(fig, ax, mesh, levels, label, stretch)
         if not numeric:
             ax.set_xticks(xs, [str(v) for v in ds[xdim].values], rotation=60)
             ax.set_yticks(ys, [str(v) for v in ds[ydim].values])
@@ -564,7 +585,43 @@ def _coord_label(ds, dim) -> str:
     return dim
 
 
-def _draw_grid_product(fig, ds, lay, da, label, idx, title, fontsize):
+def _draw_difference(fig, lay, da, significant, label, box, fontsize):
+    """A density difference of one cell: diverging colours centred on 0, significant nodes outlined."""
+    names = [d for d in da.dims if d in lay.names]
+    x, y = names
+    values = np.asarray(da.transpose(x, y).values, dtype=float)
+    axes = {v: np.asarray(da[v].values, dtype=float) for v in names}
+    gs = fig.add_gridspec(1, 2, width_ratios=[5, 0.22])
+    ax = fig.add_subplot(gs[0, 0])
+    cax = fig.add_subplot(gs[0, 1])
+    reach = float(np.nanmax(np.abs(values))) or 1.0
+    levels = nice_levels(-reach, reach, n=12)
+    reach = max(abs(levels[0]), abs(levels[-1]))
+    levels = nice_levels(-reach, reach, n=12)
+    sx, sy = _within(axes[x], *box[x]), _within(axes[y], *box[y])
+    X, Y = axes[x][sx], axes[y][sy]
+    fill = ax.contourf(X, Y, values[sx, sy].T, levels=levels, cmap=DIVERGING, vmin=-reach, vmax=reach)
+    outline = None
+    if significant is not None:
+        sig = np.asarray(significant.transpose(x, y).values, dtype=float)[sx, sy].T
+        if sig.any():
+            outline = ax.contour(X, Y, sig, levels=[0.5], colors=LINE, linewidths=1.6)
+    units = label.split(" [")[1].rstrip("]") if " [" in label else ""
+    bar = _colour_bar(fig, fill, levels, f"difference [{units}]" if units else "difference", cax=cax)
+    note = ("black outline: nodes where the change is significant (local test, false discovery rate "
+            f"{significant.attrs.get('alpha', 0.05):g})" if significant is not None else "no significance in the file")
+    ax.text(0.01, 0.99, note if outline is not None or significant is None else note + ": none here",
+            transform=ax.transAxes, ha="left", va="top", fontsize=fontsize * 0.8, color=LINE,
+            bbox=dict(facecolor="white", edgecolor=FRAME, alpha=0.85, boxstyle="round,pad=0.3"))
+    ax.set_xlim(*box[x])
+    ax.set_ylim(*box[y])
+    ax.set_xlabel(lay.label(x))
+    ax.set_ylabel(lay.label(y))
+    _house_style(ax, grid=False)
+    return {"axes": ax, "fill": fill, "outline": outline, "colour_bar": bar, "levels": levels}
+
+
+def _draw_grid_product(fig, ds, lay, da, label, idx, title, fontsize, significant=None):
     """One cell's grid product (a CDF, an exceedance or a marginal grid) drawn like a density picture."""
     names = [d for d in da.dims if d in lay.names]
     values = np.asarray(da.transpose(*names).values, dtype=float)
@@ -584,7 +641,9 @@ def _draw_grid_product(fig, ds, lay, da, label, idx, title, fontsize):
         box = fitted_limits(values, axes, names, periods=lay.periods)
     if not np.isfinite(values).any():
         raise InputError(f"--field {short}: the chosen cell has no value (choose another cell)")
-    if len(names) == 2:
+    if da.name == "density_difference" and len(names) == 2:
+        artists = _draw_difference(fig, lay, da, significant, label, box, fontsize)
+    elif len(names) == 2:
         x, y = names
         gs = fig.add_gridspec(1, 2, width_ratios=[5, 0.22])
         ax = fig.add_subplot(gs[0, 0])

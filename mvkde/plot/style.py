@@ -8,6 +8,8 @@ from ..errors import MvkdeError
 HDR_MASSES = (0.5, 0.9, 0.99)
 #: cividis reversed: pale where there is little, dark where there is much ("ink" for probability)
 COLOUR_MAP = "cividis_r"
+#: changes (differences centred on 0, ratios centred on 1 on a log scale): red = more, blue = less
+DIVERGING = "RdBu_r"
 LINE = "#202020"          # marginals, contour lines and points: near-black, plain
 HALO = "white"            # stroked under each contour line and label so it reads on dark and light fills
 NO_DATA = "#c8c8c8"       # map background where a cell has no value
