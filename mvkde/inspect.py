@@ -284,6 +284,37 @@ def _warnings(ds: xr.Dataset, lay: OutputLayout, flags: dict | None, n_cells: in
     return out
 
 
+def _labels(ds: xr.Dataset) -> dict:
+    """The labelled samples of an output: windows with their dates, sources with their paths."""
+    out = {}
+    if "window" in ds.dims:
+        starts = ds["window_start"].values if "window_start" in ds.coords else [None] * ds.sizes["window"]
+        ends = ds["window_end"].values if "window_end" in ds.coords else [None] * ds.sizes["window"]
+        out["window"] = [{"name": str(n), "start": None if a is None else str(a), "end": None if b is None else str(b)}
+                         for n, a, b in zip(ds["window"].values, starts, ends)]
+    if "source" in ds.dims:
+        paths = ds["source_path"].values if "source_path" in ds.coords else [None] * ds.sizes["source"]
+        out["source"] = [{"name": str(n), "path": None if p is None else str(p)}
+                         for n, p in zip(ds["source"].values, paths)]
+    return out
+
+
+def _comparison(ds: xr.Dataset) -> dict | None:
+    """The comparison settings of an output with ``[compare]`` (None without one)."""
+    if "density_difference" not in ds.data_vars:
+        return None
+    a = ds["density_difference"].attrs
+    dim = str(a.get("compared_dim", ""))
+    compared = next((d for d in ds["density_difference"].dims if d.endswith("_compared")), None)
+    return {"reference": a.get("reference"), "dim": dim, "alpha": a.get("alpha"),
+            "compared": [str(v) for v in ds[compared].values] if compared else [],
+            "common_bandwidth": a.get("common_bandwidth"),
+            "outputs": [v for v in ("density_difference", "density_change_significant", "probability_ratio",
+                                    "probability_ratio_lower", "probability_ratio_upper",
+                                    "point_mass_probability_change", "return_period_and", "return_period_or")
+                        if v in ds.data_vars]}
+
+
 def summarise(ds: xr.Dataset, path=None) -> dict:
     """Everything ``mvkde inspect`` reports, as a JSON-ready dict.
 
@@ -340,6 +371,8 @@ def summarise(ds: xr.Dataset, path=None) -> dict:
         "per_cell": samples,
         "bandwidth": _bandwidth_table(ds, lay),
         "flags": flags,
+        "labels": _labels(ds),
+        "comparison": _comparison(ds),
         "warnings": _warnings(ds, lay, flags, n_cells),
         "caution": attrs.get("caution"),
         "attributes": {k: v for k, v in attrs.items() if k not in ("provenance",)},
@@ -419,6 +452,15 @@ def format_summary(s: dict) -> str:
             f"{v['name']} [{v['units'] or 'no units'}] {v['long_name'] if v['long_name'] != v['name'] else ''}".rstrip()
             + f"; grid {v['grid_size']} nodes on [{_num(v['limits'][0])}, {_num(v['limits'][1])}]{extra}")
     row("density", f"units {s['density_units'] or '-'}")
+    for dim, items in (s.get("labels") or {}).items():
+        for k, item in enumerate(items):
+            where = (f"{item['start']} to {item['end']}" if dim == "window" else item.get("path")) or ""
+            row(f"{dim}s" if k == 0 else "", f"{item['name']}: {where}".rstrip(": "))
+    c = s.get("comparison")
+    if c:
+        row("comparison", f"{', '.join(c['compared'])} against {c['reference']} (dim {c['dim']}), local test at "
+                          f"alpha {c['alpha']} (false discovery rate over each cell's grid); common H per pair")
+        row("", "outputs: " + ", ".join(c["outputs"]))
     e = s["estimator"]
     row("estimator", f"kernel {e['kernel']} ({e['form']}), bandwidth selector {e['bandwidth']} "
                      f"({e['parametrization']}), boundary {e['boundary']}, engine {e['engine']}"

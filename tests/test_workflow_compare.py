@@ -141,6 +141,15 @@ def test_sources_give_a_source_dimension(tmp_path):
     assert ds["n_samples"].values[0, 0].tolist() == [200, 150]
     assert list(ds["source_compared"].values) == ["model"]
     assert (ds["probability_ratio"].values > 1).mean() > 0.5  # the model is shifted up by 0.5 in both
+    # inspect lists the labels with their inputs and the comparison settings
+    from mvkde.inspect import format_summary, summarise
+
+    s = summarise(ds, tmp_path / "o.nc")
+    assert [item["name"] for item in s["labels"]["source"]] == ["obs", "model"]
+    assert s["labels"]["source"][1]["path"].endswith("two.nc")
+    assert s["comparison"]["reference"] == "obs" and s["comparison"]["compared"] == ["model"]
+    text = format_summary(s)
+    assert "sources" in text and "model against obs (dim source)" in text
 
 
 def test_return_periods_are_the_files_own_numbers_and_match_the_normal_closed_form(tmp_path):

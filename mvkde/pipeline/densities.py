@@ -44,7 +44,7 @@ def densities(ds, *, variables=None, sample_dims=("time",), group_by=None, split
               bounds=None, point_masses=None, periods=None, sphere=None, units=None,
               kernel="gaussian", form="product", bandwidth="plugin", parametrization="full", boundary=None,
               engine="auto", grid=None, products=None, min_samples=30, max_samples=None, time="time",
-              seed=0) -> xr.Dataset:
+              seed=0, compare=None) -> xr.Dataset:
     """One joint density per cell of a Dataset (or per group of a DataFrame), as ``mvkde run`` writes them.
 
     Parameters
@@ -64,7 +64,12 @@ def densities(ds, *, variables=None, sample_dims=("time",), group_by=None, split
     split_by : {"season", "month"}, optional
         One density per meteorological season or month of ``time``.
     windows : dict, optional
-        Named time windows (``input.windows``): not available yet.
+        Named time windows ``{NAME: (start, end)}`` (ISO dates, inclusive; the
+        workflow's ``input.windows``): an output dimension ``window``.
+    compare : dict, optional
+        The workflow's ``[compare]`` table, e.g. ``{"reference": "baseline",
+        "alpha": 0.05}``: density differences, local significance and
+        probability ratios of every other window against the reference.
     bounds, point_masses, periods, units : dict, optional
         Keyed by variable name: ``(lo, hi)`` support (None or inf for an
         open side), point-mass threshold (values <= it count as the bound),
@@ -106,15 +111,18 @@ def densities(ds, *, variables=None, sample_dims=("time",), group_by=None, split
     ...                       grid={"size": 64, "limits": {"pr": (1, 60), "tasmax": (-20, 40)}})
     >>> out.to_netcdf("basin.nc")          # the work happens here
     """
-    if windows is not None:
-        raise InputError(f"{SOURCE}: windows= (named time windows for comparisons) is not available yet: "
-                         "select each window with ds.sel(time=slice(start, end)) and call densities per window")
+    if windows is not None and not isinstance(windows, dict):
+        raise InputError(f"{SOURCE}: windows= must be a dict {{name: (start, end)}} of ISO dates, got {windows!r}")
     ds, names, table = _check_arguments(ds, variables, sample_dims, group_by, split_by, time,
                                         bounds=bounds, point_masses=point_masses, periods=periods, units=units,
                                         limits=(grid or {}).get("limits"))
     raw = _raw_workflow(names, sample_dims, group_by, split_by, bounds, point_masses, periods, sphere, units,
                         kernel, form, bandwidth, parametrization, boundary, engine, grid, products,
                         min_samples, max_samples, time, seed, table)
+    if windows:
+        raw["input"]["windows"] = {str(k): [str(v) for v in pair] for k, pair in windows.items()}
+    if compare:
+        raw["compare"] = dict(compare)
     lazy = (not table) and any(_is_dask(ds[v]) for v in names)
     try:
         wf = from_arguments(raw, SOURCE)
@@ -172,7 +180,12 @@ def lazy_dataset(plan: Plan, settings) -> xr.Dataset:
     light = dataclasses.replace(plan, values=None, codes=None, cell_coords={})
     template = _template(light, settings)
     nd = len(plan.cell_dims)
-    specs = {name: (var.dims, var.dtype, var.shape[nd:], dict(var.attrs)) for name, var in template.data_vars.items()}
+    cell_dims = tuple(plan.cell_dims)
+    # variables over the cell dims come from the block tasks; the others (per label, such as
+    # observations_per_year) are properties of the plan, the same in the template
+    specs = {name: (var.dims, var.dtype, var.shape[nd:], dict(var.attrs)) for name, var in template.data_vars.items()
+             if var.dims[:nd] == cell_dims}
+    plan_level = {name: var for name, var in template.data_vars.items() if name not in specs}
     token = dask.base.tokenize(plan.values.data.name, plan.codes, settings, sorted(specs))
     tiles = list(plan.tiles())
     label = functools.partial(_label_block, plan=light, settings=settings, specs=specs)
@@ -186,7 +199,7 @@ def lazy_dataset(plan: Plan, settings) -> xr.Dataset:
             part = dask.delayed(operator.getitem, pure=True)(labelled, name,
                                                             dask_key_name=f"mvkde-{name}-{b}-{token}")
             pieces[name][where] = da.from_delayed(part, shape=tshape + rest, dtype=dtype)
-    data_vars = {}
+    data_vars = dict(plan_level)
     for name, (dims, dtype, rest, attrs) in specs.items():
         arr = _stack(pieces[name].tolist(), 0, nd) if nd else pieces[name][()]
         data_vars[name] = (dims, arr, attrs)
