@@ -18,6 +18,7 @@ from . import engines as _engines
 from .bandwidth import SELECTORS
 from .cells import fit_cells
 from .errors import InputError, MvkdeError, MvkdeWarning
+from .estimator import fit
 from .kernels import get_kernel, get_multivariate_kernel
 from .products import grid as _grid
 
@@ -427,8 +428,6 @@ def _node_weights_at(axes, t_row) -> np.ndarray:
 def _kernel_mass(x, H, axes, W, kernel, form) -> np.ndarray:
     """q_i = sum_nodes W(node) K_H(node - x_i) for every row x_i (K symmetric: a weighted kernel sum
     with the grid nodes as data, evaluated at the sample)."""
-    from .estimator import fit
-
     keep = W > 0
     total = float(W.sum())
     if keep.sum() < len(axes) + 1 or total <= 0:

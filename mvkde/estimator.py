@@ -27,6 +27,7 @@ import xarray as xr
 from . import boundary as _boundary
 from .boundary import point_mass as _point_mass
 from .directional import model as _directional
+from .directional import node_areas_km2
 from .directional import spec as _directional_spec
 from . import engines as _engines
 from . import products as _products
@@ -704,8 +705,6 @@ class DensityEstimate:
             if self.periods[j] is not None:
                 coords[name][2]["period"] = float(self.periods[j])
         if self.sphere is not None:
-            from .directional import node_areas_km2
-
             lat, lon = self.sphere
             coords[lat][2].setdefault("units", "degrees_north")
             coords[lon][2].setdefault("units", "degrees_east")

@@ -429,6 +429,19 @@ def _cell_text(name, c) -> str:
     return f"{name} {c['size']}"
 
 
+def _label_rows(s: dict, row) -> None:
+    """The windows, sources and comparison settings of a summary, as report rows."""
+    for dim, items in (s.get("labels") or {}).items():
+        for k, item in enumerate(items):
+            where = (f"{item['start']} to {item['end']}" if dim == "window" else item.get("path")) or ""
+            row(f"{dim}s" if k == 0 else "", f"{item['name']}: {where}".rstrip(": "))
+    c = s.get("comparison")
+    if c:
+        row("comparison", f"{', '.join(c['compared'])} against {c['reference']} (dim {c['dim']}), local test at "
+                          f"alpha {c['alpha']} (false discovery rate over each cell's grid); common H per pair")
+        row("", "outputs: " + ", ".join(c["outputs"]))
+
+
 def format_summary(s: dict) -> str:
     """The plain-text report of ``mvkde inspect``."""
     W = 13
@@ -452,15 +465,7 @@ def format_summary(s: dict) -> str:
             f"{v['name']} [{v['units'] or 'no units'}] {v['long_name'] if v['long_name'] != v['name'] else ''}".rstrip()
             + f"; grid {v['grid_size']} nodes on [{_num(v['limits'][0])}, {_num(v['limits'][1])}]{extra}")
     row("density", f"units {s['density_units'] or '-'}")
-    for dim, items in (s.get("labels") or {}).items():
-        for k, item in enumerate(items):
-            where = (f"{item['start']} to {item['end']}" if dim == "window" else item.get("path")) or ""
-            row(f"{dim}s" if k == 0 else "", f"{item['name']}: {where}".rstrip(": "))
-    c = s.get("comparison")
-    if c:
-        row("comparison", f"{', '.join(c['compared'])} against {c['reference']} (dim {c['dim']}), local test at "
-                          f"alpha {c['alpha']} (false discovery rate over each cell's grid); common H per pair")
-        row("", "outputs: " + ", ".join(c["outputs"]))
+    _label_rows(s, row)
     e = s["estimator"]
     row("estimator", f"kernel {e['kernel']} ({e['form']}), bandwidth selector {e['bandwidth']} "
                      f"({e['parametrization']}), boundary {e['boundary']}, engine {e['engine']}"

@@ -27,7 +27,7 @@ from functools import lru_cache
 import numpy as np
 from scipy import interpolate, special
 
-from ..kernels import Kernel
+from ..kernels import Kernel, get_kernel
 
 _SQRT2PI = math.sqrt(2.0 * math.pi)
 
@@ -43,8 +43,6 @@ def _raw_epanechnikov(l: int, p: np.ndarray) -> np.ndarray:
 
 @lru_cache(maxsize=None)
 def _raw_table(name: str, l: int):
-    from ..kernels import get_kernel
-
     k = get_kernel(name)
     edges = np.linspace(-1.0, 1.0, 2001)  # 0 is an edge: kinks of the triangular kernel fall on one
     nodes, wts = np.polynomial.legendre.leggauss(8)

@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..cells import CellProducts, fit_cells
+from ..compare_cells import compare_pairs_cells
 from ..errors import ConfigError, InputError, MvkdeError
 from ..estimator import fit
 from ..products.grid import node_weights
@@ -327,8 +328,6 @@ def _compare_block(result: BlockResult, samples, where, errors, settings: CellSe
     (the output drops them).  The common H, the refits, the local test, the exceedances and the
     bootstrap go through :func:`mvkde.compare_cells.compare_pairs_cells` once per block.
     """
-    from ..compare_cells import compare_pairs_cells
-
     cmp_ = settings.compare
     arrays = result.arrays
     ncell, S = arrays["flags"].shape

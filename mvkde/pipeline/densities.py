@@ -32,6 +32,7 @@ from . import provenance as _prov
 from .blocks import _probe_sample, check_settings, process_block, settings_for
 from .inputs import Plan, plan_from_dataset, plan_from_table, resolve_axes
 from .output import build_dataset, global_attributes
+from .run import refuse_if_nothing_fitted as refuse
 from .schedule import block_tasks
 from .workflow import from_arguments
 
@@ -111,18 +112,13 @@ def densities(ds, *, variables=None, sample_dims=("time",), group_by=None, split
     ...                       grid={"size": 64, "limits": {"pr": (1, 60), "tasmax": (-20, 40)}})
     >>> out.to_netcdf("basin.nc")          # the work happens here
     """
-    if windows is not None and not isinstance(windows, dict):
-        raise InputError(f"{SOURCE}: windows= must be a dict {{name: (start, end)}} of ISO dates, got {windows!r}")
     ds, names, table = _check_arguments(ds, variables, sample_dims, group_by, split_by, time,
                                         bounds=bounds, point_masses=point_masses, periods=periods, units=units,
                                         limits=(grid or {}).get("limits"))
     raw = _raw_workflow(names, sample_dims, group_by, split_by, bounds, point_masses, periods, sphere, units,
                         kernel, form, bandwidth, parametrization, boundary, engine, grid, products,
                         min_samples, max_samples, time, seed, table)
-    if windows:
-        raw["input"]["windows"] = {str(k): [str(v) for v in pair] for k, pair in windows.items()}
-    if compare:
-        raw["compare"] = dict(compare)
+    _add_labels(raw, windows, compare)
     lazy = (not table) and any(_is_dask(ds[v]) for v in names)
     try:
         wf = from_arguments(raw, SOURCE)
@@ -143,8 +139,18 @@ def densities(ds, *, variables=None, sample_dims=("time",), group_by=None, split
     out.attrs.update(_attributes(ds, wf, plan, settings, lazy))
     if not lazy:
         out = out.compute()
-        _refuse_if_nothing_fitted(plan, out["flags"].values)
+        refuse_if_nothing_fitted(plan, out["flags"].values)
     return out
+
+
+def _add_labels(raw: dict, windows, compare) -> None:
+    """Named windows and the comparison as the workflow's ``input.windows`` and ``[compare]``."""
+    if windows is not None and not isinstance(windows, dict):
+        raise InputError(f"{SOURCE}: windows= must be a dict {{name: (start, end)}} of ISO dates, got {windows!r}")
+    if windows:
+        raw["input"]["windows"] = {str(k): [str(v) for v in pair] for k, pair in windows.items()}
+    if compare:
+        raw["compare"] = dict(compare)
 
 
 def _attributes(ds, wf, plan, settings, lazy) -> dict:
@@ -261,9 +267,7 @@ def _is_dask(var) -> bool:
     return getattr(var, "chunks", None) is not None
 
 
-def _refuse_if_nothing_fitted(plan: Plan, flags) -> None:
-    from .run import _refuse_if_nothing_fitted as refuse
-
+def refuse_if_nothing_fitted(plan: Plan, flags) -> None:
     try:
         refuse(plan, np.asarray(flags), [])
     except MvkdeError as exc:

@@ -21,8 +21,10 @@ from __future__ import annotations
 import numpy as np
 import xarray as xr
 
+from ..comparison import COMPARE_CAUTION
 from ..products import grid as _grid
 from ..products import speed_class_edges
+from ..products.return_periods import RETURN_PERIOD_CAUTION
 from ..units import density_units
 
 CAUTION_PRODUCTS = ("Probabilities are those of the estimate on the evaluation grid; beyond the "
@@ -228,8 +230,6 @@ def add_return_periods(ds: xr.Dataset, settings, rates, cdims: list, split: list
     from the numbers the file holds (Salvadori & De Michele 2004); lambda per split (a season's
     samples per year are its own days).
     """
-    from ..products.return_periods import RETURN_PERIOD_CAUTION
-
     names = list(settings.names)
     lead = cdims + split
     thr = settings.products.thresholds
@@ -277,8 +277,6 @@ COMPARE_NAMES = ("density_difference", "density_change_significant", "probabilit
 
 def add_comparison(ds: xr.Dataset, plan, settings, results: dict, squeeze, lead: list) -> None:
     """The [compare] outputs, over ``DIM_compared`` (the labels other than the reference)."""
-    from ..comparison import COMPARE_CAUTION
-
     cmp_ = settings.compare
     names = list(settings.names)
     dim = plan.label_dims[cmp_.axis]

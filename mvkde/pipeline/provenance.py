@@ -17,6 +17,7 @@ import sys
 from importlib import metadata
 from pathlib import Path
 
+from .. import __version__
 from . import readers as _io
 
 DEPENDENCIES = ("numpy", "scipy", "xarray", "netCDF4", "dask", "distributed", "pandas")
@@ -24,8 +25,6 @@ DEPENDENCIES = ("numpy", "scipy", "xarray", "netCDF4", "dask", "distributed", "p
 
 def versions() -> dict:
     """Installed versions of mvkde and its runtime dependencies."""
-    from .. import __version__
-
     out = {"mvkde": __version__, "python": platform.python_version()}
     for name in DEPENDENCIES:
         try:

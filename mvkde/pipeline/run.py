@@ -70,7 +70,7 @@ def run(wf: Workflow, *, progress_stream=None, plan: Plan | None = None, store_p
     ds = build_dataset(plan, settings, results)
     flags = ds["flags"].values
     failures = [(plan.cell_label(cell, split), msg) for cell, split, msg in results["failures"]]
-    _refuse_if_nothing_fitted(plan, flags, failures)
+    refuse_if_nothing_fitted(plan, flags, failures)
     summary = {
         "seconds": seconds,
         "scheduler": where,
@@ -86,7 +86,7 @@ def run(wf: Workflow, *, progress_stream=None, plan: Plan | None = None, store_p
     return ds, plan, settings, summary
 
 
-def _refuse_if_nothing_fitted(plan: Plan, flags: np.ndarray, messages) -> None:
+def refuse_if_nothing_fitted(plan: Plan, flags: np.ndarray, messages) -> None:
     """A run in which no cell got a density is an input or settings error, not an output."""
     usable = (flags & (FLAGS["too_few_samples"] | FLAGS["fit_failed"])) == 0
     if flags.size == 0 or usable.any():
