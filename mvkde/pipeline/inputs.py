@@ -651,7 +651,7 @@ def resolve_axes(plan: Plan, compute=None, *, check_bounds: bool = True) -> list
 
 
 def where_files(plan: Plan) -> str:
-    """How messages name the input: its first file and how many more, else ``plan.origin``."""
+    """How messages name the input: its first file and how many more, else ``plan.origin`` or "the input"."""
     if not plan.files:
         return plan.origin or "the input"
     return plan.files[0].name + (f" and {len(plan.files) - 1} more file(s)" if len(plan.files) > 1 else "")

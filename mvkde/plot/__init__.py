@@ -90,7 +90,7 @@ def build_figure(ds: xr.Dataset, *, cell=None, field=None, variables=None, size=
     field : str, optional
         A per-cell field (a map) or a grid product; None: a cell's density.
     variables : str or list of str, optional
-        One or two variables of the density (the first two when None).
+        One or two variables of the density (a list, or names separated by commas); the first two when None.
     size : tuple of int, optional
     masses : sequence of float, optional
         Probability masses of the HDR contours.
