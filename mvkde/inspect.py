@@ -41,7 +41,25 @@ FLAG_ADVICE = {
 
 @dataclass
 class OutputLayout:
-    """The structure of a density output."""
+    """The structure of a density output.
+
+    Attributes
+    ----------
+    names : list of str
+        Variables of the density, in the order of its grid dims.
+    cell_dims : list of str
+        Every other dim of the density.
+    units, long_names : dict
+        Variable -> units ('' when none) and long_name (the name itself when none).
+    periods : dict
+        Variable -> period of a circular variable.
+    point_mass : dict
+        Variable -> point-mass threshold (at most one entry).
+    provenance : dict or None
+        The parsed provenance record.
+    provenance_error : str or None
+        Why there is no provenance record.
+    """
 
     names: list                     # variables of the density, in the order of its grid dims
     cell_dims: list                 # every other dim of the density (cells, seasons, stations)
@@ -57,7 +75,17 @@ class OutputLayout:
         return len(self.names)
 
     def label(self, name: str) -> str:
-        """'long name (name) [units]' for an axis."""
+        """'long name (name) [units]' for an axis.
+
+        Parameters
+        ----------
+        name : str
+            A variable.
+
+        Returns
+        -------
+        str
+        """
         long = self.long_names.get(name, name)
         text = name if long in ("", name) else f"{long} ({name})"
         u = self.units.get(name, "")
@@ -65,7 +93,17 @@ class OutputLayout:
 
 
 def open_output(path) -> xr.Dataset:
-    """Open an output (netCDF file or Zarr store, lazily) with a clear error for a missing or unreadable one."""
+    """Open an output (netCDF file or Zarr store, lazily) with a clear error for a missing or unreadable one.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The netCDF file or Zarr store.
+
+    Returns
+    -------
+    xarray.Dataset
+    """
     p = Path(path)
     if not p.exists():
         raise InputError(f"output file {p} not found")
@@ -108,7 +146,17 @@ def _provenance(ds: xr.Dataset):
 
 
 def layout(ds: xr.Dataset) -> OutputLayout:
-    """Variables, cell dimensions, periods and point mass of an output (from its labels and provenance)."""
+    """Variables, cell dimensions, periods and point mass of an output (from its labels and provenance).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        An output of ``mvkde run``.
+
+    Returns
+    -------
+    OutputLayout
+    """
     if "density" not in ds.data_vars:
         raise InputError("the file has no 'density' variable: it is not a density output of mvkde run "
                          f"(data variables: {', '.join(map(str, ds.data_vars)) or 'none'})")
@@ -320,6 +368,17 @@ def summarise(ds: xr.Dataset, path=None) -> dict:
 
     ``summary["provenance"]`` is the file's ``provenance`` attribute parsed
     as it is (``json.loads``), so it round-trips exactly.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        An output of ``mvkde run``.
+    path : str or path-like, optional
+        Its file or store, for the path and size on disk.
+
+    Returns
+    -------
+    dict
     """
     lay = layout(ds)
     cell_shape = [int(ds.sizes[d]) for d in lay.cell_dims]
@@ -386,6 +445,17 @@ def summarise(ds: xr.Dataset, path=None) -> dict:
 
 
 def to_json(summary: dict) -> str:
+    """A summary as indented JSON (NaN and infinities refused).
+
+    Parameters
+    ----------
+    summary : dict
+        The result of :func:`summarise`.
+
+    Returns
+    -------
+    str
+    """
     return json.dumps(summary, indent=2, allow_nan=False)
 
 

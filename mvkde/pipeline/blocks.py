@@ -44,7 +44,21 @@ COARSE_SPACING = 1.5
 
 @dataclass
 class CompareSettings:
-    """What a block task needs to compare each label with the reference label (``[compare]``)."""
+    """What a block task needs to compare each label with the reference label (``[compare]``).
+
+    Attributes
+    ----------
+    axis : int
+        Which entry of ``split_shape`` is the compared label dim.
+    reference : int
+        Index of the reference label along it.
+    alpha : float
+        ``compare.alpha``.
+    bootstrap : int
+        ``products.bootstrap``.
+    band_level : float
+        ``products.band_level``.
+    """
 
     axis: int                 # which entry of split_shape is the compared label dim
     reference: int            # index of the reference label along it
@@ -55,7 +69,40 @@ class CompareSettings:
 
 @dataclass
 class CellSettings:
-    """Everything a block task needs to fit a cell (small and picklable)."""
+    """Everything a block task needs to fit a cell (small and picklable).
+
+    Attributes
+    ----------
+    names, units : list of str
+        Variable names and units.
+    kernel, form, bandwidth, parametrization, engine : str
+        The ``[estimator]`` options of :func:`mvkde.fit`.
+    bounds : list of (float, float) or None, or None
+        Bounds per variable (None: unbounded); None when no variable has bounds.
+    boundary : str or None
+        Boundary method; None without bounds.
+    point_masses, periods : list of float or None, or None
+        Point-mass threshold and period per variable; None when no variable has one.
+    axes : list of ndarray
+        The shared evaluation axes, one per variable.
+    min_samples : int
+        Fewer valid samples give NaN and ``too_few_samples``.
+    max_samples : int or None
+        Longer records are subsampled (seeded by the cell).
+    seed : int
+        ``estimator.seed``.
+    n_splits, n_cell_dims : int
+        Sample sets per cell (label combinations x seasons) and number of cell dims.
+    sphere : list of str or None
+        ``estimator.sphere``: latitude and longitude variables.
+    products : CellProducts
+        The products computed per cell.
+    refuse_outside_bounds : bool
+    n_season : int
+    split_shape : tuple of int
+    compare : CompareSettings or None
+        These four: see the comments on the fields.
+    """
 
     names: list
     units: list
@@ -97,7 +144,12 @@ class CellSettings:
         return next((j for j, t in enumerate(self.point_masses) if t is not None), None)
 
     def fit_kwargs(self) -> dict:
-        """Keyword arguments of :func:`mvkde.fit` and :func:`mvkde.cells.fit_cells`."""
+        """Keyword arguments of :func:`mvkde.fit` and :func:`mvkde.cells.fit_cells`.
+
+        Returns
+        -------
+        dict
+        """
         return dict(kernel=self.kernel, form=self.form, bandwidth=self.bandwidth,
                     parametrization=self.parametrization, engine=self.engine, names=self.names,
                     units=self.units, bounds=self.bounds, boundary=self.boundary if self.bounds else None,
@@ -106,7 +158,19 @@ class CellSettings:
 
 
 def settings_for(plan, axes) -> CellSettings:
-    """The cell settings of a planned run on the shared grid ``axes``."""
+    """The cell settings of a planned run on the shared grid ``axes``.
+
+    Parameters
+    ----------
+    plan : Plan
+        The planned run.
+    axes : list of array_like or None
+        The shared evaluation axes (from :func:`~mvkde.pipeline.inputs.resolve_axes`); None or empty: none yet.
+
+    Returns
+    -------
+    CellSettings
+    """
     wf = plan.workflow
     est, inp = wf["estimator"], wf["input"]
     vars_ = [wf.variable(v) for v in plan.names]
@@ -129,7 +193,19 @@ def settings_for(plan, axes) -> CellSettings:
 
 
 def compared_dim(wf, plan) -> str | None:
-    """The label dim ``[compare]`` compares along (None without a reference)."""
+    """The label dim ``[compare]`` compares along (None without a reference).
+
+    Parameters
+    ----------
+    wf : Workflow
+        The validated workflow.
+    plan : Plan
+        The planned run (its first label dim is the default).
+
+    Returns
+    -------
+    str or None
+    """
     ref = wf["compare"]["reference"]
     if ref is None:
         return None
@@ -167,6 +243,13 @@ def check_settings(wf, plan) -> None:
     A dry run of :func:`mvkde.fit` on a small synthetic sample inside the
     declared support surfaces any combination the library refuses, named by
     the workflow keys.
+
+    Parameters
+    ----------
+    wf : Workflow
+        The validated workflow (for messages).
+    plan : Plan
+        The planned run.
     """
     settings = settings_for(plan, None)
     try:
@@ -293,6 +376,25 @@ def process_block(values, codes, first_cell: int, tile_shape: tuple, settings: C
     combinations first, then broadcastable like ``codes``) labels the samples by window and
     source; with ``[compare]`` every (cell, label) is compared with the cell's reference label
     in the same task (:func:`_compare_block`).
+
+    Parameters
+    ----------
+    values : array_like
+        Samples of the block, as above.
+    codes : array_like of int
+        Split index per sample, as above.
+    first_cell : int
+        Flat index in the run of the block's first cell.
+    tile_shape : tuple of int
+        Block shape over the cell dims.
+    settings : CellSettings
+        What to fit and evaluate.
+    members : array_like of bool, optional
+        Label membership of every sample, as above; None without labels.
+
+    Returns
+    -------
+    BlockResult
     """
     values = np.asarray(values, dtype=float)
     d = settings.d

@@ -178,6 +178,17 @@ def lazy_dataset(plan: Plan, settings) -> xr.Dataset:
     whole run), and the blocks are stacked along the cell dims.  Names, dims,
     dtypes and trailing sizes are told to dask from a template: the same
     labelling of one synthetic cell fitted with the run's settings.
+
+    Parameters
+    ----------
+    plan : Plan
+        The planned run.
+    settings : CellSettings
+        The cell settings, with the shared evaluation axes.
+
+    Returns
+    -------
+    xarray.Dataset
     """
     import dask
     import dask.array as da

@@ -651,6 +651,7 @@ def resolve_axes(plan: Plan, compute=None, *, check_bounds: bool = True) -> list
 
 
 def where_files(plan: Plan) -> str:
+    """How messages name the input: its first file and how many more, else ``plan.origin`` or "the input"."""
     if not plan.files:
         return plan.origin or "the input"
     return plan.files[0].name + (f" and {len(plan.files) - 1} more file(s)" if len(plan.files) > 1 else "")
@@ -689,6 +690,7 @@ def estimate_sizes(plan: Plan) -> dict:
 
 
 def human_bytes(nbytes: float) -> str:
+    """``nbytes`` as text in decimal units (B, kB, MB, GB, TB)."""
     for unit in ("B", "kB", "MB", "GB", "TB"):
         if nbytes < 1000 or unit == "TB":
             return f"{nbytes:.0f} {unit}" if unit == "B" else f"{nbytes:.1f} {unit}"

@@ -23,13 +23,38 @@ __all__ = ["prepare_sources", "combine_sources", "label_members", "rates", "rate
 
 
 def rates_by_unique(wf, row_times, codes_flat, n_season, where):
-    """Observations per year per season of a table: over its distinct dates (stations share them)."""
+    """Observations per year per season of a table: over its distinct dates (stations share them).
+
+    Parameters
+    ----------
+    wf : Workflow
+        The validated workflow.
+    row_times : numpy.ndarray
+        Time of every table row.
+    codes_flat : numpy.ndarray
+        Season (or month) split code of every row.
+    n_season : int
+        Number of season or month splits.
+    where : str
+        How messages name the input.
+
+    Returns
+    -------
+    numpy.ndarray or None
+        Observations per year of every season split, as :func:`rates`.
+    """
     times, first = np.unique(row_times, return_index=True)
     return rates(wf, times, None, np.asarray(codes_flat)[first], n_season, 1, where)
 
 
 def note_empty_labels(plan) -> None:
-    """A window (or source) with no sample of the selection: its cells are flagged, not fatal."""
+    """A window (or source) with no sample of the selection: its cells are flagged, not fatal.
+
+    Parameters
+    ----------
+    plan : Plan
+        The plan; a note is appended to ``plan.notes`` for each empty label combination.
+    """
     if plan.members is None:
         return
     flat = plan.members.reshape(plan.members.shape[0], -1)
@@ -46,6 +71,22 @@ def combine_sources(wf, parts: dict, check, select):
 
     Returns (dataset, source index per time step, dims, sample_dims, cell_dims).  Every source must
     hold input.variables with the same units and the same cells.
+
+    Parameters
+    ----------
+    wf : Workflow
+        The validated workflow.
+    parts : dict
+        Source name -> (xarray.Dataset, how messages name it).
+    check : callable
+        ``check(wf, ds, where)`` -> (dims, sample_dims, cell_dims) of one source.
+    select : callable
+        ``select(ds, wf, dims, sample_dims, where)`` -> the selection of one source.
+
+    Returns
+    -------
+    tuple
+        (xarray.Dataset, numpy.ndarray of int16, dims, sample_dims, cell_dims).
     """
     inp, src = wf["input"], wf.source
     names, tname = wf.variables, inp["time"]
@@ -86,7 +127,26 @@ def combine_sources(wf, parts: dict, check, select):
 
 
 def label_members(wf, times, source_of, source_names, where: str):
-    """(label_dims, label_names, label_info, members (M, T) bool) of the windows and sources."""
+    """(label_dims, label_names, label_info, members (M, T) bool) of the windows and sources.
+
+    Parameters
+    ----------
+    wf : Workflow
+        The validated workflow (``input.windows`` and ``input.sources``).
+    times : array_like
+        Time of every sample.
+    source_of : numpy.ndarray or None
+        Source index of every sample; None without sources.
+    source_names : list of str
+        Names of the sources, in index order.
+    where : str
+        How messages name the input.
+
+    Returns
+    -------
+    tuple
+        (list of str, dict, dict, numpy.ndarray of bool or None); ``([], {}, {}, None)`` without labels.
+    """
     inp = wf["input"]
     dims, names, info, layers = [], {}, {}, []
     if inp["windows"]:
@@ -113,6 +173,23 @@ def label_members(wf, times, source_of, source_names, where: str):
 
 
 def as_datetimes(times, wf, where: str, key: str) -> pd.DatetimeIndex:
+    """``times`` as dates, refusing plain numbers with a message naming ``key``.
+
+    Parameters
+    ----------
+    times : array_like
+        Times as numpy datetime64 values or date objects (with ``year``, ``month``, ``day``).
+    wf : Workflow
+        The validated workflow (for messages).
+    where : str
+        How messages name the input.
+    key : str
+        The workflow key that needs dates (for messages).
+
+    Returns
+    -------
+    pandas.DatetimeIndex
+    """
     values = np.asarray(times)
     if np.issubdtype(values.dtype, np.datetime64):
         return pd.DatetimeIndex(values)
@@ -126,7 +203,28 @@ def as_datetimes(times, wf, where: str, key: str) -> pd.DatetimeIndex:
 def rates(wf, times, members, season_codes, n_season, n_labels, where: str):
     """Observations per year of every split (label combination x season): its samples over the years
     its label spans (over the calendar years holding samples when input.months / seasons select part
-    of each year); ``products.observations_per_year`` when given; None when not asked for."""
+    of each year); ``products.observations_per_year`` when given; None when not asked for.
+
+    Parameters
+    ----------
+    wf : Workflow
+        The validated workflow.
+    times : array_like
+        Time of every sample.
+    members : numpy.ndarray or None
+        (label combinations, samples) bool membership; None: one label holding every sample.
+    season_codes : numpy.ndarray or None
+        Season (or month) code of every sample; None: one season.
+    n_season, n_labels : int
+        Number of season splits and of label combinations.
+    where : str
+        How messages name the input.
+
+    Returns
+    -------
+    numpy.ndarray or None
+        (n_labels * n_season,) float; NaN for a label with fewer than two samples.
+    """
     prod = wf["products"]
     S = n_labels * n_season
     if not prod["return_periods"]:
@@ -167,6 +265,21 @@ def prepare_sources(wf, from_dataset, from_table, read_table, file_chunks):
 
     The plan is made by ``inputs.plan_from_dataset`` / ``plan_from_table`` (passed in, so the
     import graph stays one-way).
+
+    Parameters
+    ----------
+    wf : Workflow
+        The validated workflow.
+    from_dataset, from_table : callable
+        ``inputs.plan_from_dataset`` and ``inputs.plan_from_table``.
+    read_table : callable
+        ``read_table(wf, files, kind)`` -> the columns the workflow needs, as a pandas.DataFrame.
+    file_chunks : callable
+        ``file_chunks(wf, files)`` -> dask chunks for several netCDF files.
+
+    Returns
+    -------
+    Plan
     """
     inp = wf["input"]
     opened, tables, all_files, kinds = {}, [], [], set()

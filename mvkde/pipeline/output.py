@@ -128,7 +128,18 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
 
 
 def label_coords(plan: Plan) -> dict:
-    """Coordinates of the window and source dims: names, and the dates or paths of each label."""
+    """Coordinates of the window and source dims: names, and the dates or paths of each label.
+
+    Parameters
+    ----------
+    plan : Plan
+        The planned run.
+
+    Returns
+    -------
+    dict
+        Coordinate name -> (dim, values, attributes); empty without labels.
+    """
     coords = {}
     if "window" in plan.label_dims:
         spans = list(plan.workflow["input"]["windows"].values())
@@ -146,7 +157,23 @@ def label_coords(plan: Plan) -> dict:
 
 
 def global_attributes(wf, settings: CellSettings, names: list, rec: dict) -> dict:
-    """The global attributes of an output (the same from ``mvkde run`` and :func:`mvkde.densities`)."""
+    """The global attributes of an output (the same from ``mvkde run`` and :func:`mvkde.densities`).
+
+    Parameters
+    ----------
+    wf : Workflow
+        The validated workflow.
+    settings : CellSettings
+        The cell settings of the run.
+    names : list of str
+        The variables.
+    rec : dict
+        The provenance record (:func:`mvkde.pipeline.provenance.record`).
+
+    Returns
+    -------
+    dict
+    """
     est = wf["estimator"]
     return {
         "title": wf["output"]["title"] or ("joint probability density of " + ", ".join(names)),
@@ -163,12 +190,36 @@ def global_attributes(wf, settings: CellSettings, names: list, rec: dict) -> dic
 
 
 def is_zarr_path(path) -> bool:
-    """An output path naming a Zarr store (``output.path`` ending in ``.zarr``)."""
+    """An output path naming a Zarr store (``output.path`` ending in ``.zarr``).
+
+    Parameters
+    ----------
+    path : str or path-like
+
+    Returns
+    -------
+    bool
+    """
     return str(path).rstrip("/").lower().endswith(".zarr")
 
 
 def encoding_for(ds: xr.Dataset, plan: Plan, output: dict) -> dict:
-    """Compressed, chunked netCDF4 encoding: one chunk = one block of cells with its whole grid."""
+    """Compressed, chunked netCDF4 encoding: one chunk = one block of cells with its whole grid.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        The output.
+    plan : Plan
+        The planned run (its cell dims and tile).
+    output : dict
+        The ``[output]`` table (``complevel``, ``dtype``).
+
+    Returns
+    -------
+    dict
+        Variable name -> netCDF4 encoding.
+    """
     enc = {}
     for name, var in ds.data_vars.items():
         chunks = []
@@ -193,7 +244,16 @@ def encoding_for(ds: xr.Dataset, plan: Plan, output: dict) -> dict:
 # ---------------------------------------------------------------------------
 
 def temporary_path(path: Path) -> Path:
-    """Where ``path`` is written before the rename: ``.NAME.PID.partial`` in the same folder."""
+    """Where ``path`` is written before the rename: ``.NAME.PID.partial`` in the same folder.
+
+    Parameters
+    ----------
+    path : pathlib.Path
+
+    Returns
+    -------
+    pathlib.Path
+    """
     return path.with_name(f".{path.name}.{os.getpid()}.partial")
 
 
@@ -213,6 +273,15 @@ def clean_stale_partials(path) -> list[Path]:
     A run killed while writing (SIGKILL, a node lost) leaves
     ``.NAME.PID.partial``; a file whose PID still runs belongs to a run in
     progress and is kept.  Returns the files removed.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The output path.
+
+    Returns
+    -------
+    list of pathlib.Path
     """
     path = Path(path)
     removed = []
@@ -236,7 +305,21 @@ def clean_stale_partials(path) -> list[Path]:
 
 
 def check_output_path(path, *, overwrite: bool = False) -> Path:
-    """Refuse an existing output (unless ``overwrite``) or an unwritable folder, before any work."""
+    """Refuse an existing output (unless ``overwrite``) or an unwritable folder, before any work.
+
+    The output folder is created if missing.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The output path.
+    overwrite : bool, optional
+        Accept an existing output.
+
+    Returns
+    -------
+    pathlib.Path
+    """
     path = Path(path)
     if path.exists() and not overwrite:
         raise InputError(f"output {path} exists: pass --overwrite (or choose another output.path)")
@@ -256,7 +339,23 @@ def check_output_path(path, *, overwrite: bool = False) -> Path:
 
 
 def write_netcdf_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding=None) -> Path:
-    """Write ``ds`` to ``path`` through a temporary file and an atomic rename."""
+    """Write ``ds`` to ``path`` through a temporary file and an atomic rename.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        The output.
+    path : str or path-like
+        The netCDF file.
+    overwrite : bool, optional
+        Replace an existing output.
+    encoding : dict, optional
+        netCDF4 encoding per variable (:func:`encoding_for`).
+
+    Returns
+    -------
+    pathlib.Path
+    """
     path = check_output_path(path, overwrite=overwrite)
     clean_stale_partials(path)
     tmp = temporary_path(path)
@@ -277,7 +376,19 @@ def _looks_like_zarr(path: Path) -> bool:
 
 
 def zarr_encoding(ds: xr.Dataset, netcdf_encoding: dict) -> dict:
-    """The netCDF encoding translated for Zarr: same chunks (one block of cells) and storage types."""
+    """The netCDF encoding translated for Zarr: same chunks (one block of cells) and storage types.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        The output.
+    netcdf_encoding : dict or None
+        netCDF4 encoding per variable.
+
+    Returns
+    -------
+    dict
+    """
     enc = {}
     for name, e in (netcdf_encoding or {}).items():
         z = {}
@@ -298,6 +409,21 @@ def write_zarr_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding
     removed only once the new store is in place; a write that fails or is
     killed leaves no store at ``path`` (the temporary one is removed here, or
     by the next run's :func:`clean_stale_partials`).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        The output.
+    path : str or path-like
+        The store, ending in ``.zarr``.
+    overwrite : bool, optional
+        Replace an existing output.
+    encoding : dict, optional
+        netCDF4 encoding per variable, translated by :func:`zarr_encoding`.
+
+    Returns
+    -------
+    pathlib.Path
     """
     try:
         import zarr  # noqa: F401
@@ -331,7 +457,23 @@ def write_zarr_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding
 
 
 def write_output_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding=None) -> Path:
-    """netCDF, or a Zarr store when ``path`` ends in ``.zarr``; either way complete or absent."""
+    """netCDF, or a Zarr store when ``path`` ends in ``.zarr``; either way complete or absent.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        The output.
+    path : str or path-like
+        The output path.
+    overwrite : bool, optional
+        Replace an existing output.
+    encoding : dict, optional
+        netCDF4 encoding per variable.
+
+    Returns
+    -------
+    pathlib.Path
+    """
     if is_zarr_path(path):
         return write_zarr_atomic(ds, path, overwrite=overwrite, encoding=encoding)
     return write_netcdf_atomic(ds, path, overwrite=overwrite, encoding=encoding)

@@ -32,6 +32,21 @@ CAUTION_PRODUCTS = ("Probabilities are those of the estimate on the evaluation g
 
 
 def add_cell_products(ds: xr.Dataset, results: dict, settings, lead: list, squeeze) -> None:
+    """Label the per-cell products of the block tasks and add them to ``ds`` in place.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        The output, holding ``density`` already.
+    results : dict
+        The assembled block arrays (``BlockResult.arrays`` of every block).
+    settings : CellSettings
+        The cell settings (variables and ``products``).
+    lead : list of str
+        The cell dims then the split dims.
+    squeeze : callable
+        Reshapes an array's flat split axis into the split dims.
+    """
     names = list(settings.names)
     p = settings.products
     thr = p.thresholds
@@ -95,6 +110,19 @@ def add_grid_products(ds: xr.Dataset, spec: dict, names: list, pm_index, pm_boun
 
     ``spec`` is the workflow's [products]; ``sphere`` the (latitude, longitude)
     indices of a location on the sphere, integrated with the node areas.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        The output, holding ``density``; changed in place.
+    spec : dict
+    names : list of str
+        The variables.
+    pm_index : int or None
+        Index of the variable with a point mass.
+    pm_bound : float, optional
+        The point-mass threshold (its variable's lower bound).
+    sphere : tuple of int, optional
     """
     if not (spec["marginals"] or spec["cdf"] or spec["exceedance"] or spec["hdr_masses"] or spec["quantiles"]):
         return
@@ -183,6 +211,30 @@ def cdf_at_thresholds(density, axes, thresholds, nlead, *, point_mass_probabilit
     product) interpolated multilinearly at t, t clipped to the grid (the CDF is 0 at the first node,
     the whole grid mass beyond the last); the point mass (at its bound) adds p x the CDF of the
     other variables on it where t reaches the bound.  Returns (*lead, m).
+
+    Parameters
+    ----------
+    density : array_like
+        (*lead, *grid) densities; a cell all NaN gives NaN.
+    axes : list of array_like
+        The grid axes.
+    thresholds : array_like
+        (m, d) threshold rows (one row may be given as (d,)).
+    nlead : int
+        Number of leading axes.
+    point_mass_probability : array_like, optional
+        (*lead,) probability of the point mass.
+    density_at_point_mass : array_like, optional
+        (*lead, *other grid) density of the other variables on the point mass (d > 1).
+    pm_index : int, optional
+        Index of the variable with the point mass.
+    pm_bound : float, optional
+        Where the point mass sits.
+
+    Returns
+    -------
+    numpy.ndarray
+        (*lead, m), clipped to [0, 1].
     """
     t = np.atleast_2d(np.asarray(thresholds, dtype=float))
     d = len(axes)
@@ -229,6 +281,19 @@ def add_return_periods(ds: xr.Dataset, settings, rates, cdims: list, split: list
     T_AND = 1 / (lambda exceedance_at_threshold) and T_OR = 1 / (lambda (1 - cdf_at_threshold)), both
     from the numbers the file holds (Salvadori & De Michele 2004); lambda per split (a season's
     samples per year are its own days).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        The output, holding ``density`` and ``exceedance_at_threshold``; changed in place.
+    settings : CellSettings
+        The cell settings (variables, axes, thresholds).
+    rates : array_like
+        Observations per year of every split, in the split shape.
+    cdims, split : list of str
+        The cell dims and the split dims.
+    pm_bound : float, optional
+        Where the point mass sits (its variable's lower bound).
     """
     names = list(settings.names)
     lead = cdims + split
@@ -276,7 +341,23 @@ COMPARE_NAMES = ("density_difference", "density_change_significant", "probabilit
 
 
 def add_comparison(ds: xr.Dataset, plan, settings, results: dict, squeeze, lead: list) -> None:
-    """The [compare] outputs, over ``DIM_compared`` (the labels other than the reference)."""
+    """The [compare] outputs, over ``DIM_compared`` (the labels other than the reference).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        The output, holding ``density``; changed in place.
+    plan : Plan
+        The planned run (its label dims and names).
+    settings : CellSettings
+        The cell settings; ``settings.compare`` is set.
+    results : dict
+        The assembled block arrays.
+    squeeze : callable
+        Reshapes an array's flat split axis into the split dims.
+    lead : list of str
+        The cell dims then the split dims.
+    """
     cmp_ = settings.compare
     names = list(settings.names)
     dim = plan.label_dims[cmp_.axis]

@@ -24,7 +24,13 @@ DEPENDENCIES = ("numpy", "scipy", "xarray", "netCDF4", "dask", "distributed", "p
 
 
 def versions() -> dict:
-    """Installed versions of mvkde and its runtime dependencies."""
+    """Installed versions of mvkde and its runtime dependencies.
+
+    Returns
+    -------
+    dict
+        Package name -> version string (None when not installed), and ``python``.
+    """
     out = {"mvkde": __version__, "python": platform.python_version()}
     for name in DEPENDENCIES:
         try:
@@ -35,7 +41,17 @@ def versions() -> dict:
 
 
 def describe_inputs(files) -> list[dict]:
-    """Path (absolute), size in bytes and SHA-256 of each input file."""
+    """Path (absolute), size in bytes and SHA-256 of each input file.
+
+    Parameters
+    ----------
+    files : iterable of path-like
+
+    Returns
+    -------
+    list of dict
+        One ``{"path", "size_bytes", "sha256"}`` per file.
+    """
     out = []
     for f in files:
         p = Path(f).resolve()
@@ -44,7 +60,25 @@ def describe_inputs(files) -> list[dict]:
 
 
 def record(workflow, files, *, command_line=None, extra=None, now=None) -> dict:
-    """The provenance dict of a run of ``workflow`` over ``files``."""
+    """The provenance dict of a run of ``workflow`` over ``files``.
+
+    Parameters
+    ----------
+    workflow : Workflow
+        The validated workflow.
+    files : iterable of path-like
+        The input files (hashed).
+    command_line : list of str, optional
+        The command recorded; ``sys.argv`` when None.
+    extra : dict, optional
+        More entries, added last.
+    now : datetime.datetime, optional
+        The creation time (UTC); the current time when None.
+
+    Returns
+    -------
+    dict
+    """
     now = now or _dt.datetime.now(_dt.timezone.utc)
     wf_file = None
     if workflow.path is not None and Path(workflow.path).exists():
@@ -68,10 +102,31 @@ def record(workflow, files, *, command_line=None, extra=None, now=None) -> dict:
 
 
 def to_json(rec: dict) -> str:
+    """``rec`` as one line of JSON (values JSON cannot hold written with ``str``).
+
+    Parameters
+    ----------
+    rec : dict
+        A provenance record.
+
+    Returns
+    -------
+    str
+    """
     return json.dumps(rec, indent=None, sort_keys=False, allow_nan=False, default=str)
 
 
 def history_line(rec: dict) -> str:
-    """A CF ``history`` entry: time, then the command."""
+    """A CF ``history`` entry: time, then the command.
+
+    Parameters
+    ----------
+    rec : dict
+        A provenance record (:func:`record`).
+
+    Returns
+    -------
+    str
+    """
     cmd = " ".join(rec["command_line"]) or "mvkde"
     return f"{rec['created_utc']}: {cmd} (mvkde {rec['software']['mvkde']})"

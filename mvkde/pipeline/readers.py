@@ -21,7 +21,17 @@ TABLE_SUFFIXES = {".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "p
 
 
 def expand_paths(paths) -> list[Path]:
-    """Files named by ``paths`` (paths or globs), sorted within each glob."""
+    """Files named by ``paths`` (paths or globs), sorted within each glob.
+
+    Parameters
+    ----------
+    paths : iterable of str or path-like
+        Paths or glob patterns; ``~`` is expanded.
+
+    Returns
+    -------
+    list of pathlib.Path
+    """
     files: list[Path] = []
     for p in paths:
         p = os.path.expanduser(str(p))
@@ -41,7 +51,19 @@ def expand_paths(paths) -> list[Path]:
 
 
 def input_format(files, fmt: str = "auto") -> str:
-    """'netcdf', 'csv' or 'parquet', from ``fmt`` or the files' suffixes."""
+    """'netcdf', 'csv' or 'parquet', from ``fmt`` or the files' suffixes.
+
+    Parameters
+    ----------
+    files : list of path-like
+        The input files.
+    fmt : str, optional
+        ``input.format``; anything but "auto" is returned as given.
+
+    Returns
+    -------
+    str
+    """
     if fmt != "auto":
         return fmt
     kinds = set()
@@ -67,6 +89,17 @@ def open_gridded(files, chunks=None) -> xr.Dataset:
     ``.chunk()`` reads each chunk as one hyperslab), ``{}`` uses the files'
     own chunks.  Several files are combined by their coordinates and always
     get dask chunks (``{}`` when ``chunks`` is None).
+
+    Parameters
+    ----------
+    files : list of path-like
+        The netCDF files.
+    chunks : dict or None, optional
+        Dask chunks, as above.
+
+    Returns
+    -------
+    xarray.Dataset
     """
     try:
         try:
@@ -95,6 +128,13 @@ def check_units_agree(files, names) -> None:
 
     Combining files keeps the first file's attributes, so a file in kelvin
     among files in degC would otherwise be pooled silently.
+
+    Parameters
+    ----------
+    files : list of path-like
+        The netCDF files.
+    names : list of str
+        The variables to compare.
     """
     import netCDF4
 
@@ -118,7 +158,21 @@ def check_units_agree(files, names) -> None:
 
 
 def read_table(files, fmt: str, columns=None):
-    """Read CSV or Parquet files into one pandas DataFrame (only ``columns`` if given)."""
+    """Read CSV or Parquet files into one pandas DataFrame (only ``columns`` if given).
+
+    Parameters
+    ----------
+    files : list of path-like
+        The table files.
+    fmt : {'csv', 'parquet'}
+        Their format.
+    columns : list of str, optional
+        The columns to read; all when None.
+
+    Returns
+    -------
+    pandas.DataFrame
+    """
     import pandas as pd
 
     frames = []
@@ -139,7 +193,19 @@ def read_table(files, fmt: str, columns=None):
 
 
 def table_columns(files, fmt: str) -> list[str]:
-    """Column names of the first table (cheap: reads the header or the schema)."""
+    """Column names of the first table (cheap: reads the header or the schema).
+
+    Parameters
+    ----------
+    files : list of path-like
+        The table files.
+    fmt : {'csv', 'parquet'}
+        Their format.
+
+    Returns
+    -------
+    list of str
+    """
     import pandas as pd
 
     f = files[0]
@@ -153,7 +219,20 @@ def table_columns(files, fmt: str) -> list[str]:
 
 
 def sha256(path, block: int = 1 << 20) -> str:
-    """SHA-256 of a file's bytes, read in 1 MiB blocks."""
+    """SHA-256 of a file's bytes, read in 1 MiB blocks.
+
+    Parameters
+    ----------
+    path : path-like
+        The file.
+    block : int, optional
+        Bytes read at a time.
+
+    Returns
+    -------
+    str
+        The hexadecimal digest.
+    """
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         while chunk := fh.read(block):
@@ -162,7 +241,22 @@ def sha256(path, block: int = 1 << 20) -> str:
 
 
 def read_points(path, names, source=None) -> "np.ndarray":
-    """Points (m, d) from a CSV table with one column per variable (products.points)."""
+    """Points (m, d) from a CSV table with one column per variable (products.points).
+
+    Parameters
+    ----------
+    path : path-like
+        The CSV file.
+    names : list of str
+        The variables, one column each.
+    source : str, optional
+        How messages name the workflow.
+
+    Returns
+    -------
+    numpy.ndarray
+        (m, d) float, finite, at least one row.
+    """
     import numpy as np
     import pandas as pd
 

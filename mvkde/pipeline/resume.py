@@ -25,6 +25,17 @@ class BlockStore:
     block written after its data: a block counts as done only when its
     marker exists, so a run killed while saving a block recomputes it.  A store made by a different run is
     replaced.  zarr is imported here only (the ``resume`` extra).
+
+    Parameters
+    ----------
+    path : str or path-like
+        The store folder (:func:`resume_store_path`).
+    plan : Plan
+        The planned run.
+    settings : CellSettings
+        The cell settings, with the shared evaluation axes.
+    note : callable, optional
+        Called with a message when a store of a different run is replaced.
     """
 
     def __init__(self, path, plan: Plan, settings: CellSettings, note=None):
@@ -56,9 +67,28 @@ class BlockStore:
         self.root = zarr.open_group(str(self.path / "results.zarr"), mode="a")
 
     def done_blocks(self) -> set:
+        """Indices of the blocks whose marker exists.
+
+        Returns
+        -------
+        set of int
+        """
         return {int(f.stem) for f in self.markers.glob("*.json") if f.stem.isdigit()}
 
     def read(self, i: int, tile) -> BlockResult:
+        """The saved result of block ``i``.
+
+        Parameters
+        ----------
+        i : int
+            Block index.
+        tile : tuple of slice
+            The block's slices over the cell dims (empty without cell dims).
+
+        Returns
+        -------
+        BlockResult
+        """
         meta = json.loads((self.markers / f"{i}.json").read_text())
         ncell = int(np.prod([t.stop - t.start for t in tile])) if tile else 1
         out = {}
@@ -74,6 +104,17 @@ class BlockStore:
         return BlockResult(out, failures, set(meta["engines"]), set(meta["paths"]))
 
     def write(self, i: int, tile, res: BlockResult) -> None:
+        """Save the result of block ``i``, then its marker.
+
+        Parameters
+        ----------
+        i : int
+            Block index.
+        tile : tuple of slice
+            The block's slices over the cell dims (empty without cell dims).
+        res : BlockResult
+            The block's result; text arrays are kept through its failures.
+        """
         tshape = tuple(t.stop - t.start for t in tile)
         for name, arr in res.arrays.items():
             if arr.dtype.kind == "O":
@@ -92,6 +133,7 @@ class BlockStore:
         return int(np.ravel_multi_index(tuple(t.start for t in tile), self.cell_shape)) if tile else 0
 
     def remove(self) -> None:
+        """Delete the store (``run_and_write`` does once the output is written)."""
         shutil.rmtree(self.path, ignore_errors=True)
 
 
@@ -115,6 +157,17 @@ def _fingerprint(plan: Plan, settings: CellSettings) -> dict:
 
 
 def resume_store_path(output) -> Path:
+    """The store of the finished blocks of an output: ``NAME.resume`` beside it.
+
+    Parameters
+    ----------
+    output : str or path-like
+        The output path.
+
+    Returns
+    -------
+    pathlib.Path
+    """
     output = Path(output)
     return output.with_name(output.name + ".resume")
 

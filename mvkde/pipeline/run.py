@@ -41,7 +41,17 @@ __all__ = ["plan_run", "run", "run_and_write", "describe_plan"]
 
 
 def plan_run(wf: Workflow) -> Plan:
-    """Open and select the inputs, then refuse, before any work, settings and sizes that cannot run."""
+    """Open and select the inputs, then refuse, before any work, settings and sizes that cannot run.
+
+    Parameters
+    ----------
+    wf : Workflow
+        The validated workflow.
+
+    Returns
+    -------
+    Plan
+    """
     plan = prepare(wf)
     check_settings(wf, plan)
     check_memory(plan)
@@ -53,6 +63,23 @@ def run(wf: Workflow, *, progress_stream=None, plan: Plan | None = None, store_p
 
     Nothing is written, except finished blocks to the Zarr store at
     ``store_path`` when given (the resumable mode).
+
+    Parameters
+    ----------
+    wf : Workflow
+        The validated workflow.
+    progress_stream : file-like, optional
+        Where progress and store notes are written; ``sys.stderr`` when None.
+    plan : Plan, optional
+        A plan already made by :func:`plan_run`.
+    store_path : path-like, optional
+        Zarr store of the finished blocks (the resumable mode).
+
+    Returns
+    -------
+    tuple
+        (xarray.Dataset, Plan, CellSettings, dict): the summary holds ``seconds``, ``scheduler``, ``cells``,
+        ``blocks``, ``flag_counts``, ``failures``, ``engines``, ``paths``, ``resumed_blocks`` and ``store``.
     """
     plan = plan or plan_run(wf)
     stream = progress_stream if progress_stream is not None else sys.stderr
@@ -105,7 +132,17 @@ def refuse_if_nothing_fitted(plan: Plan, flags: np.ndarray, messages) -> None:
 
 
 def describe_plan(plan: Plan) -> str:
-    """The text ``mvkde check`` prints."""
+    """The text ``mvkde check`` prints.
+
+    Parameters
+    ----------
+    plan : Plan
+        The planned run.
+
+    Returns
+    -------
+    str
+    """
     wf = plan.workflow
     est, inp = wf["estimator"], wf["input"]
     sizes = estimate_sizes(plan)
@@ -161,6 +198,16 @@ def coarse_grid_warnings(plan: Plan) -> list[str]:
     smaller than a split's); a spacing above ``COARSE_SPACING`` kernel
     standard deviations makes the trapezoid rule miss the density near a
     bound or a peak, and the products integrated on the grid are biased.
+
+    Parameters
+    ----------
+    plan : Plan
+        The planned run.
+
+    Returns
+    -------
+    list of str
+        One warning per variable; empty when the first cell cannot be fitted.
     """
     wf = plan.workflow
     first = plan.values.isel({d: 0 for d in plan.cell_dims}) if plan.cell_dims else plan.values
@@ -197,6 +244,25 @@ def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out
     """Load, run and write a workflow; print the summary to ``out``.
 
     Returns the run summary (a dict; ``summary["path"]`` is the output written).
+
+    Parameters
+    ----------
+    path : str, path-like or Workflow
+        The workflow file, or a workflow already loaded.
+    overrides : sequence of str, optional
+        ``--set`` overrides (``key=value``) applied when loading the file.
+    overwrite : bool, optional
+        Replace an existing output (also set by ``output.overwrite``).
+    command_line : list of str, optional
+        The command recorded in the provenance.
+    out : file-like, optional
+        Where the summary is printed; ``sys.stdout`` when None.
+    progress_stream : file-like, optional
+        Where progress is reported.
+
+    Returns
+    -------
+    dict
     """
     out = out if out is not None else sys.stdout
     wf = path if isinstance(path, Workflow) else load(path, overrides)

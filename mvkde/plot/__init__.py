@@ -80,6 +80,27 @@ def build_figure(ds: xr.Dataset, *, cell=None, field=None, variables=None, size=
 
     ``size`` is (width, height) in pixels; None shapes a map's canvas like
     the map and gives other pictures ``DEFAULT_SIZE``.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        An output of ``mvkde run``.
+    cell : dict, optional
+        Cell dim -> value (text, as from :func:`parse_selection`).
+    field : str, optional
+        A per-cell field (a map) or a grid product; None: a cell's density.
+    variables : str or list of str, optional
+        One or two variables of the density (a list, or names separated by commas); the first two when None.
+    size : tuple of int, optional
+    masses : sequence of float, optional
+        Probability masses of the HDR contours.
+    lay : OutputLayout, optional
+        The layout of ``ds``, when already read.
+
+    Returns
+    -------
+    tuple
+        (matplotlib.figure.Figure, PlotResult).
     """
     require_matplotlib()
     import matplotlib
@@ -191,7 +212,21 @@ def _slug(text: str) -> str:
 
 
 def default_picture_path(output: Path, field=None, chosen_text: dict | None = None) -> Path:
-    """``OUTPUT_cell_lat60.5_lon21.png`` / ``OUTPUT_map_n_samples.png`` beside the output file."""
+    """``OUTPUT_cell_lat60.5_lon21.png`` / ``OUTPUT_map_n_samples.png`` beside the output file.
+
+    Parameters
+    ----------
+    output : pathlib.Path
+        The output file.
+    field : str, optional
+        The field drawn; None for a cell's density.
+    chosen_text : dict, optional
+        Cell dim -> chosen value.
+
+    Returns
+    -------
+    pathlib.Path
+    """
     parts = [output.stem, "map" if field else "cell"]
     if field:
         parts.append(_slug(field))
@@ -206,6 +241,20 @@ def plot_output(path, *, cell=None, field=None, variables=None, out=None, size=N
 
     ``size`` None: a map's canvas is shaped like the map, other pictures
     are ``DEFAULT_SIZE``.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The output file or store.
+    cell, field, variables, size, masses
+        As for :func:`build_figure`.
+    out : str or path-like, optional
+        The PNG file; :func:`default_picture_path` when None.
+
+    Returns
+    -------
+    PlotResult
+        With ``path`` the PNG written.
     """
     require_matplotlib()
     path = Path(path)

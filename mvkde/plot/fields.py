@@ -34,6 +34,17 @@ def parse_size(size=None, width=None, height=None) -> tuple[int, int] | None:
     ``--size 1200x900`` is in pixels, ``--size 12x9in`` in inches (at
     ``DPI`` pixels per inch); ``--width``/``--height`` are pixels and the
     missing one takes its default.  Errors name the option the user gave.
+
+    Parameters
+    ----------
+    size : str, optional
+        ``WIDTHxHEIGHT`` in pixels, or with ``in`` in inches.
+    width, height : str or int, optional
+        Whole pixels.
+
+    Returns
+    -------
+    tuple of int or None
     """
     if size is not None and (width is not None or height is not None):
         raise InputError("give --size WxH or --width/--height, not both")
@@ -73,7 +84,18 @@ def parse_size(size=None, width=None, height=None) -> tuple[int, int] | None:
 
 
 def parse_selection(texts) -> dict:
-    """``['lat=60.5,lon=21', 'season=JJA']`` -> ``{'lat': '60.5', 'lon': '21', 'season': 'JJA'}``."""
+    """``['lat=60.5,lon=21', 'season=JJA']`` -> ``{'lat': '60.5', 'lon': '21', 'season': 'JJA'}``.
+
+    Parameters
+    ----------
+    texts : iterable of str or None
+        The ``--cell`` arguments.
+
+    Returns
+    -------
+    dict
+        Dim -> value text.
+    """
     out: dict = {}
     for text in texts or ():
         for part in str(text).split(","):
@@ -198,6 +220,19 @@ def hdr_levels(density: xr.DataArray, masses=HDR_MASSES, periods=None) -> np.nda
     callers that know the circular variables (the trapezoid rule on a grid
     spanning one period already is the periodic rule).  Returns one level
     per mass, in the order of ``masses``; NaN nodes count as zero density.
+
+    Parameters
+    ----------
+    density : xarray.DataArray
+        One cell's density, with its axes as coordinates.
+    masses : sequence of float, optional
+        Fractions of the grid's mass.
+    periods : dict, optional
+        Variable -> period; unused, as above.
+
+    Returns
+    -------
+    numpy.ndarray
     """
     for dim in density.dims:
         if density.sizes[dim] < 2:
@@ -229,7 +264,18 @@ def _exceedance_block(values, axes, thresholds):
 
 
 def cd_units(lay, names) -> str:
-    """Units of a density of ``names`` in an output's layout."""
+    """Units of a density of ``names`` in an output's layout.
+
+    Parameters
+    ----------
+    lay : OutputLayout
+    names : list of str
+
+    Returns
+    -------
+    str
+        ``"1"`` when no variable has units.
+    """
     return density_units([lay.units.get(v, "") for v in names]) or "1"
 
 
@@ -252,7 +298,18 @@ def _field_help(ds, lay) -> str:
 
 
 def is_grid_product(ds, lay, name: str) -> bool:
-    """True for a data variable that is a grid over some of the density's variables in each cell."""
+    """True for a data variable that is a grid over some of the density's variables in each cell.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+    lay : OutputLayout
+    name : str
+
+    Returns
+    -------
+    bool
+    """
     if name not in ds.data_vars:
         return False
     dims = set(ds[name].dims)
@@ -260,7 +317,20 @@ def is_grid_product(ds, lay, name: str) -> bool:
 
 
 def grid_field_values(ds, lay, name: str) -> tuple[xr.DataArray, str]:
-    """A grid product by name (``density``, ``cdf``, ``exceedance``, ``marginal_pr`` ...) with its label."""
+    """A grid product by name (``density``, ``cdf``, ``exceedance``, ``marginal_pr`` ...) with its label.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+    lay : OutputLayout
+    name : str
+        A data variable of ``ds``.
+
+    Returns
+    -------
+    tuple
+        (xarray.DataArray, str): the variable and its label with units.
+    """
     da = ds[name]
     units = str(da.attrs.get("units", ""))
     long = str(da.attrs.get("long_name", name))
@@ -280,6 +350,17 @@ def field_values(ds: xr.Dataset, lay: OutputLayout, name: str) -> tuple[xr.DataA
     rule on the piecewise-linear density; mass outside the grid is not
     counted; with a point mass the point-mass part is included unless its
     variable carries a threshold).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+    lay : OutputLayout
+    name : str
+
+    Returns
+    -------
+    tuple
+        (xarray.DataArray, str).
     """
     m = FIELD_PATTERN.match(name)
     if m and m.group(1) == "bandwidth" and "bandwidth" in ds.data_vars:
@@ -392,7 +473,22 @@ def _integrate_to(values: np.ndarray, dims: list, axes: dict, keep: list) -> np.
 
 @dataclass
 class CellDensity:
-    """One cell's density reduced to the variables drawn."""
+    """One cell's density reduced to the variables drawn.
+
+    Attributes
+    ----------
+    names : list of str
+        The variables drawn.
+    axes : dict
+        Variable -> grid axis.
+    values : numpy.ndarray
+        The continuous part, dims = names.
+    on_point_mass : numpy.ndarray or None
+        1-D: density of the other variable on the point mass.
+    point_mass_probability : float or None
+    point_mass_var : str or None
+    n_samples : int or None
+    """
 
     names: list
     axes: dict
@@ -404,7 +500,21 @@ class CellDensity:
 
 
 def cell_density(ds, lay: OutputLayout, idx: dict, variables) -> CellDensity:
-    """The chosen cell's density, integrated down to ``variables`` (point-mass part added where it belongs)."""
+    """The chosen cell's density, integrated down to ``variables`` (point-mass part added where it belongs).
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+    lay : OutputLayout
+    idx : dict
+        Cell dim -> index of the chosen cell.
+    variables : list of str
+        One or two variables to keep.
+
+    Returns
+    -------
+    CellDensity
+    """
     keep = list(variables)
     dens = ds["density"].isel(idx)
     values = np.asarray(dens.values, dtype=float)

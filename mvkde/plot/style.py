@@ -27,7 +27,13 @@ INSTALL_HINT = "install the plot extra: pip install 'mvkde[plot]'"
 
 
 def require_matplotlib():
-    """Import matplotlib or raise an MvkdeError saying how to install it."""
+    """Import matplotlib or raise an MvkdeError saying how to install it.
+
+    Returns
+    -------
+    module
+        The ``matplotlib`` package.
+    """
     try:
         import matplotlib  # noqa: F401
         from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: F401
