@@ -165,7 +165,7 @@ def settings_for(plan, axes) -> CellSettings:
     plan : Plan
         The planned run.
     axes : list of array_like or None
-        The shared evaluation axes (from :func:`~mvkde.pipeline.inputs.resolve_axes`); None or empty: none yet.
+        The shared evaluation axes (from :func:`~mvkde.pipeline.axes.resolve_axes`); None or empty: none yet.
 
     Returns
     -------
@@ -485,7 +485,7 @@ def _compare_block(result: BlockResult, samples, where, errors, settings: CellSe
 
 
 def _refuse_outside_bounds(values: np.ndarray, settings: CellSettings) -> None:
-    """The check ``inputs.resolve_axes`` makes before a run, made per block when nothing was read before."""
+    """The check ``axes.resolve_axes`` makes before a run, made per block when nothing was read before."""
     if not settings.bounds:
         return
     for j, pair in enumerate(settings.bounds):

@@ -4,7 +4,7 @@
 
     a Workflow (TOML file, or built here from keyword arguments by workflow.from_arguments)
     inputs.plan_from_dataset / plan_from_table      the Plan: values, cells, splits, blocks
-    blocks.check_settings, inputs.resolve_axes, blocks.settings_for
+    blocks.check_settings, axes.resolve_axes, blocks.settings_for
     schedule.block_tasks                            one delayed blocks.process_block per block
       run:       schedule.execute gathers them (progress, resume store) -> output.build_dataset
       densities: lazy_dataset labels each block with output.build_dataset inside its task and
@@ -30,7 +30,8 @@ import xarray as xr
 from ..errors import InputError, MvkdeError, closest_names
 from . import provenance as _prov
 from .blocks import _probe_sample, check_settings, process_block, settings_for
-from .inputs import Plan, plan_from_dataset, plan_from_table, resolve_axes
+from .axes import resolve_axes
+from .inputs import Plan, plan_from_dataset, plan_from_table
 from .output import build_dataset, global_attributes
 from .run import refuse_if_nothing_fitted as refuse
 from .schedule import block_tasks

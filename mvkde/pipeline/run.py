@@ -7,7 +7,7 @@ Reading a run from ``mvkde run`` down::
       plan_run                          inputs.prepare (open, select, tile) + checks before work
       run
         schedule.Scheduler              dask: embedded threads/processes, local cluster, tcp://
-        inputs.resolve_axes             the grid shared by every cell
+        axes.resolve_axes               the grid shared by every cell
         blocks.settings_for             what every block task needs
         schedule.execute                one blocks.process_block per block -> mvkde.cells.fit_cells
         output.build_dataset            labelled Dataset (+ products.add_*_products)
@@ -30,7 +30,8 @@ from . import provenance as _prov
 from ..errors import MvkdeError
 from ..estimator import fit
 from .blocks import COARSE_SPACING, FLAGS, check_settings, settings_for
-from .inputs import Plan, check_memory, estimate_sizes, human_bytes, prepare, resolve_axes, where_files
+from .axes import resolve_axes
+from .inputs import Plan, check_memory, estimate_sizes, human_bytes, prepare, where_files
 from .output import (build_dataset, check_output_path, clean_stale_partials, encoding_for, global_attributes,
                      is_zarr_path, write_output_atomic)
 from .resume import BlockStore, resume_store_path
