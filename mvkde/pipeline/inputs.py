@@ -137,6 +137,18 @@ def block_cells(wf: Workflow, n_cells: int, cell_bytes: int = 0) -> int:
 
     ``cell_bytes`` (the float64 samples of one cell) caps "auto" blocks at
     :data:`AUTO_BLOCK_BYTES`, so long records give smaller blocks.
+
+    Parameters
+    ----------
+    wf : Workflow
+    n_cells : int
+        Cells of the run.
+    cell_bytes : int
+        Bytes of one cell's samples.
+
+    Returns
+    -------
+    int
     """
     size = wf["compute"]["block_size"]
     if size != "auto":
@@ -161,7 +173,17 @@ def _tile_shape(shape, block_size) -> tuple:
 
 
 def prepare(wf: Workflow) -> Plan:
-    """Open the inputs lazily, apply the selection and tile the cells."""
+    """Open the inputs lazily, apply the selection and tile the cells.
+
+    Parameters
+    ----------
+    wf : Workflow
+        The validated workflow.
+
+    Returns
+    -------
+    Plan
+    """
     inp = wf["input"]
     if inp["sources"]:
         return _labels.prepare_sources(wf, plan_from_dataset, plan_from_table, _read_table_of, _file_chunks)
@@ -175,7 +197,13 @@ def prepare(wf: Workflow) -> Plan:
 
 
 def available_memory() -> int:
-    """Bytes of memory available to this process (MemAvailable, else physical memory)."""
+    """Bytes of memory available to this process (MemAvailable, else physical memory).
+
+    Returns
+    -------
+    int
+        Bytes (0 when the system does not say).
+    """
     try:
         with open("/proc/meminfo") as fh:
             for line in fh:
@@ -194,6 +222,15 @@ def check_memory(plan: Plan) -> None:
 
     The run holds the output of every cell for writing (float64), and each
     task holds its block's samples and grids.
+
+    Parameters
+    ----------
+    plan : Plan
+
+    Raises
+    ------
+    ConfigError
+        Naming grid.size, the memory needed and the memory available.
     """
     avail = available_memory()
     if avail <= 0:
@@ -279,6 +316,22 @@ def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "
     :func:`mvkde.densities` with the caller's Dataset; ``tile`` (block shape
     over the cell dims) overrides ``compute.block_size``: the caller's dask
     chunks along the cell dims become the blocks.
+
+    Parameters
+    ----------
+    wf : Workflow
+    ds : xarray.Dataset
+        The input variables over the cell and sample dims.
+    files : sequence of pathlib.Path
+        The files it was read from (for messages and the provenance).
+    origin : str
+        How messages name the input when there are no files.
+    tile : tuple of int, optional
+        Block shape over the cell dims.
+
+    Returns
+    -------
+    Plan
     """
     inp, src = wf["input"], wf.source
     names = wf.variables
@@ -465,24 +518,8 @@ def _read_table_of(wf: Workflow, files, kind) -> pd.DataFrame:
     return _io.read_table(files, kind, wanted)
 
 
-def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = "table",
-                    origin: str = "the DataFrame", source_of=None) -> Plan:
-    """The plan of a table already read (one density per ``input.group_by`` value).
-
-    ``source_of`` (the source index of every row) labels the rows of joined ``input.sources``.
-    """
-    inp = wf["input"]
-    names = wf.variables
-    files = list(files)
-    group = inp["group_by"]
-    tname = inp["time"]
-    needs_time = _table_needs_time(inp, wf["products"])
-    if source_of is not None:
-        table = table.assign(_mvkde_source=np.asarray(source_of))
-    for v in names:
-        if not pd.api.types.is_numeric_dtype(table[v]):
-            raise InputError(f"input.variables: column {v!r} of {origin} is not numeric: list numeric "
-                             "columns only, or clean the column")
+def _select_rows(table: pd.DataFrame, inp: dict, tname: str, needs_time: bool) -> pd.DataFrame:
+    """The rows of a table inside input.time_range / months / seasons / box (dates read from ``tname``)."""
     if needs_time:
         try:
             with warnings.catch_warnings():
@@ -500,11 +537,48 @@ def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = 
         if months_filter is not None:
             keep &= times.dt.month.isin(list(months_filter)).to_numpy()
         table = table[keep]
-        times = times[keep]
     for col, (lo, hi) in inp["box"].items():
         table = table[(table[col] >= lo) & (table[col] <= hi)]
     if len(table) == 0:
         raise InputError("the selection (input.time_range / months / seasons / box) leaves no rows: widen it")
+    return table
+
+
+def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = "table",
+                    origin: str = "the DataFrame", source_of=None) -> Plan:
+    """The plan of a table already read (one density per ``input.group_by`` value).
+
+    Parameters
+    ----------
+    wf : Workflow
+    table : pandas.DataFrame
+        The rows, with the variables, ``input.group_by`` and the time column as columns.
+    files : sequence of pathlib.Path
+        The files it was read from.
+    kind : str
+        "csv", "parquet" or "table" (a caller's DataFrame).
+    origin : str
+        How messages name the input when there are no files.
+    source_of : ndarray of int, optional
+        The source index of every row (the rows of joined ``input.sources``).
+
+    Returns
+    -------
+    Plan
+    """
+    inp = wf["input"]
+    names = wf.variables
+    files = list(files)
+    group = inp["group_by"]
+    tname = inp["time"]
+    needs_time = _table_needs_time(inp, wf["products"])
+    if source_of is not None:
+        table = table.assign(_mvkde_source=np.asarray(source_of))
+    for v in names:
+        if not pd.api.types.is_numeric_dtype(table[v]):
+            raise InputError(f"input.variables: column {v!r} of {origin} is not numeric: list numeric "
+                             "columns only, or clean the column")
+    table = _select_rows(table, inp, tname, needs_time)
 
     if needs_time and inp["split_by"]:
         codes_flat, labels = _split_codes(pd.to_datetime(table[tname]).dt.month.to_numpy(),
@@ -574,7 +648,17 @@ def where_files(plan: Plan) -> str:
 
 
 def estimate_sizes(plan: Plan) -> dict:
-    """Bytes per task (input block + output block + engine work space) and of the output."""
+    """Bytes per task (input block + output block + engine work space) and of the output.
+
+    Parameters
+    ----------
+    plan : Plan
+
+    Returns
+    -------
+    dict
+        ``task_bytes``, ``output_bytes`` and ``engine_work_bytes``.
+    """
     wf = plan.workflow
     d = len(plan.names)
     grid = int(np.prod(wf.grid_size()))
@@ -590,7 +674,16 @@ def estimate_sizes(plan: Plan) -> dict:
 
 
 def human_bytes(nbytes: float) -> str:
-    """``nbytes`` as text in decimal units (B, kB, MB, GB, TB)."""
+    """``nbytes`` as text in decimal units (B, kB, MB, GB, TB).
+
+    Parameters
+    ----------
+    nbytes : float
+
+    Returns
+    -------
+    str
+    """
     for unit in ("B", "kB", "MB", "GB", "TB"):
         if nbytes < 1000 or unit == "TB":
             return f"{nbytes:.0f} {unit}" if unit == "B" else f"{nbytes:.1f} {unit}"
