@@ -44,8 +44,8 @@ from ..inspect import OutputLayout, layout, open_output
 from .style import COLOUR_MAP, DEFAULT_SIZE, DPI, HDR_MASSES, require_matplotlib
 from .fields import (parse_selection, parse_size, _apply_selection, _describe_values, _fix_cell, _index_for, _no_such_dim, _value_text,
                      cell_density, field_values, grid_field_values, hdr_levels, is_grid_product)
-from .draw import (PlotResult, _draw_grid_product, _draw_joint, _draw_joint_polar, _draw_line, _draw_map,
-                   _font_size, _new_figure, map_size)
+from .draw import PlotResult, _draw_grid_product, _draw_joint, _draw_joint_polar, _draw_line, _font_size, _new_figure
+from .maps import _draw_map, map_size
 
 
 __all__ = ["HDR_MASSES", "COLOUR_MAP", "hdr_levels", "parse_selection", "parse_size", "field_values",

@@ -2,16 +2,14 @@
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-import xarray as xr
 
 from ..errors import InputError
-from .style import (MAX_PIXELS, MIN_PIXELS, COLOUR_MAP, DIVERGING, CONSTANT_DIGITS, DEFAULT_SIZE, DPI, FIT_MARGIN, FIT_MASS, FRAME, GRID, HALO,
-                    LATITUDE_NAMES, LINE, NO_DATA, require_matplotlib)
+from .style import (COLOUR_MAP, CONSTANT_DIGITS, DEFAULT_SIZE, DIVERGING, DPI, FIT_MARGIN, FIT_MASS, FRAME, GRID, HALO,
+                    LINE, cmap_colour, require_matplotlib)
 from .fields import CellDensity, _integrate_to, cd_units, hdr_levels
 
 
@@ -176,7 +174,7 @@ def _density_colours(levels):
     from matplotlib.colors import ListedColormap
 
     n = max(len(levels) - 1, 2)
-    return ListedColormap(["white"] + [_cmap_colour(f) for f in np.linspace(0.12, 1.0, n - 1)])
+    return ListedColormap(["white"] + [cmap_colour(f) for f in np.linspace(0.12, 1.0, n - 1)])
 
 
 def _fill_levels(F, vmin=0.0):
@@ -207,7 +205,7 @@ def _draw_joint(fig, cd: CellDensity, lay, levels, title, fontsize):
     ax.set_ylabel(lay.label(y))
     mx = np.trapezoid(F, Y, axis=1)
     my = np.trapezoid(F, X, axis=0)
-    shade = _cmap_colour(0.3)
+    shade = cmap_colour(0.3)
     top.fill_between(X, mx, color=shade, alpha=0.45, linewidth=0)
     top.plot(X, mx, color=LINE, linewidth=1.2)
     side.fill_betweenx(Y, my, color=shade, alpha=0.45, linewidth=0)
@@ -277,7 +275,7 @@ def _runs(mask: np.ndarray) -> list:
 def _draw_line(fig, cd: CellDensity, lay, levels, title, fontsize, polar: bool):
     (x,) = cd.names
     X, F = cd.axes[x], cd.values
-    shade = _cmap_colour(0.3)
+    shade = cmap_colour(0.3)
     if polar:
         period = lay.periods[x]
         if X[-1] - X[0] < period * (1 - 1e-9):
@@ -338,227 +336,6 @@ def _draw_line(fig, cd: CellDensity, lay, levels, title, fontsize, polar: bool):
         _house_style(ax)
     fig.suptitle(title, fontsize=fontsize * 1.1)
     return {"axes": ax, "level_texts": texts}
-
-
-def _cmap_colour(fraction: float):
-    import matplotlib
-
-    return matplotlib.colormaps[COLOUR_MAP](fraction)
-
-
-def _is_latitude(ds, dim) -> bool:
-    if dim.lower() in LATITUDE_NAMES:
-        return True
-    if dim in ds.coords:
-        a = ds[dim].attrs
-        return a.get("standard_name") == "latitude" or a.get("units") in ("degrees_north", "degree_north") \
-            or a.get("axis") == "Y"
-    return False
-
-
-def _map_axes(ds, da):
-    """(ydim, xdim, xs, ys, numeric, y-stretch) of a 2-D per-cell field."""
-    ydim, xdim = da.dims
-    if _is_latitude(ds, xdim) and not _is_latitude(ds, ydim):
-        ydim, xdim = xdim, ydim
-    xs = ds[xdim].values if xdim in ds.coords else np.arange(da.sizes[xdim])
-    ys = ds[ydim].values if ydim in ds.coords else np.arange(da.sizes[ydim])
-    numeric = np.asarray(xs).dtype.kind in "iuf" and np.asarray(ys).dtype.kind in "iuf"
-    if not numeric:
-        xs, ys = np.arange(len(xs)), np.arange(len(ys))
-    stretch = 1.0
-    if _is_latitude(ds, ydim) and numeric:
-        stretch = 1.0 / max(0.05, math.cos(math.radians(float(np.nanmean(ys)))))
-    return ydim, xdim, np.asarray(xs, dtype=float), np.asarray(ys, dtype=float), numeric, stretch
-
-
-def _extent(v: np.ndarray) -> float:
-    """Width covered by cells centred on ``v`` (one spacing added for the half cells at the ends)."""
-    if v.size < 2:
-        return 1.0
-    return float(np.nanmax(v) - np.nanmin(v)) + float(np.nanmin(np.abs(np.diff(np.sort(v)))) or 1.0)
-
-
-def _map_margins(ds, da, label, fontsize, title="") -> tuple:
-    """Pixels (left, right, bottom, top) around a 2-D map: tick labels, axis labels, colour bar or legend."""
-    scale = fontsize / 10.0
-    _, xdim, _, _, numeric, _ = _map_axes(ds, da)
-    left = 95 * scale
-    bottom = (60 if numeric else 60 + 6 * max(len(str(v)) for v in ds[xdim].values)) * scale
-    values = np.asarray(da.values, dtype=float)
-    lines = _wrap(title + ": constant = 0.000000").count("\n") + 1 if title else 1
-    lines += 1 if np.isnan(values).any() else 0                     # the note on cells without a value
-    top = (30 + 22 * lines) * scale
-    categories = flag_categories(da)
-    if categories is not None:
-        right = (70 + 6.5 * max(len(t) for _, t in categories + [(0, label.split(":")[0])])) * scale
-    elif is_constant(float(np.nanmin(da.values)), float(np.nanmax(da.values))):
-        right = 25 * scale                                        # constant: no colour bar
-    else:
-        right = 125 * scale
-    return left, right, bottom, top
-
-
-def map_size(ds, da, label="", title="") -> tuple[int, int]:
-    """A canvas in pixels shaped like the map (plus its margins), so no side of it is left blank."""
-    if da.ndim != 2:
-        return DEFAULT_SIZE
-    _, _, xs, ys, _, stretch = _map_axes(ds, da)
-    ratio = _extent(ys) * stretch / _extent(xs)               # map height / map width
-    if ratio <= 1.0:
-        w = 680.0
-        h = max(200.0, w * ratio)
-    else:
-        h = 580.0
-        w = max(240.0, h / ratio)
-    left, right, bottom, top = _map_margins(ds, da, label, _font_size(DEFAULT_SIZE), title)
-    size = (int(round(w + left + right)), int(round(h + bottom + top)))
-    return tuple(int(np.clip(s, MIN_PIXELS, MAX_PIXELS)) for s in size)
-
-
-def flag_categories(da) -> list | None:
-    """For a CF bit field (``flag_masks`` + ``flag_meanings``): [(value, label)] of the values present."""
-    masks = da.attrs.get("flag_masks")
-    meanings = str(da.attrs.get("flag_meanings", "")).split()
-    if masks is None or not meanings:
-        return None
-    masks = [int(b) for b in np.atleast_1d(masks)]
-    values = np.asarray(da.values)
-    present = sorted({int(v) for v in values[np.isfinite(values.astype(float))].ravel()})
-    out = []
-    for v in present:
-        names = [meaning for meaning, b in zip(meanings, masks) if v & b]
-        out.append((v, " + ".join(names) if names else "no flag"))
-    return out
-
-
-def _category_colours(n_flagged: int):
-    # "no flag" is white (the quiet state); flagged combinations take well-separated cividis colours
-    if n_flagged == 0:
-        return []
-    return [_cmap_colour(f) for f in np.linspace(0.1, 0.85, n_flagged)]
-
-
-def _ratio_mesh(ax, xs, ys, grid):
-    """A ratio map: log scale centred on 1 (halving and doubling equally far), diverging colours."""
-    from matplotlib.colors import LogNorm
-
-    finite = grid[np.isfinite(grid) & (grid > 0)]
-    reach = float(np.nanmax(np.abs(np.log10(finite)))) if finite.size else 1.0
-    reach = max(reach, np.log10(1.5))
-    return ax.pcolormesh(xs, ys, np.where(grid > 0, grid, np.nan), shading="nearest", cmap=DIVERGING,
-                         norm=LogNorm(10 ** -reach, 10 ** reach))
-
-
-def _map_colour_bar(fig, ax, mesh, levels, label, stretch):
-    """The colour bar beside a map (round levels, or a log-scale ratio bar when ``levels`` is None)."""
-    if stretch != 1.0:
-        ax.set_aspect(stretch)
-    ax.apply_aspect()
-    box = ax.get_position()
-    W, H = fig.get_size_inches() * DPI
-    cax = fig.add_axes((box.x1 + 14 / W, box.y0, 16 / W, box.height))
-    if levels is None:
-        return fig.colorbar(mesh, cax=cax, label="probability ratio (log scale; 1 = no change)")
-    return _colour_bar(fig, mesh, levels, _short_label(label), cax=cax)
-
-
-def _draw_map(fig, ds, da: xr.DataArray, label, title, fontsize):
-    values = np.asarray(da.values, dtype=float)
-    if not np.isfinite(values).any():
-        raise InputError(f"{label}: no finite value in the chosen cells")
-    from matplotlib.colors import BoundaryNorm, ListedColormap
-    from matplotlib.patches import Patch
-
-    if da.ndim == 2:
-        # placed by hand, not by the layout engine: the map keeps its aspect and fills the canvas
-        W, H = fig.get_size_inches() * DPI
-        left, right, bottom, top = _map_margins(ds, da, label, fontsize, title)
-        ax = fig.add_axes((left / W, bottom / H, 1 - (left + right) / W, 1 - (bottom + top) / H))
-    else:
-        ax = fig.add_subplot()
-    ax.set_facecolor(NO_DATA)
-    categories = flag_categories(da)
-    lo, hi = float(np.nanmin(values)), float(np.nanmax(values))
-    constant = categories is None and is_constant(lo, hi)
-    artists: dict = {"axes": ax}
-    if categories is not None:
-        flagged = [c for c in categories if c[0] != 0]
-        colours = dict(zip([c[0] for c in flagged], _category_colours(len(flagged))))
-        colours[0] = "white"
-        codes = {v: k for k, (v, _) in enumerate(categories)}
-        coded = np.vectorize(lambda v: codes.get(int(v), np.nan) if np.isfinite(v) else np.nan)(values)
-        cmap = ListedColormap([colours[v] for v, _ in categories])
-        norm = BoundaryNorm(np.arange(len(categories) + 1) - 0.5, len(categories))
-        handles = [Patch(facecolor=colours[v], edgecolor=FRAME, label=text) for v, text in categories]
-    if da.ndim == 2:
-        ydim, xdim, xs, ys, numeric, stretch = _map_axes(ds, da)
-        grid = np.asarray(da.transpose(ydim, xdim).values, dtype=float)
-        if categories is not None:
-            grid = coded if da.dims == (ydim, xdim) else coded.T
-            mesh = ax.pcolormesh(xs, ys, grid, shading="nearest", cmap=cmap, norm=norm, edgecolors=FRAME,
-                                 linewidth=0.3)
-        elif constant:
-            mesh = ax.pcolormesh(xs, ys, np.where(np.isfinite(grid), 0.3, np.nan), shading="nearest",
-                                 cmap=COLOUR_MAP, vmin=0, vmax=1)
-        elif da.name == "probability_ratio":
-            mesh, levels = _ratio_mesh(ax, xs, ys, grid), None
-        else:
-            levels = nice_levels(lo, hi)
-            norm_c = BoundaryNorm(levels, 256, extend="neither")
-            mesh = ax.pcolormesh(xs, ys, grid, shading="nearest", cmap=COLOUR_MAP, norm=norm_c)
-        if categories is None and not constant:
-            artists["colour_bar"] = _map_colour_bar(fig, ax, mesh, levels, label, stretch)
-        if not numeric:
-            ax.set_xticks(xs, [str(v) for v in ds[xdim].values], rotation=60)
-            ax.set_yticks(ys, [str(v) for v in ds[ydim].values])
-        ax.set_xlabel(_coord_label(ds, xdim))
-        ax.set_ylabel(_coord_label(ds, ydim))
-        if stretch != 1.0:
-            ax.set_aspect(stretch)
-        missing = int((~np.isfinite(values)).sum())
-        if missing:
-            ax.set_title(f"grey: {missing} cell(s) without a value", fontsize=fontsize * 0.85)
-        artists["mesh"] = mesh
-        for side in ax.spines.values():
-            side.set_color(FRAME)
-    else:
-        (dim,) = da.dims
-        pos = np.arange(da.sizes[dim])
-        coord = ds[dim].values if dim in ds.coords else pos
-        numeric = np.asarray(coord).dtype.kind in "iuf"
-        xs = coord if numeric else pos
-        ax.set_facecolor("white")
-        if categories is not None:
-            colours_pts = [cmap(int(c)) if np.isfinite(c) else NO_DATA for c in coded]
-            artists["mesh"] = ax.scatter(xs, coded, c=colours_pts, edgecolors=LINE, linewidths=0.6, s=50,
-                                         zorder=3)
-            ax.set_yticks(range(len(categories)), [t for _, t in categories])
-            ax.set_ylim(-0.6, len(categories) - 0.4)
-        else:
-            artists["mesh"] = ax.plot(xs, values, marker="o", linestyle="none", color=LINE, markersize=5)[0]
-        if not numeric:
-            ax.set_xticks(pos, [str(v) for v in coord], rotation=45, ha="right")
-        ax.set_xlabel(_coord_label(ds, dim))
-        ax.set_ylabel(label if categories is None else "")
-        _house_style(ax)
-    if categories is not None:
-        artists["legend"] = ax.legend(handles=handles, title=label.split(":")[0], loc="upper left",
-                                      bbox_to_anchor=(1.01, 1.0), frameon=False, fontsize=fontsize * 0.85,
-                                      title_fontsize=fontsize * 0.9, alignment="left")
-    if constant:
-        exact = "" if lo == hi else f" (to {CONSTANT_DIGITS} significant digits: {lo:.10g} to {hi:.10g})"
-        lo = float(f"{(lo + hi) / 2:.{CONSTANT_DIGITS}g}")
-        text = f"{label.split(' [')[0].split(':')[0]} is constant = {lo:g}" + \
-               (f" {label.split(' [')[1].rstrip(']')}" if " [" in label else "") + \
-               f" in all {int(np.isfinite(values).sum())} cells" + ("\n" + exact.strip() if exact else "")
-        artists["constant"] = ax.text(0.5, 0.5, text, transform=ax.transAxes, ha="center", va="center",
-                                      fontsize=fontsize, color=LINE,
-                                      bbox=dict(facecolor="white", edgecolor=FRAME, boxstyle="round,pad=0.4"))
-        title = title + f": constant = {lo:g}"
-    fig.suptitle(_wrap(title), fontsize=fontsize * 1.1)
-    artists["title"] = title
-    return artists
 
 
 def is_constant(lo: float, hi: float) -> bool:
@@ -672,7 +449,7 @@ def _draw_grid_product(fig, ds, lay, da, label, idx, title, fontsize, significan
     elif len(names) == 1:
         (x,) = names
         ax = fig.add_subplot()
-        ax.fill_between(axes[x], values, color=_cmap_colour(0.3), alpha=0.45, linewidth=0)
+        ax.fill_between(axes[x], values, color=cmap_colour(0.3), alpha=0.45, linewidth=0)
         ax.plot(axes[x], values, color=LINE, linewidth=1.4)
         ax.set_xlim(*box[x])
         ax.set_xlabel(lay.label(x))

@@ -43,3 +43,18 @@ def require_matplotlib():
     return matplotlib
 
 
+def cmap_colour(fraction: float):
+    """The colour of the house colour map at ``fraction`` (0 = little, 1 = much).
+
+    Parameters
+    ----------
+    fraction : float
+
+    Returns
+    -------
+    tuple of float
+        RGBA.
+    """
+    import matplotlib
+
+    return matplotlib.colormaps[COLOUR_MAP](fraction)
