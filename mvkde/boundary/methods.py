@@ -174,7 +174,7 @@ class _Base:
 
     def grid(self, axes):
         pieces, combine = self.grid_pieces(axes)
-        (values,), choice = evaluate_pieces(axes, [pieces], self.kernel, self.engine)
+        (values,), (choice,) = evaluate_pieces(axes, [pieces], self.kernel, self.engine)
         return combine(values), choice
 
     # draws of the uncorrected estimate (smoothed bootstrap)
@@ -213,7 +213,8 @@ def evaluate_pieces(axes, models, kernel, engine):
     ``models`` is a list (one entry per model) of lists of ``(data, weights,
     bandwidth)``.  Returns, per model, the list of its pieces' grids (each
     multiplied by the piece's total weight, zeros for a piece without
-    weight), and the engine choice of the first piece evaluated.
+    weight), and per model the engine choice of its first piece evaluated
+    (None when no piece carried weight).
     """
     shape = tuple(len(a) for a in axes)
     flat, where, totals = [], [], []
@@ -228,14 +229,15 @@ def evaluate_pieces(axes, models, kernel, engine):
             flat.append((data, wn, bw))
             where.append((m, k))
             totals.append(total)
-    choice = None
+    model_choices = [None] * len(models)
     if flat:
         values, choices = _engines.evaluate_grid_many(axes, [p[0] for p in flat], [p[1] for p in flat],
                                                       [p[2] for p in flat], kernel, engine)
-        choice = choices[0]
-        for (m, k), v, total in zip(where, values, totals):
+        for (m, k), v, total, choice in zip(where, values, totals, choices):
             out[m][k] = v * total
-    return out, choice
+            if model_choices[m] is None:
+                model_choices[m] = choice
+    return out, model_choices
 
 
 class NoCorrection(_Base):
