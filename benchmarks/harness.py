@@ -37,6 +37,7 @@ class Row:
     max_error: float = float("nan")      # max |mvkde - reference| / peak
     target: str = ""
     notes: str = ""
+    met: str = ""                         # "met" / "missed" against the target ("" when none)
     extra: dict = field(default_factory=dict)
 
     @property

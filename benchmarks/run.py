@@ -63,13 +63,14 @@ def main(argv=None) -> int:
         print(f"== {section}: {fn.__name__}", flush=True)
         for r in fn(args.smoke):
             line = (f"| {r.name} | {fmt(r.mvkde_s)} | {r.reference or '-'} | {fmt(r.reference_s)} | "
-                    f"{fmt(r.ratio)} | {fmt(r.max_error, 2)} | {r.target or '-'} | {r.notes} |")
+                    f"{fmt(r.ratio)} | {fmt(r.max_error, 2)} | {r.target or '-'} | {r.met or '-'} | {r.notes} |")
             print(line, flush=True)
             sections.setdefault(section, []).append(line)
     for section, rows in sections.items():
         lines += [f"## {section}", "",
-                  "| case | mvkde (s) | reference | reference (s) | ratio | max error / peak | target | notes |",
-                  "|---|---|---|---|---|---|---|---|"] + rows + [""]
+                  "| case | mvkde (s) | reference | reference (s) | ratio | max error / peak | target | met / missed "
+                  "| notes |",
+                  "|---|---|---|---|---|---|---|---|---|"] + rows + [""]
     if NOTES:
         lines += ["## Notes", ""] + [f"- {t}" for t in NOTES] + [""]
     Path(args.out).write_text("\n".join(lines) + "\n")
