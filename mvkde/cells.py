@@ -8,12 +8,17 @@ mass and the per-cell products asked for.  The pipeline calls this function
 and nothing else of the library; :func:`mvkde.fit` is the door for one
 sample.
 
-Cells without bounds, point masses or directions are selected and evaluated
-as one array problem (:func:`mvkde.bandwidth.select_many`, one binned FFT
-for the block in :func:`mvkde.engines.evaluate_grid_many`).  Other settings
-are fitted cell by cell through :func:`mvkde.fit`; ``CellBatch.path`` says
-which path ran and why.  Either way every cell gives the numbers
-``fit(sample, ...).grid(...)`` gives for it.
+Every cell runs the steps of :func:`mvkde.fit` (so both doors give the same
+numbers), advanced together: the bandwidth selections of a round (the
+continuous parts, then the other variables on a point mass) are answered by
+one :func:`mvkde.bandwidth.select_many` call, and every boundary model (none,
+reflection, renormalisation, the linear boundary kernel) hands its grid over
+as kernel-sum pieces that the whole block evaluates in one
+:func:`mvkde.engines.evaluate_grid_many` call (one binning, one batched FFT);
+the other variables on a point mass are a second, (d-1)-dimensional batch.
+Models that are not kernel sums on a regular lattice (von Mises kernels of
+circular variables, the transformation, beta and gamma kernels, masks) are
+evaluated cell by cell, and ``CellBatch.path`` says which and why.
 """
 
 from __future__ import annotations

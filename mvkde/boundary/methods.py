@@ -212,28 +212,31 @@ def evaluate_pieces(axes, models, kernel, engine):
 
     ``models`` is a list (one entry per model) of lists of ``(data, weights,
     bandwidth)``.  Returns, per model, the list of its pieces' grids (each
+    A piece may carry its own grid as a fourth entry (a list of axes); pieces
+    on the same grid share one engine call.  Values are
     multiplied by the piece's total weight, zeros for a piece without
     weight), and per model the engine choice of its first piece evaluated
     (None when no piece carried weight).
     """
-    shape = tuple(len(a) for a in axes)
-    flat, where, totals = [], [], []
+    groups: dict = {}   # pieces on the same grid go through one engine call
     out = []
     for m, pieces in enumerate(models):
         out.append([None] * len(pieces))
-        for k, (data, w, bw) in enumerate(pieces):
+        for k, piece in enumerate(pieces):
+            data, w, bw = piece[:3]
+            piece_axes = piece[3] if len(piece) > 3 else axes
             wn, total = _normalised(w)
             if total <= 0 or data.shape[0] == 0:
-                out[m][k] = np.zeros(shape)
+                out[m][k] = np.zeros(tuple(len(a) for a in piece_axes))
                 continue
-            flat.append((data, wn, bw))
-            where.append((m, k))
-            totals.append(total)
+            key = tuple((float(a[0]), float(a[-1]), len(a)) for a in piece_axes)
+            group = groups.setdefault(key, (piece_axes, []))
+            group[1].append((m, k, data, wn, bw, total))
     model_choices = [None] * len(models)
-    if flat:
-        values, choices = _engines.evaluate_grid_many(axes, [p[0] for p in flat], [p[1] for p in flat],
-                                                      [p[2] for p in flat], kernel, engine)
-        for (m, k), v, total, choice in zip(where, values, totals, choices):
+    for piece_axes, flat in groups.values():
+        values, choices = _engines.evaluate_grid_many(piece_axes, [p[2] for p in flat], [p[3] for p in flat],
+                                                      [p[4] for p in flat], kernel, engine)
+        for (m, k, _, _, _, total), v, choice in zip(flat, values, choices):
             out[m][k] = v * total
             if model_choices[m] is None:
                 model_choices[m] = choice
@@ -330,7 +333,51 @@ class Reflection(_Base):
         return np.sum(vals, axis=0), choice
 
     def grid_pieces(self, axes):
+        mirrored = self._mirrored_grid(axes)
+        if mirrored is not None:
+            return mirrored
         return [(data, w, bw) for bw, data, w in self.groups], _summed
+
+    def _mirrored_grid(self, axes):
+        """The reflection estimate as the plain one read at mirrored nodes, when they lie on the grid.
+
+        The image of X across the face x_j = c, with bandwidth R H R, contributes
+        K_{RHR}(x - R X - 2c e_j) = K_H(R x + 2c e_j - X) at x: the plain estimate at
+        the mirror image of x.  So with one-sided bounds whose mirror images of the
+        grid nodes fall on the grid extended across the bound (the grid starts or
+        ends on the bound, or an integer number of steps from it), the estimate is
+        ONE kernel sum of the data on the extended grid (the binned engine's
+        lattice covers only the part within the kernel's reach of the data),
+        summed over the reflection group at the mirrored nodes.  Otherwise None
+        (the image data sets are evaluated instead).
+        """
+        ext_axes, maps = [], []
+        for j, a in enumerate(axes):
+            lo, hi = self.box[j]
+            if not (math.isfinite(lo) or math.isfinite(hi)):
+                ext_axes.append(a)
+                maps.append([np.arange(a.size)])
+                continue
+            if (math.isfinite(lo) and math.isfinite(hi)) or a.size < 2:
+                return None
+            step = (a[-1] - a[0]) / (a.size - 1)
+            c = lo if math.isfinite(lo) else hi
+            shift = (2.0 * c - 2.0 * a[0]) / step          # mirror of node k is node shift - k
+            s = round(shift)
+            if abs(shift - s) > 1e-9 * max(1.0, abs(shift)) or step <= 0:
+                return None
+            k = np.arange(a.size)
+            first, last = min(0, s - (a.size - 1)), max(a.size - 1, s)
+            ext_axes.append(a[0] + step * np.arange(first, last + 1))
+            maps.append([k - first, s - k - first])
+        d = self.d
+        combos = list(itertools.product(*maps))
+
+        def combine(values):
+            v = values[0]
+            return np.sum([v[np.ix_(*idx)] for idx in combos], axis=0) if len(combos) > 1 else v[np.ix_(*combos[0])]
+
+        return [(self.data, self.w, self.bw, ext_axes)], combine
 
     def sample(self, n, rng):
         return fold_into_box(self._bootstrap(n, rng), self.box)
