@@ -182,9 +182,9 @@ def pipeline_throughput(smoke: bool):
     small = min(side, 2 if smoke else SMALL_SIDE)
     days = 365 if smoke else DAYS
     rows = []
-    startup = _startup(1 if smoke else 3)
-    note(f"pipeline: process start-up (`python -m mvkde --version`, best of 3) {startup:.2f} s, subtracted "
-         "from every whole-process time; 'ratio' = scipy loop time / (process time - start-up)")
+    note("pipeline: each whole-process time has the process start-up (`python -m mvkde --version`, best of "
+         "4 around the run) subtracted; 'ratio' = scipy loop time / (process time - start-up); load average "
+         f"at the start {os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs (the machine may be shared)")
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         archives = {s: _write_archive(folder, s, days) for s in dict.fromkeys([side, small])}
@@ -194,7 +194,10 @@ def pipeline_throughput(smoke: bool):
             for s in dict.fromkeys([side, small]):
                 cells = s * s
                 wf = _workflow(folder, archives[s], kind, None, 1, f"{kind[0]}_{s}_1")
-                whole = min(_process_run(wf) for _ in range(1 if (smoke or cells > 400) else 2))
+                # start-up measured next to the run: the machine may be shared
+                startup = _startup(1 if smoke else 2)
+                whole = min(_process_run(wf) for _ in range(1 if (smoke or cells > 400) else 3))
+                startup = min(startup, _startup(1 if smoke else 2))
                 run = max(whole - startup, 1e-9)
                 t_ref = per_cell * cells
                 ratio = t_ref / run
@@ -204,7 +207,7 @@ def pipeline_throughput(smoke: bool):
                     run, f"scipy.stats.gaussian_kde loop, 1 process (timed on {k} cells, scaled)", t_ref,
                     target=f">= {TARGETS[kind]:.0f}x", met=_met(ratio, TARGETS[kind]),
                     notes=f"{cells / run:.1f} cells/s; whole process {whole:.2f} s, start-up {startup:.2f} s; "
-                          f"scipy {per_cell * 1e3:.0f} ms/cell"))
+                          f"scipy {per_cell * 1e3:.0f} ms/cell; load {os.getloadavg()[0]:.1f}"))
         # scaling: 1 -> 2 workers, compute time in-process (start-up excluded)
         scale_side = side if smoke else min(side, int(os.environ.get("MVKDE_BENCH_SCALING_SIDE", 20)))
         data = archives.get(scale_side) or _write_archive(folder, scale_side, days)
@@ -223,5 +226,5 @@ def pipeline_throughput(smoke: bool):
                             times[2], "same run, 1 worker", times[1], target=f"speed-up >= {SCALING_TARGET}x",
                             met=_met(speedup, SCALING_TARGET),
                             notes=f"{cells / times[1]:.1f} -> {cells / times[2]:.1f} cells/s (compute time, "
-                                  "start-up excluded)"))
+                                  f"start-up excluded); load {os.getloadavg()[0]:.1f}"))
     return rows
