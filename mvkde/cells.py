@@ -261,7 +261,7 @@ def _fit_all(samples, options: dict, errors: list, notes: list) -> list:
         advance(c, "start")
     while pending:
         todo, pending = pending, {}
-        for cells, requests in _groups(todo).items():
+        for requests in _groups(todo).values():
             for c, answer in zip(requests, _select_round([todo[c] for c in requests])):
                 advance(c, "throw" if isinstance(answer, BaseException) else "send", answer)
     if any(est is not None and est.is_directional for est in estimates):
@@ -388,11 +388,9 @@ def _fill_grids(batch: CellBatch, estimates: list, notes: list) -> None:
     if batch.point_mass_probability is None or d == 1:
         return
     # the other variables on the point mass: a second batch on the other axes
-    j = next(k for k, t in enumerate(estimates) if t is not None and t._point is not None) if any(
-        est is not None and est._point is not None for est in estimates) else None
-    if j is None:
+    index = next((est._point.index for est in estimates if est is not None and est._point is not None), None)
+    if index is None:
         return
-    index = estimates[j]._point.index
     other_axes = [a for k, a in enumerate(axes) if k != index]
     parts = {}
     for c, est in good.items():
