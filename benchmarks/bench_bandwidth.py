@@ -18,7 +18,7 @@ import time
 
 import numpy as np
 
-from harness import Row, best_of, case
+from harness import Row, best_of, case, single_thread
 from mvkde.bandwidth import select, select_many
 
 
@@ -33,13 +33,19 @@ def lscv_vs_statsmodels(smoke: bool):
     from statsmodels.nonparametric.kernel_density import KDEMultivariate
     n = 500 if smoke else 2_000  # LSCV has several local minima; at n = 300 statsmodels stops in another
     x = _sample(np.random.default_rng(1), n)
-    t_m, res = best_of(lambda: select("lscv", x, parametrization="diagonal", binned=True), repeat=3)
-    t0 = time.perf_counter()
-    ref = KDEMultivariate(x, var_type="cc", bw="cv_ls").bw
-    t_r = time.perf_counter() - t0
+    with single_thread():  # one process each, one BLAS thread each
+        t_m, res = best_of(lambda: select("lscv", x, parametrization="diagonal", binned=True), repeat=3)
+        t0 = time.perf_counter()
+        ref = KDEMultivariate(x, var_type="cc", bw="cv_ls").bw
+        t_r = time.perf_counter() - t0
     err = float(np.max(np.abs(np.sqrt(np.diag(res.H)) / ref - 1)))
-    return [Row(f"lscv diagonal H, n={n}, d=2 (binned)", t_m, "statsmodels cv_ls", t_r, err,
-                target="ratio >= 300", notes="error = relative difference of the selected sds")]
+    row = Row(f"lscv diagonal H, n={n}, d=2, bimodal (binned)", t_m, "statsmodels cv_ls", t_r, err,
+              target="runs" if smoke else "ratio >= 300, sds within 1 %",
+              notes="error = max relative difference of the selected sds; mvkde best of 3, "
+                    "statsmodels timed once")
+    if not smoke:
+        row.met = row.ratio >= 300 and err <= 0.01
+    return [row]
 
 
 def _exact_lscv_evaluation(x, n_target, n_sub=10_000):
@@ -66,10 +72,13 @@ def plugin_scv_large_n(smoke: bool):
     rows = []
     for method in ("plugin", "scv"):
         t_m, res = best_of(lambda: select(method, x, parametrization="full"), repeat=3)
-        rows.append(Row(f"{method} full H, n={n}, d=2 (binned)", t_m,
-                        "one exact LSCV evaluation (estimated)", t_exact,
-                        target="< 1 s", notes=f"grid {res.details.get('grid_size')}^2, "
-                        f"exact time = 10,000-point sums x (n/10,000)^2"))
+        row = Row(f"{method} full H, n={n}, d=2 (binned)", t_m,
+                  "one exact LSCV evaluation (estimated)", t_exact,
+                  target="< 1 s", notes=f"grid {res.details.get('grid_size')}^2, "
+                  f"exact time = 10,000-point sums x (n/10,000)^2")
+        if not smoke:
+            row.met = t_m < 1.0
+        rows.append(row)
     return rows
 
 

@@ -90,7 +90,8 @@ def circular_selectors(smoke: bool):
     (``directional.cross_validate``); the von Mises mixture plug-in and the KD-tree
     likelihood CV on the sphere against the dense one.  "max error" is the relative
     difference of the chosen concentrations."""
-    from mvkde.directional import selectors as sel
+    from mvkde.directional import fast_cv as sel
+    from mvkde.directional.selectors import mixture_plugin_concentration
 
     rows = []
     n = 500 if smoke else 2000
@@ -105,7 +106,7 @@ def circular_selectors(smoke: bool):
                         abs(fast.kappa / float(exact.kappas[0]) - 1)))
     m = 3650
     big = np.mod(np.concatenate([rng.vonmises(0.0, 8.0, m // 2), rng.vonmises(2.5, 8.0, m - m // 2)]), 2 * math.pi)
-    t_p, _ = best_of(lambda: sel.mixture_plugin_concentration(big), repeat=3)
+    t_p, _ = best_of(lambda: mixture_plugin_concentration(big), repeat=3)
     t_t, _ = best_of(lambda: D.taylor_rule(big), repeat=3)
     rows.append(Row(f"plugin (von Mises mixture, EM, BIC), n={m}", t_p, "Taylor (2008) rule, same data", t_t,
                     target="a few ms"))

@@ -55,8 +55,8 @@ TARGETS = {"bounded": 200.0, "point mass": 150.0}
 SCALING_TARGET = 1.7
 
 
-def _met(value: float, target: float) -> str:
-    return "met" if value >= target else "missed"
+def _met(value: float, target: float) -> bool:
+    return bool(value >= target)
 
 
 def _write_archive(folder: Path, side: int, days: int) -> Path:

@@ -37,8 +37,8 @@ class Row:
     max_error: float = float("nan")      # max |mvkde - reference| / peak
     target: str = ""
     notes: str = ""
-    met: str = ""                         # "met" / "missed" against the target ("" when none)
     extra: dict = field(default_factory=dict)
+    met: bool | None = None              # target met (True), missed (False), not judged (None)
 
     @property
     def ratio(self) -> float:
@@ -53,6 +53,17 @@ def best_of(fn, repeat: int = 3) -> tuple[float, object]:
         out = fn()
         best = min(best, time.perf_counter() - t0)
     return best, out
+
+
+def single_thread():
+    """Context in which BLAS and OpenMP pools use one thread (threadpoolctl), so that
+    mvkde and a reference library compare as one process each."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # without it, OMP_NUM_THREADS=1 etc. in the environment do the same
+        import contextlib
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1)
 
 
 def cores() -> int:

@@ -25,7 +25,7 @@ sys.path.insert(0, str(HERE.parent))
 from harness import CASES, NOTES, cores, machine  # noqa: E402
 
 MODULES = ["bench_exact", "bench_engines", "bench_bandwidth", "bench_pipeline", "bench_memory",
-           "bench_directional"]
+           "bench_directional", "bench_compare"]
 
 
 def fmt(x, digits=3):
@@ -62,14 +62,15 @@ def main(argv=None) -> int:
             continue
         print(f"== {section}: {fn.__name__}", flush=True)
         for r in fn(args.smoke):
+            met = "-" if r.met is None else ("met" if r.met else "MISSED")
             line = (f"| {r.name} | {fmt(r.mvkde_s)} | {r.reference or '-'} | {fmt(r.reference_s)} | "
-                    f"{fmt(r.ratio)} | {fmt(r.max_error, 2)} | {r.target or '-'} | {r.met or '-'} | {r.notes} |")
+                    f"{fmt(r.ratio)} | {fmt(r.max_error, 2)} | {r.target or '-'} | {met} | {r.notes} |")
             print(line, flush=True)
             sections.setdefault(section, []).append(line)
     for section, rows in sections.items():
         lines += [f"## {section}", "",
-                  "| case | mvkde (s) | reference | reference (s) | ratio | max error / peak | target | met / missed "
-                  "| notes |",
+                  "| case | mvkde (s) | reference | reference (s) | ratio | max error / peak | target "
+                  "| met / missed | notes |",
                   "|---|---|---|---|---|---|---|---|---|"] + rows + [""]
     if NOTES:
         lines += ["## Notes", ""] + [f"- {t}" for t in NOTES] + [""]

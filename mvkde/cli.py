@@ -3,6 +3,10 @@
 Exit status: 0 on success, 2 on bad input or configuration (one line on
 stderr, no traceback), 1 on an unexpected internal error (short message and
 the path of a log holding the traceback).
+
+Start-up must stay light (``mvkde --version`` and ``--help`` in well under half a
+second): this module imports only the standard library and ``mvkde.errors`` at
+module level; each command imports the library or the pipeline it needs.
 """
 
 from __future__ import annotations
@@ -10,9 +14,6 @@ from __future__ import annotations
 import argparse
 import os
 import sys
-import tempfile
-import traceback
-from pathlib import Path
 
 from .errors import MvkdeError
 
@@ -27,6 +28,18 @@ EPILOG_CAUTION = (
 # ---------------------------------------------------------------------------
 
 def cmd_kernels(args) -> int:
+    """``mvkde kernels``: print the kernel table (constants and efficiencies).
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        Parsed arguments of the sub-command (``dim``).
+
+    Returns
+    -------
+    int
+        Exit status (0 on success).
+    """
     from .kernels import kernel_table
 
     d = args.dim
@@ -73,12 +86,36 @@ def cmd_kernels(args) -> int:
 
 
 def cmd_demo(args) -> int:
+    """``mvkde demo``: run the example workflow on the sample grids (:func:`mvkde.demo.run`).
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        Parsed arguments of the sub-command (``out``).
+
+    Returns
+    -------
+    int
+        Exit status (0 on success).
+    """
     from . import demo
 
     return demo.run(out_dir=args.out)
 
 
 def cmd_run(args) -> int:
+    """``mvkde run``: run a workflow and write its output.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        Parsed arguments of the sub-command (``workflow``, ``set``, ``overwrite``).
+
+    Returns
+    -------
+    int
+        Exit status (0 on success).
+    """
     from .pipeline.run import run_and_write
 
     run_and_write(args.workflow, args.set or (), overwrite=args.overwrite,
@@ -87,6 +124,18 @@ def cmd_run(args) -> int:
 
 
 def cmd_check(args) -> int:
+    """``mvkde check``: load a workflow and print its plan without running it.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        Parsed arguments of the sub-command (``workflow``, ``set``).
+
+    Returns
+    -------
+    int
+        Exit status (0 on success).
+    """
     from .pipeline.run import describe_plan, plan_run
     from .pipeline.workflow import load
 
@@ -96,6 +145,18 @@ def cmd_check(args) -> int:
 
 
 def cmd_plot(args) -> int:
+    """``mvkde plot``: draw one cell or one field of an output file.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        Parsed arguments of the sub-command.
+
+    Returns
+    -------
+    int
+        Exit status (0 on success).
+    """
     from .plot import parse_selection, parse_size, plot_output, require_matplotlib
 
     require_matplotlib()
@@ -114,6 +175,18 @@ def cmd_plot(args) -> int:
 
 
 def cmd_inspect(args) -> int:
+    """``mvkde inspect``: summarise an output file (text, or JSON with ``--json``).
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        Parsed arguments of the sub-command (``output``, ``json``).
+
+    Returns
+    -------
+    int
+        Exit status (0 on success).
+    """
     from .inspect import format_summary, open_output, summarise, to_json
 
     ds = open_output(args.output)
@@ -130,6 +203,13 @@ def cmd_inspect(args) -> int:
 # ---------------------------------------------------------------------------
 
 def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of ``mvkde`` and its sub-commands.
+
+    Returns
+    -------
+    argparse.ArgumentParser
+        Each sub-command sets ``func`` to its ``cmd_*`` function.
+    """
     parser = argparse.ArgumentParser(
         prog="mvkde",
         description=("Joint probability densities of environmental variables: kernel density "
@@ -209,6 +289,22 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv=None) -> int:
+    """Entry point of the ``mvkde`` command.
+
+    Library errors (:class:`~mvkde.errors.MvkdeError`) print one line; an
+    internal error writes its traceback to a log file in the temporary directory.
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        Arguments (default ``sys.argv[1:]``).
+
+    Returns
+    -------
+    int
+        Exit status: 0 on success, 1 on an internal error, 2 on a usage or input
+        error (or no command), 130 on interruption.
+    """
     parser = build_parser()
     try:
         args = parser.parse_args(argv)
@@ -230,6 +326,10 @@ def main(argv=None) -> int:
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
     except Exception as exc:  # an internal error: keep the traceback in a log, not on screen
+        import tempfile
+        import traceback
+        from pathlib import Path
+
         log = Path(tempfile.gettempdir()) / f"mvkde-error-{os.getpid()}.log"
         log.write_text(traceback.format_exc())
         print(f"mvkde {args.command}: internal error ({type(exc).__name__}: {exc}); "

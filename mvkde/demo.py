@@ -16,10 +16,17 @@ from pathlib import Path
 from .errors import InputError
 
 MAIN_WORKFLOW = "basin_seasonal.toml"
+CHANGE_WORKFLOW = "basin_change.toml"
 
 
 def repo_dir() -> Path:
-    """The source tree (the demo runs from a checkout)."""
+    """The source tree (the demo runs from a checkout).
+
+    Returns
+    -------
+    pathlib.Path
+        The checkout holding ``sample_grids/generate.py``, else the current directory.
+    """
     here = Path(__file__).resolve().parent.parent
     if (here / "sample_grids" / "generate.py").exists():
         return here
@@ -27,10 +34,30 @@ def repo_dir() -> Path:
 
 
 def sample_grids_dir() -> Path:
+    """The ``sample_grids`` directory of the source tree.
+
+    Returns
+    -------
+    pathlib.Path
+    """
     return repo_dir() / "sample_grids"
 
 
 def run(out_dir="out", out=None) -> int:
+    """Run the example workflow on the invented basin data and draw its pictures.
+
+    Parameters
+    ----------
+    out_dir : str or path-like
+        Directory of the output file.
+    out : file, optional
+        Where to write progress lines (default ``sys.stdout``).
+
+    Returns
+    -------
+    int
+        0 (problems raise :class:`~mvkde.errors.InputError`).
+    """
     from .pipeline.run import run_and_write
     from .pipeline.workflow import load
 
@@ -51,7 +78,41 @@ def run(out_dir="out", out=None) -> int:
           f"'mvkde check {path.relative_to(repo)}' prints the plan", file=out)
     for line in pictures(written):
         print(f"mvkde demo: {line}", file=out)
+    for line in change(repo, out_dir, out):
+        print(f"mvkde demo: {line}", file=out)
     return 0
+
+
+def change(repo: Path, out_dir, out) -> list[str]:
+    """The comparison example: the warm period against the baseline, on a 3 x 3 block of cells in the
+    middle of the basin (kept small so the demo stays short), and a difference picture of one cell."""
+    from .errors import MvkdeError
+    from .pipeline.run import run_and_write
+    from .pipeline.workflow import load
+
+    path = repo / "workflows" / CHANGE_WORKFLOW
+    grids = sample_grids_dir()
+    files = [str(grids / "basin_daily.nc"), str(grids / "basin_daily_warm.nc")]
+    if not path.exists() or not all(Path(f).exists() for f in files):
+        return [f"no comparison: {path.name} or the warm-period data is missing"]
+    target = Path(out_dir) / "basin_change.nc"
+    wf = load(path, [f"input.path={files!r}".replace("'", '"'), f"output.path={str(target)!r}",
+                     "input.box.lat=[60.5, 61.5]", "input.box.lon=[21.0, 22.0]"])
+    print(f"mvkde demo: running {path.relative_to(repo)} (warm period against the baseline, summer days, "
+          "3 x 3 cells)", file=out)
+    written = run_and_write(wf, overwrite=True, command_line=["mvkde", "demo"], out=out)["path"]
+    try:
+        from .plot import plot_output, require_matplotlib
+
+        require_matplotlib()
+        result = plot_output(written, cell={"lat": "61", "lon": "21.5"}, field="density_difference",
+                             out=Path(written).with_name("basin_change_difference.png"))
+        ratio = plot_output(written, field="probability_ratio",
+                            out=Path(written).with_name("basin_change_probability_ratio.png"))
+    except MvkdeError as exc:
+        return [f"no comparison picture: {exc}"]
+    return [f"picture: {result.path} (density difference warm - baseline of one cell, significant nodes outlined)",
+            f"picture: {ratio.path} (probability ratio warm / baseline of P(pr > 5 mm, tasmax > 20 degC) per cell)"]
 
 
 def pictures(output) -> list[str]:
@@ -59,6 +120,15 @@ def pictures(output) -> list[str]:
 
     A summer cell in the middle of the basin (joint density with its
     highest-density regions) and a summer map of P(tasmax > 25 degC).
+
+    Parameters
+    ----------
+    output : str or path-like
+        The density file written by the demo.
+
+    Returns
+    -------
+    list of str
     """
     import xarray as xr
 

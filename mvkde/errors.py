@@ -32,13 +32,37 @@ class MvkdeWarning(UserWarning):
 
 
 def closest_names(name: str, valid: Iterable[str], cutoff: float = 0.6) -> str:
-    """A ' (did you mean ...?)' suffix, or '' when nothing is close (difflib's ratio >= ``cutoff``)."""
+    """A ' (did you mean ...?)' suffix, or '' when nothing is close (difflib's ratio >= ``cutoff``).
+
+    Parameters
+    ----------
+    name : str
+    valid : iterable of str
+    cutoff : float
+
+    Returns
+    -------
+    str
+    """
     match = difflib.get_close_matches(str(name), [str(v) for v in valid], n=1, cutoff=cutoff)
     return f" (did you mean {match[0]!r}?)" if match else ""
 
 
 def check_choice(argument: str, value, valid: Iterable[str]) -> str:
-    """Validate a named option: return the lower-cased value or raise InputError."""
+    """Validate a named option: return the lower-cased value or raise InputError.
+
+    Parameters
+    ----------
+    argument : str
+        The option's name, for the message.
+    value : object
+        The given value (strings are stripped and lower-cased).
+    valid : iterable of str
+
+    Returns
+    -------
+    str
+    """
     valid = tuple(valid)
     key = value.strip().lower() if isinstance(value, str) else value
     if key in valid:

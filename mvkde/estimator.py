@@ -8,6 +8,12 @@ with K a unit-covariance kernel (product or spherical form), so that H is the
 covariance matrix of the scaled kernel whatever the kernel (Wand & Jones
 1995, Ch. 4).  With the Gaussian kernel this is exactly
 scipy.stats.gaussian_kde with ``covariance = H``.
+
+Long because ``fit`` and the estimate live together: the estimate refits
+itself through ``fit`` (exact marginals, bootstrap replicates, the density on
+a point mass), and splitting them would make an import circle.  The steps of
+``fit`` are short functions below it; turning data into arrays is
+:mod:`mvkde.sample`, the point-mass models are :mod:`mvkde.boundary.point_mass`.
 """
 
 from __future__ import annotations
@@ -22,11 +28,13 @@ import xarray as xr
 from . import boundary as _boundary
 from .boundary import point_mass as _point_mass
 from .directional import model as _directional
+from .directional import spec as _directional_spec
 from . import engines as _engines
 from . import products as _products
 from .bandwidth import BandwidthMatrix, BandwidthResult, PARAMETRIZATIONS, select
 from .errors import InputError, MvkdeError, check_choice
 from .kernels import FORMS, get_kernel, get_multivariate_kernel
+from . import sample as _sample
 from .support import Support
 from .units import density_units
 
@@ -41,110 +49,6 @@ CAUTION = (
 
 
 # ---------------------------------------------------------------------------
-# input handling
-# ---------------------------------------------------------------------------
-
-def _as_table(data, names=None, units=None):
-    """(values (n, d) float, names, units) from an array, DataFrame or Dataset."""
-    found_units: dict[str, str] = {}
-    if isinstance(data, xr.Dataset):
-        cols = list(data.data_vars)
-        if not cols:
-            raise InputError("data: the Dataset has no data variables")
-        sizes = {c: data[c].size for c in cols}
-        if len(set(sizes.values())) != 1:
-            raise InputError(f"data: the Dataset's variables have different sizes {sizes}; "
-                             "select variables on the same dimensions")
-        values = np.column_stack([_numeric(data[c].values.ravel(), c) for c in cols])
-        found_units = {c: str(data[c].attrs.get("units", "")) for c in cols}
-        found_names = [str(c) for c in cols]
-    elif isinstance(data, xr.DataArray):
-        name = str(data.name) if data.name is not None else "x0"
-        values = _numeric(data.values.ravel(), name)[:, None]
-        found_units = {name: str(data.attrs.get("units", ""))}
-        found_names = [name]
-    elif isinstance(data, pd.DataFrame):
-        cols = list(data.columns)
-        values = np.column_stack([_numeric(data[c].to_numpy(), c) for c in cols]) if cols else np.empty((0, 0))
-        found_names = [str(c) for c in cols]
-        found_units = dict(data.attrs.get("units", {})) if isinstance(data.attrs.get("units"), dict) else {}
-    elif isinstance(data, pd.Series):
-        name = str(data.name) if data.name is not None else "x0"
-        values = _numeric(data.to_numpy(), name)[:, None]
-        found_names = [name]
-    else:
-        try:
-            values = np.asarray(data, dtype=float)
-        except (TypeError, ValueError):
-            raise InputError("data must be a numeric (n, d) array, a pandas DataFrame or an xarray Dataset") from None
-        if values.ndim == 1:
-            values = values[:, None]
-        if values.ndim != 2:
-            raise InputError(f"data must be two-dimensional (n samples, d variables), got shape {values.shape}")
-        found_names = [f"x{j}" for j in range(values.shape[1])]
-    d = values.shape[1] if values.ndim == 2 else 0
-    if d == 0:
-        raise InputError("data have no variables")
-    if names is not None:
-        names = [str(n) for n in names]
-        if len(names) != d:
-            raise InputError(f"names has {len(names)} entries but the data have {d} variables")
-        found_names = names
-    if len(set(found_names)) != d:
-        raise InputError(f"variable names must be distinct, got {found_names}")
-    if units is None:
-        units = [found_units.get(n, "") for n in found_names]
-    elif isinstance(units, dict):
-        units = [str(units.get(n, "")) for n in found_names]
-    else:
-        units = [str(u) for u in units]
-        if len(units) != d:
-            raise InputError(f"units has {len(units)} entries but the data have {d} variables")
-    return values, found_names, units
-
-
-def _numeric(col, name) -> np.ndarray:
-    try:
-        return np.asarray(col, dtype=float)
-    except (TypeError, ValueError):
-        raise InputError(f"variable {name!r} is not numeric: convert or drop it before fitting") from None
-
-
-def _check_finite(values, names):
-    bad = ~np.isfinite(values)
-    if bad.any():
-        parts = []
-        for j, name in enumerate(names):
-            nan = int(np.isnan(values[:, j]).sum())
-            inf = int(np.isinf(values[:, j]).sum())
-            if nan:
-                parts.append(f"{nan} NaN in {name}")
-            if inf:
-                parts.append(f"{inf} infinite in {name}")
-        raise InputError(f"data contain missing or infinite values ({', '.join(parts)}): "
-                         "drop or fill them before fitting")
-
-
-def _check_weights(weights, n):
-    if weights is None:
-        return None
-    try:
-        w = np.asarray(weights, dtype=float).ravel()
-    except (TypeError, ValueError):
-        raise InputError("weights must be numbers") from None
-    if w.shape[0] != n:
-        raise InputError(f"weights has {w.shape[0]} entries but the data have {n} rows")
-    if not np.all(np.isfinite(w)):
-        raise InputError("weights contain NaN or infinite values")
-    if np.any(w < 0):
-        raise InputError(f"weights must be non-negative ({int((w < 0).sum())} negative)")
-    total = w.sum()
-    if total <= 0:
-        raise InputError("weights are all zero: at least one sample must carry weight")
-    return w / total
-
-
-# ---------------------------------------------------------------------------
 # fit
 # ---------------------------------------------------------------------------
 
@@ -153,6 +57,9 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="plugin", parametr
         names=None, units=None, point_masses=None, mask=None, outside="error",
         sphere=None) -> "DensityEstimate":
     """Fit a multivariate kernel density estimate.
+
+    (Long because of this docstring: the body is a short sequence of steps,
+    each a function below.)
 
     Parameters
     ----------
@@ -281,8 +188,8 @@ def fit_steps(data, *, kernel="gaussian", form="product", bandwidth="plugin", pa
     (:mod:`mvkde.cells`) advances many cells together and answers a round of
     requests with one :func:`mvkde.bandwidth.select_many` call.
     """
-    values, names, units = _as_table(data, names, units)
-    values, w = _check_sample(values, names, weights)
+    values, names, units = _sample.as_table(data, names, units)
+    values, w = _sample.check_sample(values, names, weights)
     d = values.shape[1]
     mk = get_multivariate_kernel(get_kernel(kernel).name, check_choice("form", form, FORMS), d)
     parametrization = check_choice("parametrization", parametrization, PARAMETRIZATIONS)
@@ -292,7 +199,7 @@ def fit_steps(data, *, kernel="gaussian", form="product", bandwidth="plugin", pa
     # 1. the support of each variable, described once
     support, spec, mask_spec = _declare_support(names, values, bounds, periods, sphere, point_masses, mask)
     if spec is not None:
-        values = _directional.wrap(values, spec)
+        values = _directional_spec.wrap(values, spec)
     values, w, n_dropped = _drop_outside(values, w, support, mask_spec, outside, names)
     box = list(support.bounds)
 
@@ -305,7 +212,7 @@ def fit_steps(data, *, kernel="gaussian", form="product", bandwidth="plugin", pa
                    engine=engine, boundary=boundary)
     concentrations, attrs = {}, {}
     if cont_values.shape[0] == 0:
-        method, result, model = "none", _no_bandwidth(d), _EmptyModel(d)
+        method, result, model = "none", _point_mass.no_bandwidth(d), _point_mass.EmptyModel(d)
     elif spec is not None:
         model, result, method, concentrations, attrs = _directional.fit_model(
             cont_values, cont_w, names, spec, mk, bandwidth, parametrization, cont_box, boundary)
@@ -326,22 +233,14 @@ def fit_steps(data, *, kernel="gaussian", form="product", bandwidth="plugin", pa
     return est
 
 
-def _check_sample(values, names, weights):
-    n, d = values.shape
-    _check_finite(values, names)
-    if n < d + 1:
-        raise InputError(f"data have {n} samples for {d} variables: at least {d + 1} are needed")
-    return values, _check_weights(weights, n)
-
-
 def _declare_support(names, values, bounds, periods, sphere, point_masses, mask):
     """(Support, directional spec or None, mask or None) from fit's arguments, checked."""
     d = len(names)
     box = _boundary.parse_bounds(bounds, d, names)
     mask_spec = _boundary.parse_mask(mask, names) if mask is not None else None
-    spec = _directional.parse(periods, sphere, names, d)
+    spec = _directional_spec.parse(periods, sphere, names, d)
     if spec is not None:
-        _directional.check_support(spec, values, box, names, point_masses, mask)
+        _directional_spec.check_support(spec, values, box, names, point_masses, mask)
     declared = _point_mass.declare(point_masses, box, names)
     pair = None if spec is None or spec.sphere is None else (names[spec.sphere[0]], names[spec.sphere[1]])
     support = Support(tuple(names), tuple(tuple(b) for b in box),
@@ -456,32 +355,6 @@ def _fit_point_part(point, values, w, support: Support, names, units, options, r
         point.problem = str(err)
 
 
-def _no_bandwidth(d: int) -> BandwidthResult:
-    """The bandwidth of an empty continuous part (every value at the point mass)."""
-    nan = np.full((d, d), np.nan)
-    return BandwidthResult(BandwidthMatrix(nan, nan), "none: every value is at the point mass", "full")
-
-
-class _EmptyModel:
-    """The continuous part when every value lies at the point mass: zero density."""
-
-    attrs = {"boundary": "none", "continuous_part": "empty: every value is at the point mass"}
-
-    def __init__(self, d: int):
-        self.d = d
-
-    def density(self, pts, log=False):
-        return np.full(pts.shape[0], -np.inf if log else 0.0), None
-
-    def grid(self, axes):
-        return np.zeros([len(a) for a in axes]), None
-
-    def sample(self, n, rng):
-        if n:
-            raise InputError("the continuous part is empty (every value is at the point mass): nothing to draw")
-        return np.empty((0, self.d))
-
-
 # ---------------------------------------------------------------------------
 # the estimate
 # ---------------------------------------------------------------------------
@@ -495,7 +368,37 @@ def _column_range(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 class DensityEstimate:
-    """A fitted kernel density estimate.  Build it with :func:`mvkde.fit`."""
+    """A fitted kernel density estimate.  Build it with :func:`mvkde.fit`.
+
+    Parameters
+    ----------
+    data : ndarray, shape (n, d)
+        The sample (the continuous part when there is a point mass).
+    weights : ndarray, shape (n,), or None
+        Normalised sample weights; None for equal weights.
+    names, units : list of str
+        Variable names and units, in column order.
+    kernel : mvkde.kernels.MultivariateKernel
+        The d-variate kernel.
+    bandwidth : mvkde.bandwidth.BandwidthResult
+        The bandwidth matrix H and how it was chosen.
+    bounds : list of (float, float)
+        Support (lo, hi) per variable (infinite for an open side).
+    boundary : str
+        Boundary method name.
+    engine : str
+        Evaluation engine name.
+    model : object, optional
+        A fitted boundary model; built from the arguments above when None.
+    point_mass : object, optional
+        The fitted point-mass part, or None.
+    mask : (ndarray, list of ndarray), optional
+        Mask values and their grid axes, or None.
+    support : mvkde.support.Support, optional
+        Where each variable lives; linear variables on ``bounds`` when None.
+    concentrations : dict, optional
+        Concentration kappa of each directional variable's kernel, by name.
+    """
 
     def __init__(self, data, weights, names, units, kernel, bandwidth: BandwidthResult,
                  bounds, boundary, engine, *, model=None, point_mass=None, mask=None, support=None,
@@ -549,6 +452,25 @@ class DensityEstimate:
 
         For one variable, a 0-d DataArray holding p.  ``limits`` may be given for
         the other variables (a list in their order or a dict by name).
+
+        Parameters
+        ----------
+        size : int or sequence of int
+            Grid nodes per other variable (default 64).
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Grid range of the other variables.
+
+        Returns
+        -------
+        xarray.DataArray
+            The density on the point mass (dimensions: the other variables), or
+            the 0-d probability p for a one-variable estimate.
+
+        Raises
+        ------
+        InputError
+            If the estimate has no point mass, or its density on the point mass
+            could not be fitted.
         """
         if self._point is None:
             raise InputError("point_mass_grid: this estimate has no point mass; fit with point_masses=[...]")
@@ -661,11 +583,33 @@ class DensityEstimate:
         return values
 
     def pdf(self, points) -> np.ndarray:
-        """Density at ``points`` ((m, d) array or DataFrame with the variables as columns)."""
+        """Density at ``points`` ((m, d) array or DataFrame with the variables as columns).
+
+        Parameters
+        ----------
+        points : array_like, shape (m, d), or pandas.DataFrame
+            Evaluation points; a 1-d array is one point (or m points when d = 1).
+
+        Returns
+        -------
+        ndarray, shape (m,)
+            Density values, 0 outside the bounds.
+        """
         return self._evaluate(self._points(points))
 
     def logpdf(self, points) -> np.ndarray:
-        """Log density; for the Gaussian kernel a log-sum-exp that stays finite in far tails."""
+        """Log density; for the Gaussian kernel a log-sum-exp that stays finite in far tails.
+
+        Parameters
+        ----------
+        points : array_like, shape (m, d), or pandas.DataFrame
+            Evaluation points, as for :meth:`pdf`.
+
+        Returns
+        -------
+        ndarray, shape (m,)
+            Log density values, -inf outside the bounds.
+        """
         return self._evaluate(self._points(points), log=True)
 
     __call__ = pdf
@@ -676,6 +620,13 @@ class DensityEstimate:
 
         With ``boundary="transform"`` the widening is done in the transformed
         space (where H lives) and mapped back; with a mask, the mask's grid.
+        A circular variable gets one period from 0 and a spherical location the
+        whole globe.
+
+        Returns
+        -------
+        list of (float, float)
+            (lo, hi) per variable.
         """
         if self._mask is not None:
             return [(float(ax[0]), float(ax[-1])) for ax in self._mask[1]]
@@ -850,7 +801,20 @@ class DensityEstimate:
 
     def negative_mass(self, size=128, limits=None) -> float:
         """Integral of the negative part (non-zero only for fourth-order kernels and the
-        linear boundary kernel)."""
+        linear boundary kernel).
+
+        Parameters
+        ----------
+        size : int or sequence of int
+            Grid nodes per variable.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Grid range, as for :meth:`grid`.
+
+        Returns
+        -------
+        float
+            The negative mass on the grid (0.0 when the estimate cannot be negative).
+        """
         if self.kernel.kernel.order == 2 and self.boundary != "linear":
             return 0.0
         return float(self.grid(size, limits).attrs["negative_mass"])
@@ -865,6 +829,18 @@ class DensityEstimate:
         rejection for the others).  With a point mass, a Binomial(n, p) share of
         the draws sit on the bound of that variable, the other variables drawn
         from their density on the point mass.
+
+        Parameters
+        ----------
+        n : int
+            Number of draws (non-negative).
+        seed : int or numpy.random.Generator, optional
+            Seed for :func:`numpy.random.default_rng`.
+
+        Returns
+        -------
+        ndarray, shape (n, d)
+            The draws, columns in the order of ``names``.
         """
         n = int(n)
         if n < 0:
@@ -896,6 +872,43 @@ class DensityEstimate:
                    weights=weights, engine=self.engine, names=[self.names[j] for j in idx],
                    units=[self.units[j] for j in idx], **self._fit_options(idx))
 
+    def _point_mass_marginal(self, idx) -> "DensityEstimate":
+        """Marginal of ``idx`` for an estimate with a point mass (exact parts only).
+
+        Keeping the point-mass variable: the continuous part's marginal with the
+        same point mass, the other kept variables following their marginal on
+        it.  Dropping it: the mixture (1 - p) x continuous marginal + p x the
+        marginal of the density on the point mass.
+        """
+        pm = self._point
+        idx = list(idx)
+        cont = self._refit(self.data[:, idx], idx, self.weights) if self.n else None
+        others = [k for k in range(self.d) if k != pm.index]
+        on_mass = None
+        kept_others = [k for k in idx if k != pm.index]
+        if pm.estimate is not None and kept_others:
+            on_mass = pm.estimate.marginal([self.names[k] for k in kept_others])
+        if cont is None:
+            raise InputError("the continuous part is empty (every value is at the point mass): use "
+                             "point_mass_grid(...)")
+        if pm.index in idx:
+            declaration = self.support.subset(idx).point_mass
+            part = _point_mass.PointMassPart(declaration, pm.rows, pm.probability)
+            part.estimate, part.problem = on_mass, pm.problem
+            return DensityEstimate(cont.data, cont.weights, cont.names, cont.units, cont.kernel, cont.bandwidth,
+                                   cont.bounds, cont.boundary, cont.engine, model=cont._model, point_mass=part,
+                                   support=self.support.subset(idx))
+        if pm.probability > 0 and on_mass is None:
+            raise InputError(f"the density of {', '.join(self.names[k] for k in kept_others)} on the point mass of "
+                             f"{pm.name} is not available ({pm.problem or 'no values on it'}): use marginal_grid(...)")
+        model = _point_mass.Mixture(cont, on_mass, pm.probability)
+        est = DensityEstimate(cont.data, cont.weights, cont.names, cont.units, cont.kernel, cont.bandwidth,
+                              cont.bounds, cont.boundary, cont.engine, model=model, support=cont.support)
+        est.attrs["marginal_note"] = (f"mixture over the point mass of {pm.name}: (1 - {pm.probability:.4g}) x the "
+                                      "continuous part's marginal + the marginal on the point mass; H is that of "
+                                      "the continuous part")
+        return est
+
     def _fit_options(self, idx) -> dict:
         """Keyword arguments of :func:`fit` that rebuild this estimate's support for the
         variables ``idx`` (used for marginals and bootstrap refits)."""
@@ -919,51 +932,231 @@ class DensityEstimate:
 
     def marginal(self, names) -> "DensityEstimate":
         """Marginal estimate of ``names`` (exact: Gaussian kernel, or product kernel with the
-        kept variables leading); otherwise see :meth:`marginal_grid`."""
+        kept variables leading); otherwise see :meth:`marginal_grid`.
+
+        Parameters
+        ----------
+        names : str or list of str
+            Variables to keep.
+
+        Returns
+        -------
+        DensityEstimate
+            The estimate of the kept variables (see :func:`mvkde.products.marginal`).
+        """
         return _products.marginal(self, names)
 
     def marginal_grid(self, names, size=None, limits=None) -> xr.DataArray:
-        """Marginal density of ``names`` integrated numerically from the joint grid."""
+        """Marginal density of ``names`` integrated numerically from the joint grid.
+
+        Parameters
+        ----------
+        names : str or list of str
+            Variables to keep, in the order of the result's dimensions.
+        size : int or sequence of int, optional
+            Nodes per variable of the joint grid.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Range of the joint grid.
+
+        Returns
+        -------
+        xarray.DataArray
+            The marginal density (see :func:`mvkde.products.marginal_grid`).
+        """
         return _products.marginal_grid(self, names, size, limits)
 
     def conditional(self, given: dict, size=None, limits=None) -> xr.DataArray:
-        """Density of the other variables given values or (lo, hi) bins of ``given``."""
+        """Density of the other variables given values or (lo, hi) bins of ``given``.
+
+        Parameters
+        ----------
+        given : dict
+            Variable name -> value, or -> (lo, hi) bin.
+        size : int or sequence of int, optional
+            Nodes per remaining variable.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Grid range.
+
+        Returns
+        -------
+        xarray.DataArray
+            The conditional density (see :func:`mvkde.products.conditional`).
+        """
         return _products.conditional(self, given, size=size, limits=limits)
 
-    def cdf(self, points, *, size=None) -> np.ndarray:
-        """Joint CDF P(X <= x componentwise)."""
-        return _products.cdf(self, points, size=size)
+    def cdf(self, points, *, size=None, limits=None) -> np.ndarray:
+        """Joint CDF P(X <= x componentwise), point masses included.
 
-    def exceedance(self, points, *, size=None) -> np.ndarray:
-        """Joint exceedance P(X > x componentwise)."""
-        return _products.exceedance(self, points, size=size)
+        Parameters
+        ----------
+        points : array_like, shape (m, d), or pandas.DataFrame
+            Evaluation points.
+        size : int or sequence of int, optional
+            Nodes per variable of the grid used when no closed form applies.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Range of that grid.
+
+        Returns
+        -------
+        ndarray, shape (m,)
+            Probabilities (see :func:`mvkde.products.cdf`).
+        """
+        return _products.cdf(self, points, size=size, limits=limits)
+
+    def exceedance(self, points, *, size=None, limits=None) -> np.ndarray:
+        """Joint exceedance P(X > x componentwise), point masses included.
+
+        Parameters
+        ----------
+        points : array_like, shape (m, d), or pandas.DataFrame
+            Evaluation points.
+        size : int or sequence of int, optional
+            Nodes per variable of the grid used when no closed form applies.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Range of that grid.
+
+        Returns
+        -------
+        ndarray, shape (m,)
+            Probabilities (see :func:`mvkde.products.exceedance`).
+        """
+        return _products.exceedance(self, points, size=size, limits=limits)
 
     def probability_grid(self, kind="exceedance", size=None, limits=None) -> xr.DataArray:
-        """Joint CDF ('cdf') or exceedance ('exceedance') at every grid node."""
+        """Joint CDF ('cdf') or exceedance ('exceedance') at every grid node.
+
+        Parameters
+        ----------
+        kind : {'exceedance', 'cdf'}
+            Which probability.
+        size : int or sequence of int, optional
+            Nodes per variable.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Grid range.
+
+        Returns
+        -------
+        xarray.DataArray
+            Probabilities in [0, 1] on the grid (see :func:`mvkde.products.probability_grid`).
+        """
         return _products.probability_grid(self, kind, size, limits)
 
-    def quantiles(self, name, probs) -> np.ndarray:
-        """Marginal quantiles of variable ``name``."""
-        return _products.quantiles(self, name, probs)
+    def quantiles(self, name, probs, *, size=None, limits=None) -> np.ndarray:
+        """Marginal quantiles of variable ``name`` (point mass included; see :func:`mvkde.products.quantiles`).
 
-    def hdr_levels(self, masses=(0.5, 0.9, 0.99), *, size=None) -> np.ndarray:
-        """Density levels whose upper sets enclose ``masses`` of the probability."""
-        return _products.hdr_levels(self, masses, size=size)
+        Parameters
+        ----------
+        name : str
+            The variable.
+        probs : float or array_like of float
+            Probabilities, strictly between 0 and 1.
+        size : int or sequence of int, optional
+            Nodes per variable of a joint grid to integrate the marginal from.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Range of that grid.
 
-    def mass_above(self, level, *, size=None) -> np.ndarray:
-        """Probability of the region where the density is at least ``level``."""
-        return _products.mass_above(self, level, size=size)
+        Returns
+        -------
+        ndarray, shape (len(probs),)
+            The quantiles.
+        """
+        return _products.quantiles(self, name, probs, size=size, limits=limits)
+
+    def hdr_levels(self, masses=(0.5, 0.9, 0.99), *, size=None, limits=None) -> np.ndarray:
+        """Density levels whose upper sets enclose ``masses`` of the probability.
+
+        Parameters
+        ----------
+        masses : sequence of float
+            Probability fractions, strictly between 0 and 1.
+        size : int or sequence of int, optional
+            Nodes per variable of the grid.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Grid range.
+
+        Returns
+        -------
+        ndarray, shape (len(masses),)
+            Density levels (see :func:`mvkde.products.hdr_levels`).
+        """
+        return _products.hdr_levels(self, masses, size=size, limits=limits)
+
+    def mass_above(self, level, *, size=None, limits=None) -> np.ndarray:
+        """Probability of the region where the density is at least ``level``.
+
+        Parameters
+        ----------
+        level : float or array_like of float
+            Density level(s).
+        size : int or sequence of int, optional
+            Nodes per variable of the grid.
+        limits : sequence of (lo, hi) or dict name -> (lo, hi), optional
+            Grid range.
+
+        Returns
+        -------
+        ndarray, shape (len(level),)
+            Fraction of the grid's mass at or above each level.
+        """
+        return _products.mass_above(self, level, size=size, limits=limits)
 
     def sector_table(self, direction, speed, sectors=16, speed_edges=None):
         """Joint probability per direction sector and speed class (see
-        :func:`mvkde.products.sector_table`)."""
+        :func:`mvkde.products.sector_table`).
+
+        Parameters
+        ----------
+        direction : str
+            The circular variable.
+        speed : str
+            The linear variable.
+        sectors : int
+            Number of direction sectors (at least 2).
+        speed_edges : array_like of float, optional
+            Speed class edges; by default five equal classes over the grid limits.
+
+        Returns
+        -------
+        xarray.DataArray
+            Probabilities with dimensions ("sector", "speed_class").
+        """
         return _products.sector_table(self, direction, speed, sectors, speed_edges)
 
     def standard_error(self, points) -> np.ndarray:
-        """Asymptotic pointwise standard error of the density at ``points``."""
+        """Asymptotic pointwise standard error of the density at ``points``.
+
+        Parameters
+        ----------
+        points : array_like, shape (m, d), or pandas.DataFrame
+            Evaluation points.
+
+        Returns
+        -------
+        ndarray, shape (m,)
+            Standard errors (see :func:`mvkde.products.standard_error`).
+        """
         return _products.standard_error(self, self.pdf(points))
 
     def bootstrap_bands(self, points=None, *, kind="density", level=0.9, replicates=200, seed=None):
-        """Percentile bootstrap band (lower, upper) for the density or exceedance."""
+        """Percentile bootstrap band (lower, upper) for the density or exceedance.
+
+        Parameters
+        ----------
+        points : array_like, shape (m, d), or pandas.DataFrame, optional
+            Evaluation points; None for the nodes of the default grid.
+        kind : {'density', 'exceedance'}
+            The statistic.
+        level : float
+            Coverage of the band, strictly between 0 and 1.
+        replicates : int
+            Number of bootstrap resamples (at least 2).
+        seed : int or numpy.random.Generator, optional
+            Seed for :func:`numpy.random.default_rng`.
+
+        Returns
+        -------
+        lower, upper : ndarray, shape (m,)
+            The band's ends (see :func:`mvkde.products.bootstrap_bands`).
+        """
         return _products.bootstrap_bands(self, points, kind=kind, level=level,
                                          replicates=replicates, seed=seed)

@@ -30,8 +30,12 @@ FLAG_ADVICE = {
     "fit_failed": "fit that cell's sample with mvkde.fit to see the error",
     "bandwidth_not_converged": "try another estimator.bandwidth selector for these cells",
     "bandwidth_at_edge": "the selector stopped at the edge of its search: check these cells",
-    "grid_mass_off_by_more_than_1_percent": "widen grid.limits (or set variable bounds and a boundary method)",
+    "grid_mass_off_by_more_than_1_percent": "where grid_too_coarse_for_the_bandwidth is flagged too, use more "
+                                            "nodes (grid.size); elsewhere mass lies outside the grid: widen "
+                                            "grid.limits (or set variable bounds and a boundary method)",
     "subsampled": "input.max_samples subsampled these cells",
+    "grid_too_coarse_for_the_bandwidth": "the node spacing exceeds 1.5 kernel standard deviations: products "
+                                         "integrated on this grid are biased; use more nodes (grid.size)",
 }
 
 
@@ -61,16 +65,33 @@ class OutputLayout:
 
 
 def open_output(path) -> xr.Dataset:
-    """Open an output file (lazily) with a clear error for a missing or unreadable file."""
+    """Open an output (netCDF file or Zarr store, lazily) with a clear error for a missing or unreadable one."""
     p = Path(path)
     if not p.exists():
         raise InputError(f"output file {p} not found")
     if p.is_dir():
-        raise InputError(f"{p} is a folder: name an output file (.nc)")
+        if not any((p / name).exists() for name in ("zarr.json", ".zgroup", ".zattrs")):
+            raise InputError(f"{p} is a folder but not a Zarr store: name an output file (.nc) or store (.zarr)")
+        try:
+            import zarr  # noqa: F401
+        except ImportError:
+            raise InputError(f"{p} is a Zarr store: reading it needs the zarr package: "
+                             "pip install 'mvkde[zarr]'") from None
+        try:
+            return xr.open_dataset(p, engine="zarr", chunks={})
+        except (OSError, ValueError, KeyError) as exc:
+            raise InputError(f"cannot open {p} as a Zarr store: {exc}") from None
     try:
         return xr.open_dataset(p, engine="netcdf4", chunks={})
     except (OSError, ValueError) as exc:
         raise InputError(f"cannot open {p} as netCDF: {exc}") from None
+
+
+def _bytes_on_disk(p: Path) -> int:
+    """Size of a file, or of every file in a store (a folder)."""
+    if p.is_dir():
+        return sum(f.stat().st_size for f in p.rglob("*") if f.is_file())
+    return p.stat().st_size
 
 
 def _provenance(ds: xr.Dataset):
@@ -245,6 +266,11 @@ def _warnings(ds: xr.Dataset, lay: OutputLayout, flags: dict | None, n_cells: in
             if count:
                 hint = FLAG_ADVICE.get(meaning)
                 out.append(f"{count} cells flagged {meaning}" + (f": {hint}" if hint else ""))
+    if "failure_reason" in ds.data_vars:
+        reasons = np.asarray(ds["failure_reason"].values).astype(str)
+        distinct = sorted({r for r in reasons.ravel() if r})
+        for r in distinct[:3]:
+            out.append(f"{int((reasons == r).sum())} cells refused: {r}")
     # warnings a writer stored explicitly (a global attribute or a provenance entry)
     for source in (ds.attrs.get("warnings"), (lay.provenance or {}).get("warnings")):
         if source is None:
@@ -256,6 +282,37 @@ def _warnings(ds: xr.Dataset, lay: OutputLayout, flags: dict | None, n_cells: in
                 source = [source]
         out += [str(s) for s in (source if isinstance(source, list) else [source])]
     return out
+
+
+def _labels(ds: xr.Dataset) -> dict:
+    """The labelled samples of an output: windows with their dates, sources with their paths."""
+    out = {}
+    if "window" in ds.dims:
+        starts = ds["window_start"].values if "window_start" in ds.coords else [None] * ds.sizes["window"]
+        ends = ds["window_end"].values if "window_end" in ds.coords else [None] * ds.sizes["window"]
+        out["window"] = [{"name": str(n), "start": None if a is None else str(a), "end": None if b is None else str(b)}
+                         for n, a, b in zip(ds["window"].values, starts, ends)]
+    if "source" in ds.dims:
+        paths = ds["source_path"].values if "source_path" in ds.coords else [None] * ds.sizes["source"]
+        out["source"] = [{"name": str(n), "path": None if p is None else str(p)}
+                         for n, p in zip(ds["source"].values, paths)]
+    return out
+
+
+def _comparison(ds: xr.Dataset) -> dict | None:
+    """The comparison settings of an output with ``[compare]`` (None without one)."""
+    if "density_difference" not in ds.data_vars:
+        return None
+    a = ds["density_difference"].attrs
+    dim = str(a.get("compared_dim", ""))
+    compared = next((d for d in ds["density_difference"].dims if d.endswith("_compared")), None)
+    return {"reference": a.get("reference"), "dim": dim, "alpha": a.get("alpha"),
+            "compared": [str(v) for v in ds[compared].values] if compared else [],
+            "common_bandwidth": a.get("common_bandwidth"),
+            "outputs": [v for v in ("density_difference", "density_change_significant", "probability_ratio",
+                                    "probability_ratio_lower", "probability_ratio_upper",
+                                    "point_mass_probability_change", "return_period_and", "return_period_or")
+                        if v in ds.data_vars]}
 
 
 def summarise(ds: xr.Dataset, path=None) -> dict:
@@ -301,7 +358,7 @@ def summarise(ds: xr.Dataset, path=None) -> dict:
     p = Path(path) if path is not None else None
     summary = {
         "path": str(p.resolve()) if p else None,
-        "size_bytes": p.stat().st_size if p else None,
+        "size_bytes": _bytes_on_disk(p) if p else None,
         "title": attrs.get("title"),
         "dims": {str(k): int(v) for k, v in ds.sizes.items()},
         "cell_dims": lay.cell_dims,
@@ -314,6 +371,8 @@ def summarise(ds: xr.Dataset, path=None) -> dict:
         "per_cell": samples,
         "bandwidth": _bandwidth_table(ds, lay),
         "flags": flags,
+        "labels": _labels(ds),
+        "comparison": _comparison(ds),
         "warnings": _warnings(ds, lay, flags, n_cells),
         "caution": attrs.get("caution"),
         "attributes": {k: v for k, v in attrs.items() if k not in ("provenance",)},
@@ -393,6 +452,15 @@ def format_summary(s: dict) -> str:
             f"{v['name']} [{v['units'] or 'no units'}] {v['long_name'] if v['long_name'] != v['name'] else ''}".rstrip()
             + f"; grid {v['grid_size']} nodes on [{_num(v['limits'][0])}, {_num(v['limits'][1])}]{extra}")
     row("density", f"units {s['density_units'] or '-'}")
+    for dim, items in (s.get("labels") or {}).items():
+        for k, item in enumerate(items):
+            where = (f"{item['start']} to {item['end']}" if dim == "window" else item.get("path")) or ""
+            row(f"{dim}s" if k == 0 else "", f"{item['name']}: {where}".rstrip(": "))
+    c = s.get("comparison")
+    if c:
+        row("comparison", f"{', '.join(c['compared'])} against {c['reference']} (dim {c['dim']}), local test at "
+                          f"alpha {c['alpha']} (false discovery rate over each cell's grid); common H per pair")
+        row("", "outputs: " + ", ".join(c["outputs"]))
     e = s["estimator"]
     row("estimator", f"kernel {e['kernel']} ({e['form']}), bandwidth selector {e['bandwidth']} "
                      f"({e['parametrization']}), boundary {e['boundary']}, engine {e['engine']}"
@@ -448,6 +516,9 @@ def format_summary(s: dict) -> str:
         for o in p.get("overrides") or []:
             prow("override", str(o))
         for k, inp in enumerate(p.get("inputs") or []):
+            if "dask_token" in inp:  # made by mvkde.densities from an object in memory
+                prow("inputs" if k == 0 else "", f"{inp.get('type')} (dask token {inp['dask_token']})")
+                continue
             prow("inputs" if k == 0 else "", f"{inp.get('path')} ({_size(inp.get('size_bytes'))}, "
                                              f"sha256 {inp.get('sha256')})")
         for key in ("seed", "scheduler"):

@@ -125,16 +125,46 @@ class Kernel:
         return self.radius / self.scale
 
     def unit(self, u):
-        """The unit-variance kernel ``s K(s u)``."""
+        """The unit-variance kernel ``s K(s u)``.
+
+        Parameters
+        ----------
+        u : float or array_like
+            Offsets on the unit-variance scale.
+
+        Returns
+        -------
+        ndarray
+        """
         s = self.scale
         return s * self._fn(s * np.asarray(u, dtype=float))
 
     def cdf(self, u):
-        """Integrated kernel ``int_{-inf}^u K`` on the standard scale (closed forms)."""
+        """Integrated kernel ``int_{-inf}^u K`` on the standard scale (closed forms).
+
+        Parameters
+        ----------
+        u : float or array_like
+            Offsets on the standard scale.
+
+        Returns
+        -------
+        ndarray
+        """
         return _CDF[self.name](np.asarray(u, dtype=float))
 
     def unit_cdf(self, u):
-        """Integrated unit-variance kernel."""
+        """Integrated unit-variance kernel.
+
+        Parameters
+        ----------
+        u : float or array_like
+            Offsets on the unit-variance scale.
+
+        Returns
+        -------
+        ndarray
+        """
         return self.cdf(self.scale * np.asarray(u, dtype=float))
 
     @property
@@ -252,7 +282,22 @@ FORMS = ("product", "spherical")
 
 
 def get_kernel(name: str) -> Kernel:
-    """Look up a univariate kernel by name (case-insensitive)."""
+    """Look up a univariate kernel by name (case-insensitive).
+
+    Parameters
+    ----------
+    name : str
+        One of ``KERNEL_NAMES`` or ``HIGHER_ORDER_NAMES``.
+
+    Returns
+    -------
+    Kernel
+
+    Raises
+    ------
+    InputError
+        For an unknown name, with the closest valid names.
+    """
     if not isinstance(name, str):
         raise InputError(f"kernel must be a name, one of {', '.join(KERNEL_NAMES)}; got {name!r}")
     key = name.strip().lower()
@@ -274,7 +319,16 @@ def _sphere_area(d: int) -> float:
 
 
 def unit_ball_volume(d: int) -> float:
-    """c_d = pi^{d/2} / Gamma(d/2 + 1)."""
+    """c_d = pi^{d/2} / Gamma(d/2 + 1).
+
+    Parameters
+    ----------
+    d : int
+
+    Returns
+    -------
+    float
+    """
     return math.pi ** (d / 2.0) / math.gamma(d / 2.0 + 1.0)
 
 
@@ -310,7 +364,21 @@ class MultivariateKernel:
 
     ``evaluate(z)`` takes whitened offsets ``z = W (x - X_i)`` (``W H W' = I``)
     with shape ``(..., d)`` and returns ``K(z)``; the estimator divides by
-    ``|H|^{1/2}``.
+    ``|H|^{1/2}``.  Build it with :func:`get_multivariate_kernel`.
+
+    Parameters
+    ----------
+    kernel : Kernel
+    form : {'product', 'spherical'}
+    d : int
+    const : float
+        Spherical: normalising constant of the raw profile; product: 1.
+    scale : float
+        s, with K_unit(z) = s^d K(s z).
+    roughness : float
+        R of the unit-covariance d-variate kernel.
+    radius : float
+        Support radius of the unit-covariance kernel (inf for the Gaussian).
     """
 
     kernel: Kernel
@@ -335,6 +403,16 @@ class MultivariateKernel:
         return self.form == "spherical" and self.d > 1 and self.kernel.name != "gaussian"
 
     def evaluate(self, z: np.ndarray) -> np.ndarray:
+        """K(z) at whitened offsets.
+
+        Parameters
+        ----------
+        z : array_like, shape (..., d)
+
+        Returns
+        -------
+        ndarray, shape (...)
+        """
         z = np.asarray(z, dtype=float)
         if not self.is_radial:
             out = self.kernel.unit(z[..., 0])
@@ -344,7 +422,16 @@ class MultivariateKernel:
         return self.evaluate_radial(np.einsum("...j,...j->...", z, z))
 
     def evaluate_radial(self, r2: np.ndarray) -> np.ndarray:
-        """Spherical form from squared whitened distances ``r2 = |z|^2``."""
+        """Spherical form from squared whitened distances ``r2 = |z|^2``.
+
+        Parameters
+        ----------
+        r2 : ndarray
+
+        Returns
+        -------
+        ndarray, shape of ``r2``
+        """
         s = self.scale
         rs = np.sqrt(np.maximum(r2, 0.0)) * s
         # raw univariate kernel, divided by its 1-D constant, is the profile k(r)
@@ -352,11 +439,35 @@ class MultivariateKernel:
         return (s ** self.d) * self.const * prof
 
     def log_evaluate_gaussian(self, r2: np.ndarray) -> np.ndarray:
-        """log K for the Gaussian kernel from ``r2 = |z|^2`` (either form)."""
+        """log K for the Gaussian kernel from ``r2 = |z|^2`` (either form).
+
+        Parameters
+        ----------
+        r2 : ndarray
+
+        Returns
+        -------
+        ndarray, shape of ``r2``
+        """
         return -0.5 * r2 - 0.5 * self.d * math.log(2.0 * math.pi)
 
     def sample(self, n: int, rng: np.random.Generator) -> np.ndarray:
-        """Draws from the unit-covariance kernel, shape ``(n, d)``."""
+        """Draws from the unit-covariance kernel, shape ``(n, d)``.
+
+        Parameters
+        ----------
+        n : int
+        rng : numpy.random.Generator
+
+        Returns
+        -------
+        ndarray, shape (n, d)
+
+        Raises
+        ------
+        InputError
+            For a fourth-order kernel (it takes negative values).
+        """
         k = self.kernel
         if k.order != 2:
             raise InputError(
@@ -399,7 +510,20 @@ def _sample_univariate(k: Kernel, shape, rng) -> np.ndarray:
 
 @lru_cache(maxsize=None)
 def get_multivariate_kernel(name: str, form: str, d: int) -> MultivariateKernel:
-    """The unit-covariance d-variate kernel ``name`` in ``form``."""
+    """The unit-covariance d-variate kernel ``name`` in ``form`` (cached).
+
+    Parameters
+    ----------
+    name : str
+        Univariate kernel name (see :func:`get_kernel`).
+    form : {'product', 'spherical'}
+    d : int
+        Dimension (at least 1).
+
+    Returns
+    -------
+    MultivariateKernel
+    """
     k = get_kernel(name)
     if not isinstance(form, str) or form.strip().lower() not in FORMS:
         raise InputError(f"unknown kernel form {form!r}: valid forms are {', '.join(FORMS)}"
@@ -440,6 +564,18 @@ def kernel_table(d: int = 1) -> list[dict]:
     ``R(K_ref) / R(K)`` of unit-covariance kernels, with the spherical
     Epanechnikov kernel as the reference (the optimal one among non-negative
     radially symmetric kernels; Silverman 1986, Sec. 4.2.3).
+
+    Parameters
+    ----------
+    d : int
+        Dimension of the efficiencies.
+
+    Returns
+    -------
+    list of dict
+        One row per kernel: ``kernel``, ``support``, ``R``, ``mu2``, ``R2mu2``,
+        ``efficiency``, ``smoothness``; for ``d > 1`` also
+        ``efficiency_product`` and ``efficiency_spherical``.
     """
     epa = get_kernel("epanechnikov")
     ref = get_multivariate_kernel("epanechnikov", "spherical", d).roughness if d > 1 else None

@@ -18,7 +18,15 @@ __all__ = ["PointMass", "Support"]
 
 @dataclass(frozen=True)
 class PointMass:
-    """A point mass at the lower bound of one variable: values <= ``threshold`` count as ``bound``."""
+    """A point mass at the lower bound of one variable: values <= ``threshold`` count as ``bound``.
+
+    Parameters
+    ----------
+    index : int
+        Column of the variable.
+    name : str
+    threshold, bound : float
+    """
 
     index: int
     name: str
@@ -52,7 +60,17 @@ class Support:
 
     @classmethod
     def linear(cls, names, bounds=None) -> "Support":
-        """Every variable linear, with the given (lo, hi) bounds (default unbounded)."""
+        """Every variable linear, with the given (lo, hi) bounds (default unbounded).
+
+        Parameters
+        ----------
+        names : sequence of str
+        bounds : sequence of (float, float), optional
+
+        Returns
+        -------
+        Support
+        """
         d = len(names)
         box = tuple(tuple(b) for b in bounds) if bounds is not None else ((-math.inf, math.inf),) * d
         return cls(tuple(names), box, (None,) * d)
@@ -93,14 +111,35 @@ class Support:
         return any(math.isfinite(lo) or math.isfinite(hi) for lo, hi in self.bounds)
 
     def density_units(self, units, names=None) -> str:
-        """Units of a density of ``names`` (default all variables) with ``units``: per km^2 over a location."""
+        """Units of a density of ``names`` (default all variables) with ``units``: per km^2 over a location.
+
+        Parameters
+        ----------
+        units : sequence of str
+            Units of the variables in ``names``.
+        names : sequence of str, optional
+
+        Returns
+        -------
+        str
+            See :func:`mvkde.units.density_units`.
+        """
         names = list(self.names if names is None else names)
         sphere = set(self.sphere or ())
         rest = [u for n, u in zip(names, units) if n not in sphere]
         return density_units(rest, per_km2=bool(sphere & set(names)))
 
     def subset(self, idx) -> "Support":
-        """The support of the variables ``idx`` (a point mass or sphere pair kept only when inside)."""
+        """The support of the variables ``idx`` (a point mass or sphere pair kept only when inside).
+
+        Parameters
+        ----------
+        idx : sequence of int
+
+        Returns
+        -------
+        Support
+        """
         idx = list(idx)
         names = tuple(self.names[j] for j in idx)
         pm = self.point_mass

@@ -10,6 +10,15 @@ def density_units(units, *, per_km2: bool = False) -> str:
     variables ("", "1", None) contribute nothing.  ``per_km2`` adds a
     location on the Earth's surface (a density per km^2): ``["K"]`` ->
     ``"km-2 K-1"``, ``["mm d-1", "K"]`` -> ``"1/(km2 mm d-1 K)"``.
+
+    Parameters
+    ----------
+    units : iterable of str or None
+    per_km2 : bool
+
+    Returns
+    -------
+    str
     """
     parts = [str(u).strip() for u in units if u and str(u).strip() not in ("", "1")]
     if per_km2:

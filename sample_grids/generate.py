@@ -18,6 +18,12 @@ So values <= 1 mm are the dry point mass (the common 1 mm wet-day
 threshold), and the continuous part of the joint density of (pr, tasmax) on
 wet days is ``P_WET * gamma(pr - 1) * normal(tasmax)``.
 
+A second, warmer and wetter period (``basin_daily_warm.nc``, three years
+from 2041): the same law with ``tasmax`` raised by ``WARMING`` = 1.5 K and
+wet-day amounts above the 1 mm threshold scaled by ``WETTER`` = 1.10.  With
+``input.path`` listing both files, ``workflows/basin_change.toml`` compares
+the two windows.  ``basin_daily.nc`` itself is unchanged.
+
 Run ``python sample_grids/generate.py`` to rewrite the files next to it.
 """
 
@@ -42,6 +48,9 @@ WET_THRESHOLD = 1.0
 LAT = np.arange(60.0, 62.5, 0.5)        # 5 rows
 LON = np.arange(20.0, 23.5, 0.5)        # 7 columns
 SEED = 20261201
+WARMING = 1.5          # K added to tasmax in the warm period
+WETTER = 1.10          # factor on wet-day amounts above the threshold in the warm period
+WARM_START = "2041-01-01"
 
 
 def season_of(months: np.ndarray) -> np.ndarray:
@@ -56,8 +65,10 @@ def elevation(lat, lon):
     return 0.3 + 0.9 * bump
 
 
-def simulate(dates: pd.DatetimeIndex, elev: np.ndarray, rng: np.random.Generator):
-    """Daily pr and tasmax with shape (time, *elev.shape) from the law above."""
+def simulate(dates: pd.DatetimeIndex, elev: np.ndarray, rng: np.random.Generator, warming: float = 0.0,
+             wetter: float = 1.0):
+    """Daily pr and tasmax with shape (time, *elev.shape) from the law above (shifted by ``warming``
+    degC and wet-day amounts scaled by ``wetter`` for the warm period)."""
     seasons = season_of(dates.month)
     shape = (len(dates),) + elev.shape
     p_wet = np.array([P_WET[s] for s in seasons]).reshape((-1,) + (1,) * elev.ndim)
@@ -65,9 +76,9 @@ def simulate(dates: pd.DatetimeIndex, elev: np.ndarray, rng: np.random.Generator
     t_mean = np.array([T_MEAN[s] for s in seasons]).reshape(p_wet.shape) - 6.5 * elev
     wet = rng.random(shape) < p_wet
     trace = rng.random(shape) < 0.2
-    pr = np.where(wet, WET_THRESHOLD + rng.gamma(WET_SHAPE, 1.0, size=shape) * scale,
+    pr = np.where(wet, WET_THRESHOLD + rng.gamma(WET_SHAPE, 1.0, size=shape) * scale * wetter,
                   np.where(trace, rng.random(shape) * WET_THRESHOLD, 0.0))
-    tasmax = t_mean - 1.5 * wet + T_SD * rng.standard_normal(shape)
+    tasmax = t_mean + warming - 1.5 * wet + T_SD * rng.standard_normal(shape)
     return pr, tasmax
 
 
@@ -111,13 +122,14 @@ def true_tasmax_density(tasmax, elev: float, months=None):
     return total
 
 
-def make_grid(years: int = 4, seed: int = SEED, lat=LAT, lon=LON) -> xr.Dataset:
+def make_grid(years: int = 4, seed: int = SEED, lat=LAT, lon=LON, start: str = "2001-01-01", warming: float = 0.0,
+              wetter: float = 1.0) -> xr.Dataset:
     """The gridded sample data: ``years`` of daily pr and tasmax on the ``lat`` x ``lon`` grid."""
     rng = np.random.default_rng(seed)
-    dates = pd.date_range("2001-01-01", periods=int(round(365.25 * years)), freq="D")
+    dates = pd.date_range(start, periods=int(round(365.25 * years)), freq="D")
     lat, lon = np.asarray(lat, dtype=float), np.asarray(lon, dtype=float)
     elev = elevation(lat, lon)
-    pr, tasmax = simulate(dates, elev, rng)
+    pr, tasmax = simulate(dates, elev, rng, warming=warming, wetter=wetter)
     ds = xr.Dataset(
         {
             "pr": (("time", "lat", "lon"), pr.astype("float32"), {
@@ -182,8 +194,11 @@ def main(argv=None) -> None:
     ds = make_grid(args.years)
     encoding = {v: {"zlib": True, "complevel": 4} for v in ("pr", "tasmax")}
     ds.to_netcdf(out / "basin_daily.nc", encoding=encoding)
+    warm = make_grid(3, seed=SEED + 2, start=WARM_START, warming=WARMING, wetter=WETTER)
+    warm.attrs["title"] = "Aldmere basin sample grid, warm period (invented data: +1.5 K, +10 % wet-day amounts)"
+    warm.to_netcdf(out / "basin_daily_warm.nc", encoding=encoding)
     make_stations(args.years).to_csv(out / "stations_daily.csv", index=False)
-    print(f"wrote {out / 'basin_daily.nc'} and {out / 'stations_daily.csv'}")
+    print(f"wrote {out / 'basin_daily.nc'}, {out / 'basin_daily_warm.nc'} and {out / 'stations_daily.csv'}")
 
 
 if __name__ == "__main__":

@@ -14,6 +14,7 @@ from scipy import integrate, special
 
 import mvkde
 from mvkde import directional as D
+from mvkde.directional import fast_cv as F
 from mvkde.directional import selectors as S
 
 from circular_mise import exact_mise, optimal_concentration, sample
@@ -150,7 +151,7 @@ def test_normal_rule_oversmooths_several_peaks_and_the_plugin_does_not():
     taylor = D.taylor_rule(x)
     normal = S.normal_concentration(x)
     plugin, mixture = S.mixture_plugin_concentration(x, return_mixture=True)
-    cv = S.circular_cv("mlcv", x).kappa
+    cv = F.circular_cv("mlcv", x).kappa
     assert taylor < 10 and normal < 15                      # the "kappa about 5"
     assert exact_mise(normal, mix, n) > 5 * mise_opt
     assert mixture.components == 2
@@ -211,14 +212,14 @@ def test_binned_cv_criteria_and_choice_match_exact_sums(weighted):
     x = sample(mix, 700, rng)
     w = rng.uniform(0.5, 2.0, x.size) if weighted else np.ones(x.size)
     w = w / w.sum()
-    lat = S._PeriodicLattice(x, w, 16.0)
+    lat = F._PeriodicLattice(x, w, 16.0)
     for nu in (2.0, 30.0, 100.0, 400.0):
         ls, ml = exact_criteria(nu, x, w)
         # measured agreement better than 2e-4 relative (binning error ~ (step)^2)
         assert lat.lscv(nu) == pytest.approx(ls, rel=1e-3, abs=1e-5)
         assert lat.mlcv(nu) == pytest.approx(ml, rel=1e-3, abs=1e-4)
     for criterion in ("lscv", "mlcv"):
-        fast = S.circular_cv(criterion, x, None if not weighted else w)
+        fast = F.circular_cv(criterion, x, None if not weighted else w)
         exact = D.cross_validate(criterion, theta=x[:, None], weights=None if not weighted else w)
         assert fast.kappa == pytest.approx(float(exact.kappas[0]), rel=0.02)
         assert fast.criterion == pytest.approx(exact.criterion, rel=1e-3, abs=1e-5)
@@ -231,7 +232,7 @@ def test_fit_uses_the_binned_cv_for_one_circular_variable():
         assert "periodic lattice" in est.attrs["concentration_method_dir"]
         # no subsample: the binned criterion uses all 2500 points
         assert est.concentrations["dir"] == pytest.approx(
-            S.circular_cv(method, np.deg2rad(x[:, 0])).kappa, rel=1e-6)     # degrees -> radians round-off
+            F.circular_cv(method, np.deg2rad(x[:, 0])).kappa, rel=1e-6)     # degrees -> radians round-off
 
 
 # ---------------------------------------------------------------------------
@@ -244,7 +245,7 @@ def test_sphere_likelihood_cv_matches_dense_cross_validation():
     units = np.vstack([D.sample_vmf(np.tile(D.lonlat_to_unit(la, lo), (m, 1)), k, rng)
                        for la, lo, k, m in clouds])
     w = np.full(units.shape[0], 1.0 / units.shape[0])
-    nb = S._SphereNeighbours(units, w)
+    nb = F._SphereNeighbours(units, w)
     for kappa in (5.0, 200.0, 3000.0):
         # dense reference: sum_i w_i log f_{-i}(u_i), vMF kernel per steradian
         lk = D.log_vmf_kernel(kappa, np.clip(units @ units.T, -1, 1))
@@ -253,7 +254,7 @@ def test_sphere_likelihood_cv_matches_dense_cross_validation():
         # terms below 1e-12 of the peak are dropped: measured 5e-8 relative at kappa 3000, where one
         # isolated point's neighbours sit at the cut-off
         assert nb.loglik(kappa) == pytest.approx(ref, rel=1e-6)
-    fast = S.sphere_likelihood_cv(units)
+    fast = F.sphere_likelihood_cv(units)
     exact = D.cross_validate("mlcv", units=units)
     assert fast.kappa == pytest.approx(exact.kappa_sphere, rel=0.01)
     assert fast.criterion == pytest.approx(exact.criterion, rel=1e-6)

@@ -152,6 +152,20 @@ def test_binned_streaming_chunks_do_not_change_the_result(rng, monkeypatch):
     np.testing.assert_allclose(pieces, whole, rtol=1e-10, atol=1e-12 * whole.max())
 
 
+def test_binned_term_groups_do_not_change_the_result(rng, monkeypatch):
+    # a tiny BOX_BUDGET makes _bin hold one term's bins at a time (re-reading the rows)
+    x, w = _sample(rng, 3000, 3, True)
+    mk = get_multivariate_kernel("biweight", "product", 3)
+    H = _normal_H(x, "biweight", "product")
+    axes = [np.linspace(-3, 3, 12)] * 3
+    bw = BandwidthMatrix.from_matrix(H)
+    whole, info = binned.grid_density(axes, x, w, bw, mk)
+    monkeypatch.setattr(binned, "BOX_BUDGET", 8)
+    groups, info_groups = binned.grid_density(axes, x, w, bw, mk)
+    np.testing.assert_allclose(groups, whole, rtol=1e-10, atol=1e-12 * whole.max())
+    assert info_groups.refinement == info.refinement
+
+
 def test_gaussian_drop_radius_bound():
     # the dropped Gaussian terms: exp(-R^2/2) = tol/100 * max weight   [calc]
     r = binned.gaussian_reach_radius(1e-4, 1e-3)

@@ -118,7 +118,7 @@ def test_resume_without_zarr_is_a_clear_error(tmp_path, capsys, monkeypatch):
     code = main(["run", str(CORPUS / "output_exists.toml"), "--set", "output.resume=true"])
     err = capsys.readouterr().err
     assert code == 2 and err.count("\n") == 1, err
-    assert "output.resume" in err and "mvkde[resume]" in err
+    assert "output.resume" in err and "mvkde[zarr]" in err
 
 
 def test_one_all_nan_cell_is_flagged_not_fatal(tmp_path):

@@ -54,7 +54,7 @@ def test_every_example_validates(path):
 
 def test_examples_exist():
     # the shipped examples, by name: adding or removing one is a deliberate change made here too
-    assert [p.name for p in EXAMPLES] == ["basin_seasonal.toml", "basin_summer_box.toml",
+    assert [p.name for p in EXAMPLES] == ["basin_change.toml", "basin_seasonal.toml", "basin_summer_box.toml",
                                           "stations_temperature_wind.toml", "stations_wind.toml"]
 
 

@@ -23,8 +23,8 @@ off-diagonal sums with the same interface:
   neighbouring nodes) are removed exactly through the spectrum of their
   autocorrelation, so binned and exact sums approximate the same quantity.
   Cost: O(n 2^d) binning, one FFT per cell, O(grid) per criterion value.
-  All cells of a block are binned by one ``bincount`` and transformed by
-  one ``rfftn`` over a ``(cells, *grid)`` array.
+  All cells of a block are binned into one ``(cells, *grid)`` array
+  (``_bin_cells``) and transformed by one ``rfftn``.
 * :class:`ExactSums` -- direct chunked sums over the ``n (n - 1) / 2``
   pairs, O(n^2); the truth the binned path is tested against.
 
@@ -166,6 +166,108 @@ def tensor_from_values(values: dict, d: int, order: int, batch: int) -> np.ndarr
     return out
 
 
+class _FrequencyTable:
+    """The half spectrum of a (size,)^d grid sorted by |kappa| (stable): indices into the
+    flattened rfftn output, kappa (radians per bin), |kappa|^2, the conjugate-half
+    multiplicity, 2 cos kappa_j and the tent deconvolution prod_j sinc^4(kappa_j / 2)."""
+
+    def __init__(self, size: int, d: int):
+        axes = [2.0 * np.pi * _fft.fftfreq(size)] * (d - 1) + [2.0 * np.pi * _fft.rfftfreq(size)]
+        mesh = np.meshgrid(*axes, indexing="ij")
+        kappa = np.stack([m.ravel() for m in mesh], axis=1)           # (nf, d)
+        mult = np.ones(mesh[-1].shape)
+        last = np.arange(mesh[-1].shape[-1])
+        mult[..., (last > 0) & (last < size / 2.0)] = 2.0              # conjugate halves
+        k2 = np.einsum("fd,fd->f", kappa, kappa)
+        self.order = np.argsort(k2, kind="stable")
+        self.kappa = kappa[self.order]
+        self.k2 = k2[self.order]
+        self.mult = mult.ravel()[self.order]
+        self.two_cos = 2.0 * np.cos(self.kappa)
+        half = 0.5 * self.kappa
+        self.tent = np.prod(np.where(half == 0, 1.0, np.sin(half) / np.where(half == 0, 1.0, half)), axis=1) ** 4
+        for a in (self.order, self.kappa, self.k2, self.mult, self.two_cos, self.tent):
+            a.flags.writeable = False
+
+
+_FREQUENCY_TABLES: dict = {}
+
+
+def _frequency_table(size: int, d: int) -> _FrequencyTable:
+    """Cached for d <= 2 (at most 4 tables of a few MB: a selector builds the same
+    grid for every block); built afresh in 3-D, where a table is tens of MB."""
+    if d > 2:
+        return _FrequencyTable(size, d)
+    key = (size, d)
+    table = _FREQUENCY_TABLES.get(key)
+    if table is None:
+        if len(_FREQUENCY_TABLES) >= 4:
+            _FREQUENCY_TABLES.pop(next(iter(_FREQUENCY_TABLES)))
+        table = _FREQUENCY_TABLES[key] = _FrequencyTable(size, d)
+    return table
+
+
+#: rows binned per step: 256 KB temporaries, which the allocator recycles
+#: (larger ones are mapped and page-faulted afresh at every step)
+_CHUNK = 1 << 15
+
+
+def _bin_cells(zs, ws, lo, delta, bins, size):
+    """Linear binning of every cell onto its own ``size^d`` grid (``bins`` nodes used
+    per axis), and the sums behind the binned self pairs.
+
+    Returns ``grid`` (C, size^d): ``sum_i w_i prod_j (1 - f_ij or f_ij)`` at the
+    2^d corners of each point's bin, and ``self_sums`` (C, 2^d): for each pattern
+    ``s`` of axes (bit ``d - 1 - j`` for axis j) ``sum_i w_i^2 prod_j a_j`` with
+    ``a_j = f_ij (1 - f_ij)`` on the axes in ``s`` and ``(1 - f_ij)^2 + f_ij^2``
+    on the others: the autocorrelation of each point's tent weights at an offset
+    whose non-zero components are the axes in ``s``.
+
+    Memory-bound: per cell and chunk of rows, the flat index of each point's lower
+    corner is computed once and each corner is one unbuffered ``np.add.at`` into
+    the cell's row of the grid (no C x size^d temporary per corner, as a
+    ``bincount`` over all cells made).
+    """
+    C = len(zs)
+    d = lo.shape[1]
+    ntot = size ** d
+    cell_bins = np.broadcast_to(np.asarray(bins, dtype=np.int64), (C,))   # bins may differ per cell
+    grid = np.zeros((C, ntot))
+    self_sums = np.zeros((C, 1 << d))
+    strides = [size ** (d - 1 - j) for j in range(d)]
+    corners = list(itertools.product((0, 1), repeat=d))
+    offsets = [sum(strides[j] for j in range(d) if bits[j]) for bits in corners]
+    for c in range(C):
+        z, w, row = zs[c], ws[c], grid[c]
+        for a in range(0, z.shape[0], _CHUNK):
+            zc, wc = z[a:a + _CHUNK], w[a:a + _CHUNK]
+            base, lower, upper, diag, cross = None, [], [], [], []
+            for j in range(d):
+                u = (zc[:, j] - lo[c, j]) / delta[c, j]
+                i0 = np.clip(np.floor(u).astype(np.int64), 0, int(cell_bins[c]) - 2)
+                f = np.clip(u - i0, 0.0, 1.0)
+                base = i0 * strides[j] if base is None else base + i0 * strides[j]
+                g = 1.0 - f
+                lower.append(g)
+                upper.append(f)
+                fg = f * g
+                cross.append(fg)
+                diag.append(g * g + f * f)
+            for off, bits in zip(offsets, corners):
+                p = upper[0] if bits[0] else lower[0]
+                for j in range(1, d):
+                    p = p * (upper[j] if bits[j] else lower[j])
+                # the grid is padded beyond the bins: base + off stays in the row
+                np.add.at(row[off:], base, wc * p)
+            w2 = wc * wc
+            for pattern, bits in enumerate(corners):
+                p = cross[0] if bits[0] else diag[0]
+                for j in range(1, d):
+                    p = p * (cross[j] if bits[j] else diag[j])
+                self_sums[c, pattern] += float(np.dot(w2, p))
+    return grid, self_sums
+
+
 # ---------------------------------------------------------------------------
 # binned provider
 # ---------------------------------------------------------------------------
@@ -211,54 +313,35 @@ class BinnedSums:
         shape = (size,) * d
         ntot = size ** d
 
-        # -- linear binning of every cell at once
-        counts = np.concatenate([np.full(len(z), c) for c, z in enumerate(prep.z)])
-        zall = np.concatenate(prep.z)
-        wall = np.concatenate(prep.w)
-        u = (zall - lo[counts]) / delta[counts]
-        i0 = np.clip(np.floor(u).astype(np.int64), 0, (bins[counts] - 2)[:, None])
-        frac = np.clip(u - i0, 0.0, 1.0)
-        flat_bins = np.zeros(C * ntot)
-        strides = np.array([size ** (d - 1 - j) for j in range(d)])
-        for corner in itertools.product((0, 1), repeat=d):
-            corner = np.array(corner)
-            wt = wall * np.prod(np.where(corner == 1, frac, 1.0 - frac), axis=1)
-            idx = counts * ntot + np.einsum("ij,j->i", i0 + corner, strides)
-            flat_bins += np.bincount(idx, weights=wt, minlength=C * ntot)
+        # -- linear binning of every cell at once, into one (C, size^d) array
+        flat_bins, self_sums = _bin_cells(prep.z, prep.w, lo, delta, bins, size)
         grid = flat_bins.reshape((C,) + shape)
         spec = _fft.rfftn(grid, axes=tuple(range(1, d + 1)), workers=1)
         self._spec_complex = spec
 
-        # -- frequencies (radians per bin) of the half spectrum; drop those
-        # where even the narrowest kernel has no mass (exp(-40))
-        axes = [2.0 * np.pi * _fft.fftfreq(size)] * (d - 1) + [2.0 * np.pi * _fft.rfftfreq(size)]
-        mesh = np.meshgrid(*axes, indexing="ij")
-        kappa = np.stack([m.ravel() for m in mesh], axis=1)           # (nf, d)
-        mult = np.ones(mesh[-1].shape)
-        last = np.arange(mesh[-1].shape[-1])
-        mult[..., (last > 0) & (last < size / 2.0)] = 2.0              # conjugate halves
-        mult = mult.ravel()
+        # -- frequencies (radians per bin) of the half spectrum, in order of |kappa|
+        # (a criterion value for a given H then reads a prefix, see _cutoff); drop
+        # those where even the narrowest kernel has no mass (exp(-40))
+        table = _frequency_table(size, d)
         smin = np.asarray(min_sd, dtype=float)
         kmax2 = 80.0 / np.min(smin[:, None] / delta, axis=1) ** 2      # per cell, |kappa|^2 bound
-        k2 = np.einsum("fd,fd->f", kappa, kappa)
-        keep = k2 < kmax2.max()
-        # kept frequencies in order of |kappa|: a criterion value for a given H
-        # then reads a prefix (see _cutoff)
-        keep = np.flatnonzero(keep)
-        keep = keep[np.argsort(k2[keep], kind="stable")]
-        kappa, mult = kappa[keep], mult[keep]
-        self._k2 = k2[keep]
+        nkeep = int(np.searchsorted(table.k2, kmax2.max(), side="left"))
+        keep = table.order[:nkeep]
+        kappa, mult, tent = table.kappa[:nkeep], table.mult[:nkeep], table.tent[:nkeep]
+        self._k2 = table.k2[:nkeep]
         power = spec.reshape(C, -1)[:, keep]
         power = power.real ** 2 + power.imag ** 2
 
         # -- spectrum of the binned self pairs: sum_i w_i^2 autocorrelation of
-        # each point's tent weights, supported on offsets {-1, 0, 1}^d
-        offsets = np.array(list(itertools.product((-1, 0, 1), repeat=d)))
-        self_q = np.zeros((C, len(offsets)))
-        for k, o in enumerate(offsets):
-            a = np.prod(np.where(o == 0, (1.0 - frac) ** 2 + frac ** 2, frac * (1.0 - frac)), axis=1)
-            self_q[:, k] = np.bincount(counts, weights=wall ** 2 * a, minlength=C)
-        self_spec = np.einsum("co,of->cf", self_q, np.cos(np.einsum("od,fd->of", offsets, kappa)))
+        # each point's tent weights, supported on offsets {-1, 0, 1}^d.  Its value
+        # at an offset depends only on the set s of axes where the offset is not 0,
+        # and the cosines of the offsets with that set sum to prod_{j in s} 2 cos kappa_j
+        self_basis = np.ones((1 << d, nkeep))
+        for pattern, bits in enumerate(itertools.product((0, 1), repeat=d)):
+            for j in range(d):
+                if bits[j]:
+                    self_basis[pattern] *= table.two_cos[:nkeep, j]
+        self_spec = self_sums @ self_basis
         self.kappa = kappa
         self.mult = mult
         # off-diagonal spectrum, with the 1/(grid volume) of Parseval folded in
@@ -268,10 +351,8 @@ class BinnedSums:
         # for each of the two points.  Dividing it out removes the O(delta^2)
         # binning bias of every off-diagonal sum (the self pairs were already
         # removed exactly).
-        half = 0.5 * kappa
-        tent = np.prod(np.where(half == 0, 1.0, np.sin(half) / np.where(half == 0, 1.0, half)), axis=1) ** 4
         self.pt = (power - self_spec) * (mult / ntot / tent) / np.prod(delta, axis=1)[:, None]
-        self.nfreq = int(keep.size)
+        self.nfreq = nkeep
         self._pairs = [(j, k) for j in range(d) for k in range(j, d)]
         self._mono2 = np.stack([kappa[:, j] * kappa[:, k] for j, k in self._pairs], axis=1)
         self._mono2T = np.ascontiguousarray(self._mono2.T)
@@ -289,25 +370,24 @@ class BinnedSums:
             return self.nfreq
         return int(np.searchsorted(self._k2, 80.0 / lam, side="right"))
 
-    def _quadratic(self, cells, S, nf=None) -> np.ndarray:
-        """w'Sw at the first ``nf`` kept frequencies (all by default),
+    def _quadratic(self, cells, S, nf=None, scale=1.0) -> np.ndarray:
+        """``scale`` w'Sw at the first ``nf`` kept frequencies (all by default),
         w = kappa / delta of the row's cell: (b, nf)."""
         Su = S / (self.delta[cells][:, :, None] * self.delta[cells][:, None, :])
-        coef = np.stack([Su[:, j, k] * (1.0 if j == k else 2.0) for j, k in self._pairs], axis=1)
-        if nf is not None:
-            return coef @ self._mono2T[:, :nf]
+        coef = np.stack([Su[:, j, k] * (scale if j == k else 2.0 * scale) for j, k in self._pairs], axis=1)
         # one matrix product (b, p) x (p, nf): the output has b x nf entries, far
         # from the tiny products whose thread wake-up dominates; einsum's loop over
         # the short axis p took 20 x longer (5.7 vs 0.28 ms at b = 27, nf = 36,720)
-        return coef @ self._mono2T
+        return coef @ (self._mono2T if nf is None else self._mono2T[:, :nf])
 
     def half_exp(self, cells, S, nf=None) -> np.ndarray:
         """exp(-w'Sw/2), (b, nf)."""
-        q = self._quadratic(cells, S, nf)
+        # -1/2 folded into the coefficients (exact: a power of two), so the
+        # quadratic form costs one pass less
+        q = self._quadratic(cells, S, nf, scale=-0.5)
         # exp(-150) floor: products of exponentials below it would be subnormal
         # numbers, which the CPU handles a hundred times slower, for no accuracy
-        np.minimum(q, _Q_CAP, out=q)
-        q *= -0.5
+        np.maximum(q, -0.5 * _Q_CAP, out=q)
         return np.exp(q, out=q)
 
     # -- the interface shared with ExactSums -------------------------------
@@ -328,29 +408,28 @@ class BinnedSums:
         return out
 
     def _gauss_chunk(self, cells, H, terms, G):
-        # every term is a product E_H^a E_G^b: it is below e^-40 wherever the
-        # factor with the narrowest spectrum is
-        nf = 0
-        if any(a > 0 for a, _ in terms):
-            nf = max(nf, self._cutoff(cells, H))
-        if G is not None and any(a == 0 for a, _ in terms):
-            nf = max(nf, self._cutoff(cells, G))
-        nf = max(nf, 1)
-        EH = self.half_exp(cells, H, nf)
-        P = self.pt[cells[0]][None, :nf] if np.all(cells == cells[0]) else self.pt[cells, :nf]
-        EG = self.half_exp(cells, G, nf) if G is not None else None
+        # term (a, b) is the spectrum of phi_{aH + bG}: beyond the cutoff of that
+        # matrix it is below e^-40 (see _cutoff), so each term reads its own prefix
+        # of the frequencies (LSCV's phi_{2H} term half as many as its phi_H term)
+        cuts = [max(1, self._cutoff(cells, a * H + (b * G if b else 0.0))) for a, b in terms]
+        nf_h = max([c for c, (a, _) in zip(cuts, terms) if a > 0], default=0)
+        nf_g = max([c for c, (_, b) in zip(cuts, terms) if b > 0], default=0)
+        nf = max(cuts)
+        EH = self.half_exp(cells, H, nf_h) if nf_h else None
+        EG = self.half_exp(cells, G, nf_g) if nf_g else None
+        single = bool(np.all(cells == cells[0]))
         out = np.empty((len(terms), len(cells)))
-        for t, (a, b) in enumerate(terms):
-            if a == 0:
-                E = EG ** b
+        for t, ((a, b), k) in enumerate(zip(terms, cuts)):
+            E = None
+            if a:
+                E = EH[:, :k] if a == 1 else EH[:, :k] ** a
+            if b:
+                F = EG[:, :k] if b == 1 else EG[:, :k] ** b
+                E = F if E is None else E * F
+            if single:
+                out[t] = E @ self.pt[cells[0], :k]   # one matrix-vector product (rows of one cell)
             else:
-                E = EH if a == 1 else EH ** a
-                if b:
-                    E = E * (EG ** b if b != 1 else EG)
-            if P.shape[0] == 1:
-                out[t] = E @ P[0]          # one matrix-vector product (rows of one cell)
-            else:
-                out[t] = np.einsum("bf,bf->b", P, E)
+                out[t] = np.einsum("bf,bf->b", self.pt[cells, :k], E)
         return out
 
     def _monomial(self, r):

@@ -333,6 +333,10 @@ def run_selector(method: str, prep: Prepared, parametrization: str, *, binned=No
 
     Returns a list of dicts with keys ``H`` (data coordinates), ``criterion``
     (in data coordinates), ``converged``, ``at_edge``, ``details``.
+
+    Long because it is the one driver of every criterion for a block of cells:
+    starts, the vectorised Newton search, keeping the best start per cell and
+    the edge checks share the same per-cell arrays.
     """
     d = prep.d
     C = prep.cells

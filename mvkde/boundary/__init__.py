@@ -27,10 +27,9 @@ import numpy as np
 
 from ..errors import InputError, check_choice
 from .mask import MaskRenormalization, in_mask, parse_mask
-from .methods import (BetaKernel, GammaKernel, KernelRenormalization, LinearBoundaryKernel,
-                      NoCorrection, PointwiseRenormalization, Reflection, Transformation,
-                      bounded_axes, forward_transform, inside_box, inverse_transform,
-                      modified_gamma_shape)
+from .asymmetric import BetaKernel, GammaKernel, modified_gamma_shape
+from .methods import (KernelRenormalization, LinearBoundaryKernel, NoCorrection, PointwiseRenormalization,
+                      Reflection, Transformation, bounded_axes, forward_transform, inside_box, inverse_transform)
 from .support import check_inside, has_bounds, outside_rows, parse_bounds
 
 METHODS = {

@@ -14,10 +14,11 @@ import math
 
 import numpy as np
 
+from ..bandwidth import BandwidthMatrix, BandwidthResult
 from ..errors import InputError
 from ..support import PointMass as Declaration
 
-__all__ = ["PointMassPart", "declare", "split"]
+__all__ = ["PointMassPart", "declare", "split", "Mixture", "EmptyModel", "no_bandwidth"]
 
 
 class PointMassPart:
@@ -76,5 +77,56 @@ def split(declaration: Declaration | None, values, weights) -> PointMassPart | N
     if declaration is None:
         return None
     rows = values[:, declaration.index] <= declaration.threshold
-    w = np.full(values.shape[0], 1.0 / values.shape[0]) if weights is None else weights
-    return PointMassPart(declaration, rows, float(w[rows].sum()))
+    probability = float(rows.sum()) / values.shape[0] if weights is None else float(weights[rows].sum())
+    return PointMassPart(declaration, rows, probability)
+
+
+class Mixture:
+    """(1 - p) x one estimate + p x another, on the same variables: a marginal that drops a point mass."""
+
+    def __init__(self, continuous, on_mass, p: float):
+        self.parts = [(1.0 - p, continuous)] + ([(p, on_mass)] if on_mass is not None and p > 0 else [])
+        self.attrs = {"boundary": continuous.boundary, "mixture_weights": ", ".join(f"{w:.6g}" for w, _ in self.parts)}
+
+    def density(self, pts, log=False):
+        values = sum(w * est.pdf(pts) for w, est in self.parts)
+        if log:
+            with np.errstate(divide="ignore"):
+                return np.log(values), None
+        return values, None
+
+    def grid(self, axes):
+        limits = [(a[0], a[-1]) for a in axes]
+        return sum(w * est.grid([len(a) for a in axes], limits).values for w, est in self.parts), None
+
+    def sample(self, n, rng):
+        counts = rng.multinomial(n, [w for w, _ in self.parts])
+        draws = [est.sample(k, rng) for (_, est), k in zip(self.parts, counts) if k]
+        out = np.concatenate(draws) if draws else np.empty((0, self.parts[0][1].d))
+        return out[rng.permutation(len(out))]
+
+
+def no_bandwidth(d: int) -> BandwidthResult:
+    """The bandwidth of an empty continuous part (every value at the point mass)."""
+    nan = np.full((d, d), np.nan)
+    return BandwidthResult(BandwidthMatrix(nan, nan), "none: every value is at the point mass", "full")
+
+
+class EmptyModel:
+    """The continuous part when every value lies at the point mass: zero density."""
+
+    attrs = {"boundary": "none", "continuous_part": "empty: every value is at the point mass"}
+
+    def __init__(self, d: int):
+        self.d = d
+
+    def density(self, pts, log=False):
+        return np.full(pts.shape[0], -np.inf if log else 0.0), None
+
+    def grid(self, axes):
+        return np.zeros([len(a) for a in axes]), None
+
+    def sample(self, n, rng):
+        if n:
+            raise InputError("the continuous part is empty (every value is at the point mass): nothing to draw")
+        return np.empty((0, self.d))

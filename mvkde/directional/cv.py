@@ -47,7 +47,17 @@ class PairTerms:
     cosines of angle differences (one (n, n) matrix per circular variable), inner
     products of unit vectors (sphere) and products of linear differences
     ``(x_ia - x_ja)(x_ib - x_jb)`` for a <= b, so that a new H costs a weighted sum
-    of matrices instead of a triangular solve per pair."""
+    of matrices instead of a triangular solve per pair.
+
+    Parameters
+    ----------
+    theta : array_like, shape (n, c), optional
+        Angles in radians of the circular variables.
+    units : ndarray, shape (n, 3), optional
+        Unit vectors of a location on the sphere.
+    lin : array_like, shape (n, q), optional
+        Values of the linear variables.
+    """
 
     def __init__(self, theta=None, units=None, lin=None):
         mats = [a for a in (theta, units, lin) if a is not None and np.size(a)]
@@ -65,7 +75,20 @@ class PairTerms:
                 self.products[a, b] = da * db
 
     def quadratic(self, Hinv, out):
-        """Add -(X_i - X_j)' H^{-1} (X_i - X_j) / 2 for every pair to ``out`` (in place)."""
+        """Add -(X_i - X_j)' H^{-1} (X_i - X_j) / 2 for every pair to ``out`` (in place).
+
+        Parameters
+        ----------
+        Hinv : ndarray, shape (q, q)
+            Inverse of the linear block's bandwidth matrix.
+        out : ndarray, shape (n, n)
+            Accumulator, modified in place.
+
+        Returns
+        -------
+        ndarray
+            ``out``.
+        """
         tmp = np.empty_like(out)
         for (a, b), p in self.products.items():
             np.multiply(p, -0.5 * (Hinv[a, b] if a == b else 2.0 * Hinv[a, b]), out=tmp)
@@ -86,7 +109,27 @@ def _row_logsumexp(a: np.ndarray) -> np.ndarray:
 
 @dataclass
 class CVResult:
-    """Concentrations and linear bandwidth matrix chosen by a cross-validation criterion."""
+    """Concentrations and linear bandwidth matrix chosen by a cross-validation criterion.
+
+    Parameters
+    ----------
+    kappas : ndarray, shape (c,)
+        von Mises concentration per circular variable.
+    kappa_sphere : float or None
+        The spherical location's vMF concentration, if any.
+    H_lin : ndarray, shape (q, q)
+        Gaussian bandwidth matrix of the linear block.
+    criterion : float
+        The criterion at the optimum (negative log-likelihood for "mlcv").
+    converged : bool
+        Whether the optimiser reported success.
+    at_edge : bool
+        Whether the optimum lies on the edge of the search region.
+    n_used : int
+        Sample size after subsampling.
+    evaluations : int
+        Number of criterion evaluations.
+    """
 
     kappas: np.ndarray          # one per circular variable
     kappa_sphere: float | None  # the spherical location's concentration, if any
@@ -110,6 +153,10 @@ def cross_validate(criterion, theta=None, units=None, lin=None, weights=None, *,
     Mises-Fisher concentration (a location on S^2) and a Gaussian bandwidth matrix
     for the linear variables, for the product kernel of all of them.
 
+    Long because the objective and its parameter unpacking are closures over the
+    pair terms computed once at the top (cosines, inner products, products of
+    linear differences): split apart, each piece would pass them all around.
+
     ``criterion`` is ``"mlcv"`` -- maximise the leave-one-out log-likelihood
     sum_i w_i log f_{-i}(X_i) (Hall, Watson & Cabrera 1987, for the circular
     and spherical kernels; Habbema, Hermans & van den Broek 1974) -- or
@@ -124,12 +171,32 @@ def cross_validate(criterion, theta=None, units=None, lin=None, weights=None, *,
     estimate with weights renormalised over j != i.  Exact O(n^2) sums; a sample
     larger than ``max_n`` is subsampled (seeded) for the selection.
 
-    ``theta``: (n, c) angles in radians; ``units``: (n, 3) unit vectors; ``lin``:
-    (n, q) linear values.  Optimised by Nelder-Mead over log-concentrations and the
+    Optimised by Nelder-Mead over log-concentrations and the
     Cholesky factor of H ('full'), its log-diagonal ('diagonal') or a log-multiple of
     the normal-scale matrix ('scalar'), each within a bounded region around the
     rules of thumb; ``at_edge`` flags an optimum on its edge (rounded or tied data
     drive cross-validation to no smoothing).
+
+    Parameters
+    ----------
+    criterion : {'mlcv', 'lscv'}
+    theta : array_like, shape (n, c), optional
+        Angles in radians.
+    units : ndarray, shape (n, 3), optional
+        Unit vectors.
+    lin : array_like, shape (n, q), optional
+        Linear values.
+    weights : array_like, shape (n,), optional
+        Sample weights (renormalised); equal when None.
+    parametrization : {'full', 'diagonal', 'scalar'}
+    max_n : int
+        Largest sample used as it is.
+    seed : int
+        Seed of the subsample.
+
+    Returns
+    -------
+    CVResult
     """
     arrays = [a for a in (theta, units, lin) if a is not None and np.size(a)]
     n = arrays[0].shape[0]
@@ -243,27 +310,93 @@ def cross_validate(criterion, theta=None, units=None, lin=None, weights=None, *,
 
 def likelihood_cv(theta, lin, weights=None, *, max_n=2000, seed=0):
     """Joint likelihood CV for circular x linear Gaussian product kernels.
-    Returns (kappas, H_lin, criterion, converged); see :func:`cross_validate`."""
+    Returns (kappas, H_lin, criterion, converged); see :func:`cross_validate`.
+
+    Parameters
+    ----------
+    theta : array_like, shape (n, c)
+        Angles in radians.
+    lin : array_like, shape (n, q)
+        Linear values.
+    weights : array_like, shape (n,), optional
+    max_n, seed : int
+        As for :func:`cross_validate`.
+
+    Returns
+    -------
+    kappas : ndarray, shape (c,)
+    H_lin : ndarray, shape (q, q)
+    criterion : float
+    converged : bool
+    """
     r = cross_validate("mlcv", theta=theta, lin=lin, weights=weights, max_n=max_n, seed=seed)
     return r.kappas, r.H_lin, r.criterion, r.converged
 
 
 def lscv_mixed(theta, lin, weights=None, *, max_n=2000, seed=0):
     """Joint least-squares CV for circular x linear Gaussian product kernels.
-    Returns (kappas, H_lin, criterion, converged); see :func:`cross_validate`."""
+    Returns (kappas, H_lin, criterion, converged); see :func:`cross_validate`.
+
+    Parameters
+    ----------
+    theta : array_like, shape (n, c)
+        Angles in radians.
+    lin : array_like, shape (n, q)
+        Linear values.
+    weights : array_like, shape (n,), optional
+    max_n, seed : int
+        As for :func:`cross_validate`.
+
+    Returns
+    -------
+    kappas : ndarray, shape (c,)
+    H_lin : ndarray, shape (q, q)
+    criterion : float
+    converged : bool
+    """
     r = cross_validate("lscv", theta=theta, lin=lin, weights=weights, max_n=max_n, seed=seed)
     return r.kappas, r.H_lin, r.criterion, r.converged
 
 
 def lscv_circular(theta, weights=None, *, max_n=3000, seed=0):
-    """Least-squares CV concentration for one circular variable: (kappa, criterion, converged)."""
+    """Least-squares CV concentration for one circular variable: (kappa, criterion, converged).
+
+    Parameters
+    ----------
+    theta : array_like, shape (n,)
+        Angles in radians.
+    weights : array_like, shape (n,), optional
+    max_n, seed : int
+        As for :func:`cross_validate`.
+
+    Returns
+    -------
+    kappa : float
+    criterion : float
+    converged : bool
+    """
     r = cross_validate("lscv", theta=np.asarray(theta, float).reshape(-1, 1), weights=weights,
                        max_n=max_n, seed=seed)
     return float(r.kappas[0]), r.criterion, r.converged
 
 
 def likelihood_cv_sphere(units, weights=None, *, max_n=3000, seed=0):
-    """Likelihood CV vMF concentration on S^2: (kappa, criterion, converged)."""
+    """Likelihood CV vMF concentration on S^2: (kappa, criterion, converged).
+
+    Parameters
+    ----------
+    units : ndarray, shape (n, 3)
+        Unit vectors.
+    weights : array_like, shape (n,), optional
+    max_n, seed : int
+        As for :func:`cross_validate`.
+
+    Returns
+    -------
+    kappa : float
+    criterion : float
+    converged : bool
+    """
     r = cross_validate("mlcv", units=units, weights=weights, max_n=max_n, seed=seed)
     return float(r.kappa_sphere), r.criterion, r.converged
 

@@ -51,19 +51,55 @@ EARTH_RADIUS_KM = 6371.0088  # IUGG mean radius
 # ---------------------------------------------------------------------------
 
 def log_i0(kappa):
-    """log I0(kappa), stable for large kappa (i0e = I0 e^{-kappa})."""
+    """log I0(kappa), stable for large kappa (i0e = I0 e^{-kappa}).
+
+    Parameters
+    ----------
+    kappa : float or array_like of float
+        Concentration (>= 0).
+
+    Returns
+    -------
+    ndarray
+    """
     kappa = np.asarray(kappa, dtype=float)
     return np.log(special.i0e(kappa)) + kappa
 
 
 def von_mises(theta, kappa):
-    """von Mises density in angle units (matches scipy.stats.vonmises.pdf)."""
+    """von Mises density in angle units (matches scipy.stats.vonmises.pdf).
+
+    exp(kappa cos theta) / (2 pi I0(kappa)), the mean direction at 0.
+
+    Parameters
+    ----------
+    theta : array_like of float
+        Angles in radians from the mean direction.
+    kappa : float or array_like of float
+        Concentration (>= 0).
+
+    Returns
+    -------
+    ndarray
+        Density per radian, shape of ``theta``.
+    """
     theta = np.asarray(theta, dtype=float)
     return np.exp(kappa * (np.cos(theta) - 1.0)) / (2.0 * math.pi * special.i0e(kappa))
 
 
 def log_vmf_const(kappa):
-    """log of kappa / (4 pi sinh kappa), stable for large kappa."""
+    """log of kappa / (4 pi sinh kappa), stable for large kappa.
+
+    Parameters
+    ----------
+    kappa : float or array_like of float
+        Concentration (>= 0).
+        Below 1e-8 the uniform limit -log(4 pi) is returned.
+
+    Returns
+    -------
+    ndarray
+    """
     kappa = np.asarray(kappa, dtype=float)
     small = kappa < 1e-8
     k = np.where(small, 1.0, kappa)
@@ -73,17 +109,53 @@ def log_vmf_const(kappa):
 
 
 def vmf(cos_angle, kappa):
-    """von Mises-Fisher density on S^2 (per steradian) at cosine of the angle to the mean."""
+    """von Mises-Fisher density on S^2 (per steradian) at cosine of the angle to the mean.
+
+    Parameters
+    ----------
+    cos_angle : array_like of float
+        mu'x, the cosine of the angle between the point and the mean.
+    kappa : float or array_like of float
+        Concentration (>= 0).
+
+    Returns
+    -------
+    ndarray
+        kappa / (4 pi sinh kappa) exp(kappa cos_angle).
+    """
     c = np.asarray(cos_angle, dtype=float)
     return np.exp(log_vmf_const(kappa) + kappa * c)
 
 
 def to_angle(x, period):
+    """Angles 2 pi x / period (radians) of a circular variable.
+
+    Parameters
+    ----------
+    x : array_like of float
+        Values in the variable's units.
+    period : float
+
+    Returns
+    -------
+    ndarray
+    """
     return 2.0 * math.pi * np.asarray(x, dtype=float) / period
 
 
 def lonlat_to_unit(lat_deg, lon_deg) -> np.ndarray:
-    """Unit vectors (..., 3) from latitude and longitude in degrees."""
+    """Unit vectors (..., 3) from latitude and longitude in degrees.
+
+    Parameters
+    ----------
+    lat_deg, lon_deg : array_like of float
+        Latitudes and longitudes in degrees (broadcast together).
+
+    Returns
+    -------
+    ndarray, shape (..., 3)
+        (cos lat cos lon, cos lat sin lon, sin lat).
+    """
     lat = np.deg2rad(np.asarray(lat_deg, dtype=float))
     lon = np.deg2rad(np.asarray(lon_deg, dtype=float))
     c = np.cos(lat)
@@ -91,11 +163,38 @@ def lonlat_to_unit(lat_deg, lon_deg) -> np.ndarray:
 
 
 def equivalent_variance(kappa, period):
-    """(period / 2 pi)^2 / kappa: the small-angle variance of the von Mises kernel."""
+    """(period / 2 pi)^2 / kappa: the small-angle variance of the von Mises kernel.
+
+    Parameters
+    ----------
+    kappa : float or ndarray
+        Concentration.
+    period : float
+        Period of the variable.
+
+    Returns
+    -------
+    float or ndarray
+        Variance in the variable's units squared.
+    """
     return (period / (2.0 * math.pi)) ** 2 / kappa
 
 
 def kappa_from_variance(variance, period):
+    """Concentration whose equivalent variance is ``variance``: (period / 2 pi)^2 / variance.
+
+    The inverse of :func:`equivalent_variance`.
+
+    Parameters
+    ----------
+    variance : float or ndarray
+        Equivalent variance in the variable's units squared.
+    period : float
+
+    Returns
+    -------
+    float or ndarray
+    """
     return (period / (2.0 * math.pi)) ** 2 / variance
 
 
@@ -123,7 +222,24 @@ def _a1_inverse(r):
 
 
 def von_mises_mle(theta, weights=None) -> tuple[float, float]:
-    """(mean direction, concentration) maximum-likelihood estimates."""
+    """(mean direction, concentration) maximum-likelihood estimates.
+
+    The concentration solves I1(k)/I0(k) = R-bar, the mean resultant length
+    (Fisher 1993, Sec. 4.5.5 approximation refined by Newton steps).
+
+    Parameters
+    ----------
+    theta : array_like of float, shape (n,)
+        Angles in radians.
+    weights : ndarray, shape (n,), optional
+        Weights summing to 1; equal weights when None.
+
+    Returns
+    -------
+    mean : float
+        Mean direction in radians, in (-pi, pi].
+    kappa : float
+    """
     w = np.full(len(theta), 1.0 / len(theta)) if weights is None else weights
     c = np.sum(w * np.cos(theta))
     s = np.sum(w * np.sin(theta))
@@ -131,7 +247,19 @@ def von_mises_mle(theta, weights=None) -> tuple[float, float]:
 
 
 def vmf_mle_kappa(units: np.ndarray, weights=None) -> float:
-    """Concentration MLE on S^2: solve coth k - 1/k = R-bar."""
+    """Concentration MLE on S^2: solve coth k - 1/k = R-bar.
+
+    Parameters
+    ----------
+    units : ndarray, shape (n, 3)
+        Unit vectors.
+    weights : ndarray, shape (n,), optional
+        Weights summing to 1; equal weights when None.
+
+    Returns
+    -------
+    float
+    """
     w = np.full(len(units), 1.0 / len(units)) if weights is None else weights
     rbar = float(np.linalg.norm(w @ units))
     rbar = min(max(rbar, 1e-9), 1 - 1e-12)
@@ -144,7 +272,26 @@ def vmf_mle_kappa(units: np.ndarray, weights=None) -> float:
 # ---------------------------------------------------------------------------
 
 def taylor_rule(theta, weights=None) -> float:
-    """Taylor (2008) plug-in concentration nu for the von Mises kernel."""
+    """Taylor (2008) plug-in concentration nu for the von Mises kernel.
+
+    nu = [3 n k^2 I2(2k) / (4 pi^{1/2} I0(k)^2)]^{2/5}, k the von Mises MLE
+    and n the effective sample size (see the module docstring).
+
+    Parameters
+    ----------
+    theta : array_like of float, shape (n,)
+        Angles in radians.
+    weights : ndarray, shape (n,), optional
+        Weights summing to 1; equal weights when None.
+
+    Returns
+    -------
+    float
+
+    References
+    ----------
+    Taylor (2008). Comput. Statist. Data Anal. 52, 3493-3500.
+    """
     n = len(theta) if weights is None else 1.0 / np.sum(weights ** 2)
     _, k = von_mises_mle(theta, weights)
     # I2(2k)/I0(k)^2 with exponential scaling: e^{2k} cancels
@@ -153,7 +300,26 @@ def taylor_rule(theta, weights=None) -> float:
 
 
 def circle_rule_h(theta, weights=None) -> float:
-    """Garcia-Portugues (2013) circle rule h; concentration 1/h^2."""
+    """Garcia-Portugues (2013) circle rule h; concentration 1/h^2.
+
+    h = [4 pi^{1/2} I0(k)^2 / (k n (2 I1(2k) + 3k I2(2k)))]^{1/5}, k the von
+    Mises MLE and n the effective sample size.
+
+    Parameters
+    ----------
+    theta : array_like of float, shape (n,)
+        Angles in radians.
+    weights : ndarray, shape (n,), optional
+        Weights summing to 1; equal weights when None.
+
+    Returns
+    -------
+    float
+
+    References
+    ----------
+    Garcia-Portugues (2013). Electron. J. Statist. 7, 1655-1685.
+    """
     n = len(theta) if weights is None else 1.0 / np.sum(weights ** 2)
     _, k = von_mises_mle(theta, weights)
     num = 4 * math.sqrt(math.pi) * special.i0e(k) ** 2
@@ -162,13 +328,41 @@ def circle_rule_h(theta, weights=None) -> float:
 
 
 def sphere_rule_h(units, weights=None) -> float:
-    """Garcia-Portugues (2013) rule on S^2; concentration 1/h^2."""
+    """Garcia-Portugues (2013) rule on S^2; concentration 1/h^2.
+
+    Parameters
+    ----------
+    units : ndarray, shape (n, 3)
+        Unit vectors.
+    weights : ndarray, shape (n,), optional
+        Weights summing to 1; equal weights when None.
+
+    Returns
+    -------
+    float
+        h of :func:`sphere_rule_h_from_kappa` at the vMF MLE and the effective size.
+    """
     n = len(units) if weights is None else 1.0 / np.sum(weights ** 2)
     k = vmf_mle_kappa(units, weights)
     return sphere_rule_h_from_kappa(k, n)
 
 
 def sphere_rule_h_from_kappa(k: float, n: float) -> float:
+    """Garcia-Portugues (2013) rule on S^2 from a concentration: h, with kappa = 1/h^2.
+
+    h = [8 sinh^2 k / (k n ((1 + 4k^2) sinh 2k - 2k cosh 2k))]^{1/6}.
+
+    Parameters
+    ----------
+    k : float
+        von Mises(-Fisher) maximum-likelihood concentration of the sample.
+    n : float
+        (Effective) sample size.
+
+    Returns
+    -------
+    float
+    """
     # 8 sinh^2 k / (k n ((1 + 4k^2) sinh 2k - 2k cosh 2k)); divide through by e^{2k}
     e = math.exp(-2 * k)
     sinh2 = ((1 - e) / 2) ** 2               # sinh^2 k e^{-2k}
@@ -178,23 +372,80 @@ def sphere_rule_h_from_kappa(k: float, n: float) -> float:
 
 
 def circle_rule_h_from_kappa(k: float, n: float) -> float:
+    """Garcia-Portugues (2013) circle rule h from a concentration (see :func:`circle_rule_h`).
+
+    Parameters
+    ----------
+    k : float
+        von Mises(-Fisher) maximum-likelihood concentration of the sample.
+    n : float
+        (Effective) sample size.
+
+    Returns
+    -------
+    float
+    """
     num = 4 * math.sqrt(math.pi) * special.i0e(k) ** 2
     den = k * n * (2 * special.ive(1, 2 * k) + 3 * k * special.ive(2, 2 * k))
     return float((num / den) ** 0.2)
 
 
 def taylor_rule_from_kappa(k: float, n: float) -> float:
+    """Taylor (2008) concentration nu from a concentration (see :func:`taylor_rule`).
+
+    Parameters
+    ----------
+    k : float
+        von Mises(-Fisher) maximum-likelihood concentration of the sample.
+    n : float
+        (Effective) sample size.
+
+    Returns
+    -------
+    float
+    """
     ratio = special.ive(2, 2 * k) / special.i0e(k) ** 2
     return float((3 * n * k * k * ratio / (4 * math.sqrt(math.pi))) ** 0.4)
 
 
 def log_vmf_kernel(k, dot):
     """log vMF_k on S^2 at points whose unit vectors have inner product ``dot`` (per steradian):
-    k e^{k (dot - 1)} / (2 pi (1 - e^{-2k})), stable for any k > 0."""
+    k e^{k (dot - 1)} / (2 pi (1 - e^{-2k})), stable for any k > 0.
+
+    Parameters
+    ----------
+    k : float
+        Concentration (> 0).
+    dot : float or ndarray
+        Inner products of unit vectors.
+
+    Returns
+    -------
+    float or ndarray
+        Shape of ``dot``.
+    """
     return k * (dot - 1.0) + math.log(k) - math.log(2.0 * math.pi) - math.log(-math.expm1(-2.0 * k))
 
 
 def check_period(period, name) -> float:
+    """The period of variable ``name`` as a float, refused unless finite and positive.
+
+    Parameters
+    ----------
+    period : object
+        The declared period.
+    name : str
+        The variable, for the message.
+
+    Returns
+    -------
+    float
+
+    Raises
+    ------
+    InputError
+        If ``period`` is not a finite positive number.
+    """
     try:
         p = float(period)
     except (TypeError, ValueError):
@@ -205,7 +456,19 @@ def check_period(period, name) -> float:
 
 
 def cell_areas_km2(lat_edges_deg, lon_edges_deg, radius_km=EARTH_RADIUS_KM) -> np.ndarray:
-    """Areas (km^2) of lat/lon cells given their edges: R^2 dlon (sin lat2 - sin lat1)."""
+    """Areas (km^2) of lat/lon cells given their edges: R^2 dlon (sin lat2 - sin lat1).
+
+    Parameters
+    ----------
+    lat_edges_deg, lon_edges_deg : array_like of float
+        Cell edges in degrees.
+    radius_km : float
+        Radius of the sphere (the Earth's mean radius by default).
+
+    Returns
+    -------
+    ndarray, shape (len(lat_edges_deg) - 1, len(lon_edges_deg) - 1)
+    """
     lat = np.deg2rad(np.asarray(lat_edges_deg, dtype=float))
     lon = np.deg2rad(np.asarray(lon_edges_deg, dtype=float))
     band = np.abs(np.diff(np.sin(lat)))
@@ -222,6 +485,17 @@ def node_areas_km2(lat_deg, lon_deg, radius_km=EARTH_RADIUS_KM) -> np.ndarray:
     (lon_hi - lon_lo)`` in radians.  Summed over a grid spanning the globe
     (latitudes -90..90, longitudes -180..180) they give 4 pi R^2 exactly; the
     density per km^2 times these areas sums to the probability of the grid.
+
+    Parameters
+    ----------
+    lat_deg, lon_deg : array_like of float
+        Increasing grid nodes in degrees.
+    radius_km : float
+        Radius of the sphere (the Earth's mean radius by default).
+
+    Returns
+    -------
+    ndarray, shape (len(lat_deg), len(lon_deg))
     """
     lat = np.asarray(lat_deg, dtype=float)
     lon = np.asarray(lon_deg, dtype=float)
@@ -231,7 +505,16 @@ def node_areas_km2(lat_deg, lon_deg, radius_km=EARTH_RADIUS_KM) -> np.ndarray:
 
 
 def unit_to_latlon(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Latitude and longitude (degrees, longitude in [-180, 180)) of unit vectors (..., 3)."""
+    """Latitude and longitude (degrees, longitude in [-180, 180)) of unit vectors (..., 3).
+
+    Parameters
+    ----------
+    u : ndarray, shape (..., 3)
+
+    Returns
+    -------
+    lat, lon : ndarray, shape (...)
+    """
     lat = np.rad2deg(np.arcsin(np.clip(u[..., 2], -1.0, 1.0)))
     lon = np.rad2deg(np.arctan2(u[..., 1], u[..., 0]))
     lon = np.where(lon >= 180.0, lon - 360.0, lon)
@@ -245,6 +528,19 @@ def sample_vmf(means: np.ndarray, kappa: float, rng) -> np.ndarray:
     e^{kappa w} on [-1, 1], inverted in closed form: w = 1 + log(u + (1 - u) e^{-2 kappa}) / kappa
     (Wood 1994, Commun. Statist. Simul. Comput. 23, 157-164, the p = 3 case); the
     tangent direction is uniform.
+
+    Parameters
+    ----------
+    means : ndarray, shape (m, 3)
+        Unit mean vectors.
+    kappa : float
+        Concentration (> 0).
+    rng : numpy.random.Generator
+
+    Returns
+    -------
+    ndarray, shape (m, 3)
+        Unit vectors.
     """
     m = means.shape[0]
     u = rng.random(m)

@@ -21,6 +21,10 @@ the estimate factorises as ``D diag(w) B'``, D the directional kernels at the
 directional nodes and B the linear kernels at the linear nodes, so a grid is
 one matrix product per pair of chunks.
 
+Long because the choice of the smoothing, the model (evaluation, grids and
+sampling over both blocks) and its fit live together, each public function
+with its numpydoc parameters.
+
 References
 ----------
 Hall, P., Watson, G. S. & Cabrera, J. (1987). Kernel density estimation with
@@ -42,8 +46,10 @@ import numpy as np
 from scipy import special
 
 from . import cv as _cv
+from . import fast_cv as _fast_cv
 from . import kernels as _dir
 from . import selectors as _sel
+from .spec import DirectionalSpec
 from ..bandwidth import SELECTORS, BandwidthMatrix, BandwidthResult, kernel_rescaling, select
 from ..boundary import BOUNDARY_METHODS, check_method, has_bounds
 from ..boundary.methods import axis_reach, fold_into_box, forward_transform, inverse_transform
@@ -59,104 +65,26 @@ DIRECTIONAL_DEFAULT_BOUNDARY = "reflect"
 
 
 # ---------------------------------------------------------------------------
-# the declaration: which variables are circular, which pair is a location
-# ---------------------------------------------------------------------------
-
-@dataclass
-class DirectionalSpec:
-    """Indices of the circular variables (with periods), of the spherical pair and of
-    the linear variables, in the data's column order."""
-
-    periods: list                      # one entry per variable: period or None
-    sphere: tuple | None = None        # (lat index, lon index)
-    circular: list = field(default_factory=list)
-    linear: list = field(default_factory=list)
-
-    @property
-    def directional(self) -> list:
-        out = list(self.circular)
-        if self.sphere is not None:
-            out += list(self.sphere)
-        return sorted(out)
-
-
-def parse(periods, sphere, names, d) -> DirectionalSpec | None:
-    """Validate ``periods`` and ``sphere``; None when every variable is linear."""
-    plist = [None] * d
-    if periods is not None:
-        try:
-            items = list(periods)
-        except TypeError:
-            raise InputError("periods must be a list with one entry (None or a period) per variable") from None
-        if len(items) != d:
-            raise InputError(f"periods has {len(items)} entries but the data have {d} variables "
-                             f"({', '.join(names)}): give None for each linear variable")
-        plist = [None if p is None else _dir.check_period(p, names[j]) for j, p in enumerate(items)]
-    pair = None
-    if sphere is not None:
-        if isinstance(sphere, str) or len(list(sphere)) != 2:
-            raise InputError(f"sphere must name two variables (latitude, longitude), got {sphere!r}")
-        lat, lon = [str(s) for s in sphere]
-        missing = [s for s in (lat, lon) if s not in names]
-        if missing:
-            raise InputError(f"sphere names {', '.join(repr(m) for m in missing)}, not among the variables "
-                             f"{names}: give the latitude and longitude variables' names")
-        if lat == lon:
-            raise InputError(f"sphere must name two different variables, got {lat!r} twice")
-        pair = (names.index(lat), names.index(lon))
-        both = [names[j] for j in pair if plist[j] is not None]
-        if both:
-            raise InputError(f"{', '.join(both)} is part of the spherical location and has a period: "
-                             "drop the period (longitude wraps on the sphere anyway)")
-    if pair is None and all(p is None for p in plist):
-        return None
-    circular = [j for j, p in enumerate(plist) if p is not None]
-    linear = [j for j in range(d) if j not in circular and (pair is None or j not in pair)]
-    return DirectionalSpec(plist, pair, circular, linear)
-
-
-def check_support(spec: DirectionalSpec, values, box, names, point_masses, mask) -> None:
-    """Refuse what a directional estimate cannot honour, before any selection."""
-    for j in spec.directional:
-        lo, hi = box[j]
-        if math.isfinite(lo) or math.isfinite(hi):
-            kind = "circular" if j in spec.circular else "part of the spherical location"
-            raise InputError(f"{names[j]} is {kind} and cannot have bounds: remove its entry in bounds= "
-                             "(use None)")
-    if point_masses is not None and any(point_masses[j] is not None for j in spec.directional
-                                        if j < len(point_masses)):
-        raise InputError("point_masses on a circular or spherical variable is not supported: "
-                         "declare the point mass on a linear variable")
-    if mask is not None:
-        raise InputError("mask= with circular variables or a spherical location is not supported: "
-                         "use bounds= on the linear variables")
-    if spec.sphere is not None:
-        ilat, _ = spec.sphere
-        lat = values[:, ilat]
-        bad = (lat < -90.0) | (lat > 90.0)
-        if bad.any():
-            worst = lat[bad][np.argmax(np.abs(lat[bad]))]
-            raise InputError(f"latitude {names[ilat]} must lie in [-90, 90] degrees: {int(bad.sum())} value(s) "
-                             f"outside (worst {worst:g}); check the order in sphere=(latitude, longitude)")
-
-
-def wrap(values, spec: DirectionalSpec) -> np.ndarray:
-    """Circular variables taken modulo their period into [0, period); longitudes into [-180, 180)."""
-    out = np.array(values, dtype=float, copy=True)
-    for j in spec.circular:
-        out[:, j] = np.mod(out[:, j], spec.periods[j])
-    if spec.sphere is not None:
-        out[:, spec.sphere[1]] = np.mod(out[:, spec.sphere[1]] + 180.0, 360.0) - 180.0
-    return out
-
-
-# ---------------------------------------------------------------------------
 # bandwidths and concentrations
 # ---------------------------------------------------------------------------
 
 @dataclass
 class Smoothing:
-    """Concentrations of the directional factors and the linear block's bandwidth."""
+    """Concentrations of the directional factors and the linear block's bandwidth.
+
+    Parameters
+    ----------
+    kappas : dict
+        Circular column index -> von Mises kappa.
+    kappa_sphere : float or None
+    lin : BandwidthResult or None
+        The linear block's bandwidth (q x q).
+    method : str
+    notes : dict
+        Variable name -> how its smoothing was chosen.
+    criterion, converged, at_edge : float, bool, bool
+        As in :class:`~mvkde.bandwidth.BandwidthResult`.
+    """
 
     kappas: dict                       # circular index -> kappa
     kappa_sphere: float | None
@@ -170,12 +98,32 @@ class Smoothing:
 
 def equivalent_variance_sphere(kappa: float) -> float:
     """(180/pi)^2 / kappa: small-angle variance (degrees^2) of each tangent coordinate of a
-    vMF kernel (the kernel is close to N(0, I/kappa) in radians near its mean)."""
+    vMF kernel (the kernel is close to N(0, I/kappa) in radians near its mean).
+
+    Parameters
+    ----------
+    kappa : float
+
+    Returns
+    -------
+    float
+    """
     return (180.0 / math.pi) ** 2 / kappa
 
 
 def full_matrix(spec: DirectionalSpec, sm: Smoothing, d: int) -> np.ndarray:
-    """The d x d matrix reported as ``H``: equivalent variances on the directional diagonal."""
+    """The d x d matrix reported as ``H``: equivalent variances on the directional diagonal.
+
+    Parameters
+    ----------
+    spec : DirectionalSpec
+    sm : Smoothing
+    d : int
+
+    Returns
+    -------
+    ndarray, shape (d, d)
+    """
     H = np.zeros((d, d))
     for j, k in sm.kappas.items():
         H[j, j] = _dir.equivalent_variance(k, spec.periods[j])
@@ -200,7 +148,20 @@ def _units(values, spec):
 
 
 def from_matrix(H, spec: DirectionalSpec, names, d, parametrization) -> Smoothing:
-    """Read a given d x d matrix: directional diagonal entries are equivalent variances."""
+    """Read a given d x d matrix: directional diagonal entries are equivalent variances.
+
+    Parameters
+    ----------
+    H : array_like, shape (d, d)
+    spec : DirectionalSpec
+    names : list of str
+    d : int
+    parametrization : str
+
+    Returns
+    -------
+    Smoothing
+    """
     try:
         H = np.asarray(H, dtype=float)
     except (TypeError, ValueError):
@@ -250,8 +211,18 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
     the KD-tree likelihood CV; otherwise joint cross-validation of every
     concentration and the linear (Gaussian) H by exact pair sums, transferred to
     another linear kernel by the canonical rescaling.
-    ``lin_values`` are the linear columns the selector sees (transformed for
-    ``boundary="transform"``).
+
+    Parameters
+    ----------
+    method, kernel, form, parametrization : str
+    values, lin_values : ndarray, (n, d) and (n, q)
+        ``lin_values``: the linear columns the selector sees (transformed for ``boundary="transform"``).
+    weights : ndarray, shape (n,), or None
+    spec, names : DirectionalSpec, list of str
+
+    Returns
+    -------
+    Smoothing
     """
 
     q = len(spec.linear)
@@ -265,14 +236,14 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
     alone_circle = method in ("mlcv", "lscv") and len(spec.circular) == 1 and spec.sphere is None and not q
     alone_sphere = method == "mlcv" and not spec.circular and spec.sphere is not None and not q
     if alone_circle:
-        r = _sel.circular_cv(method, theta[:, 0], weights)
+        r = _fast_cv.circular_cv(method, theta[:, 0], weights)
         j = spec.circular[0]
         kappas[j] = r.kappa
         crit, converged, at_edge = r.criterion, r.converged, r.at_edge
         notes[names[j]] = ("likelihood" if method == "mlcv" else "least-squares") + \
             " cross-validation (binned on a periodic lattice, FFT)"
     elif alone_sphere:
-        r = _sel.sphere_likelihood_cv(units, weights)
+        r = _fast_cv.sphere_likelihood_cv(units, weights)
         ks, crit, converged, at_edge = r.kappa, r.criterion, r.converged, r.at_edge
         for j in spec.sphere:
             notes[names[j]] = "likelihood cross-validation (KD-tree neighbours)"
@@ -309,7 +280,7 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
                 ks = 1.0 / _dir.sphere_rule_h_from_kappa(k_mle, n_eff) ** 2
                 label = "Garcia-Portugues (2013) rule of thumb"
             else:
-                r = _sel.sphere_likelihood_cv(units, weights)
+                r = _fast_cv.sphere_likelihood_cv(units, weights)
                 ks, at_edge = r.kappa, r.at_edge
                 label = "likelihood cross-validation (locations alone, KD-tree neighbours)"
             for j in spec.sphere:
@@ -330,7 +301,21 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
 
 class DirectionalModel:
     """Directional factors x the linear block with its boundary method (a 'boundary model'
-    with the interface of :mod:`mvkde.boundary.methods`)."""
+    with the interface of :mod:`mvkde.boundary.methods`).
+
+    Parameters
+    ----------
+    data : ndarray, shape (n, d)
+    weights : ndarray, shape (n,), or None
+    spec : DirectionalSpec
+    sm : Smoothing
+    kernel_name, form : str
+        The linear block's kernel.
+    box : list of (float, float)
+    method : {'none', 'reflect', 'transform'}
+        Boundary method of the linear block.
+    names : list of str
+    """
 
     def __init__(self, data, weights, spec: DirectionalSpec, sm: Smoothing, kernel_name, form, box, method,
                  names):
@@ -476,6 +461,18 @@ class DirectionalModel:
 
     # -- boundary-model interface --------------------------------------------
     def density(self, pts, log=False):
+        """Density (or its log) at points, by chunked direct sums.
+
+        Parameters
+        ----------
+        pts : array_like, shape (m, d)
+        log : bool
+
+        Returns
+        -------
+        values : ndarray, shape (m,)
+        choice : mvkde.engines.EngineChoice
+        """
         pts = np.asarray(pts, dtype=float)
         m = pts.shape[0]
         out = np.empty(m)
@@ -505,6 +502,18 @@ class DirectionalModel:
         return out, self.choice
 
     def grid(self, axes):
+        """Density on the grid ``axes``: one matrix product D diag(w) B' per pair of chunks.
+
+        Parameters
+        ----------
+        axes : list of ndarray
+
+        Returns
+        -------
+        values : ndarray
+            Shape (len(axes[0]), ..., len(axes[-1])).
+        choice : mvkde.engines.EngineChoice
+        """
         spec = self.spec
         dir_idx = spec.directional
         lin_idx = spec.linear
@@ -552,6 +561,17 @@ class DirectionalModel:
         return np.transpose(values, np.argsort(order)), self.choice
 
     def sample(self, n, rng):
+        """Smoothed-bootstrap draws; linear parts folded, mapped back or redrawn by the boundary method.
+
+        Parameters
+        ----------
+        n : int
+        rng : numpy.random.Generator
+
+        Returns
+        -------
+        ndarray, shape (n, d)
+        """
         spec = self.spec
         out = np.empty((n, len(spec.periods)))
         todo = np.arange(n)
@@ -590,6 +610,16 @@ class DirectionalModel:
 
 
 def special_i0e(k):
+    """I0(k) e^{-k} as a float.
+
+    Parameters
+    ----------
+    k : float
+
+    Returns
+    -------
+    float
+    """
     return float(special.i0e(k))
 
 
@@ -612,11 +642,28 @@ def _fold(y, box):
 def fit_model(values, w, names, spec: DirectionalSpec, mk, bandwidth, parametrization, box, boundary):
     """The directional smoothing and model of :func:`mvkde.fit` (data already wrapped and checked).
 
-    Returns ``(model, result, method, concentrations, attrs)``: the
-    :class:`DirectionalModel`, the :class:`~mvkde.bandwidth.BandwidthResult`
-    (H with the circular variables' equivalent variances), the boundary
-    method of the linear block, kappa per directional variable and the
-    attributes that describe the choice.
+    Parameters
+    ----------
+    values : ndarray, shape (n, d)
+    w : ndarray, shape (n,), or None
+    names : list of str
+    spec : DirectionalSpec
+    mk : mvkde.kernels.MultivariateKernel
+        Kernel of the linear block.
+    bandwidth : str, array_like (d, d) or BandwidthResult
+        Selector name or given matrix.
+    parametrization : str
+    box : list of (float, float)
+    boundary : str or None
+
+    Returns
+    -------
+    tuple
+        ``(model, result, method, concentrations, attrs)``: the
+        :class:`DirectionalModel`, the :class:`~mvkde.bandwidth.BandwidthResult`
+        (H with the circular variables' equivalent variances), the boundary
+        method of the linear block, kappa per directional variable and the
+        attributes that describe the choice.
     """
     d = values.shape[1]
     lin_box = [box[j] for j in spec.linear]

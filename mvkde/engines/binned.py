@@ -120,7 +120,8 @@ RESOLVE = 1.0            # start: bins at most one conditional kernel standard d
 ALIAS_FREE = 0.4         # closed-form Gaussian spectrum when bins are at most this wide
 SAFETY = 2.0             # margin on the estimated higher-order error terms
 MAX_LATTICE = 6_000_000  # nodes per cell of the internal lattice (48 MB per array)
-CHUNK = 1 << 17          # data rows binned per pass
+CHUNK = 1 << 15          # data rows per binning step (256 KB temporaries: recycled, not page-faulted)
+BOX_BUDGET = 64 << 20    # bytes of per-term bins held at once for one cell's box
 MAX_ROUNDS = 4           # refinement rounds before giving up (and saying so)
 
 __all__ = ["BinnedInfo", "DEFAULT_TOL", "MAX_DIM", "grid_density", "grid_density_many",
@@ -206,111 +207,208 @@ def _max_weight(n: int, weights) -> float:
 
 
 # ---------------------------------------------------------------------------
-# linear binning, streamed
+# linear binning, streamed in chunks
 # ---------------------------------------------------------------------------
+
+class _Fractions:
+    """In-bin fractions of one chunk of data: ``t[j]`` (rows,) per axis, and
+    ``u[j] = t_j (1 - t_j)`` computed once for every factor that needs it."""
+
+    __slots__ = ("t", "_u")
+
+    def __init__(self, t):
+        self.t = t
+        self._u = [None] * len(t)
+
+    def u(self, j):
+        if self._u[j] is None:
+            self._u[j] = self.t[j] * (1.0 - self.t[j])
+        return self._u[j]
+
 
 def _bin(pieces, origin, delta, lattice, nfft, cells, terms, chunk=CHUNK):
     """Linearly bin (cell, x, w) pieces into zero-padded (cells, *nfft) arrays.
 
     ``terms`` is a list of ``(factor, taps, target[, "nearest"])``: each datum's weight is
-    multiplied by ``factor(t, w)`` (None: 1; ``t`` the (rows, d) in-bin
-    fractions), the binned array b is passed through the stencil ``taps``
+    multiplied by ``factor(f, w)`` (None: 1; ``f`` the chunk's :class:`_Fractions`,
+    ``w`` its weights), the binned array b is passed through the stencil ``taps``
     (None: as is; else a list of ``(shifts, coef)`` meaning
     ``out[p] += coef * b[p + shifts]``, shifts a dict axis -> offset) and
-    added to output array number ``target``.  The data are read once,
-    ``chunk`` rows at a time; memory is O(chunk 2^d) plus the outputs and
-    one temporary.  "nearest" terms put each datum on its nearest node
-    instead of spreading it linearly (used for error estimates only).  Data
-    outside the lattice are dropped and their weight returned per cell.
+    added to output array number ``target``.  "nearest" terms put each datum on
+    its nearest node instead of spreading it linearly (used for error estimates
+    only).  Data outside the lattice are dropped and their weight returned per cell.
+
+    Binning is memory-bound; what keeps it near the memory speed (1.3 ms for
+    the counts of 10^5 2-D points, was 7-12 ms; see DEVELOPERS.md):
+
+    * rows are read ``chunk`` at a time, small enough (256 KB per temporary)
+      that the allocator recycles temporaries instead of mapping fresh pages
+      (page faults cost more than the arithmetic at 10^5 rows);
+    * the flat index of each datum's lower corner is computed once per chunk and
+      each of the 2^d corners of a linear term is one unbuffered ``np.add.at``
+      over that index with the corner's tent weights, at the corner's flat
+      offset: no 2^d-fold index or weight arrays, and no output array per call
+      (``bincount`` allocates one of the box's size every time);
+    * the terms of a piece are accumulated side by side in one (box nodes,
+      terms) table, so the terms of one datum share cache lines;
+    * every term is accumulated over all chunks of a piece in a flat box around
+      the piece's bins (2 empty nodes on every side: the stencils' reach), and its
+      stencil is applied once per piece as shifted slices of that flat array (a
+      tap that crosses a row only reads the empty nodes at the box's other edge,
+      as a tap leaving the box would).  A cell pays for its data's extent, not
+      the lattice, and a block of C cells costs C times one cell (not C^2).
+
+    Memory: the term table of one piece (in groups of terms whose boxes fit
+    BOX_BUDGET bytes; each further group re-reads the rows), one box per target
+    and O(chunk) temporaries.  Sums are float64 in data order, as before.
     """
     d = len(lattice)
-    size = math.prod(nfft)
-    strides = np.array([math.prod(nfft[j + 1:]) for j in range(d)], dtype=np.int64)
-    upper = np.array(lattice, dtype=np.int64) - 1
+    upper = [int(v) - 1 for v in lattice]
     outs = [np.zeros((cells,) + tuple(nfft)) for _ in range(1 + max(t[2] for t in terms))]
     dropped = np.zeros(cells)
+    corners = list(itertools.product((0, 1), repeat=d))
     for cell, x, w in pieces:
-        for a in range(0, x.shape[0], chunk):
-            # columns as contiguous rows: (d, rows)
-            u = (np.ascontiguousarray(x[a:a + chunk].T) - origin[:, None]) / delta[:, None]
-            ws = w[a:a + chunk]
-            k = np.floor(u).astype(np.int64)
-            t = u - k
-            ok = np.ones(ws.size, dtype=bool)
-            for j in range(d):
-                last = k[j] == upper[j]        # a datum exactly on the last node
-                if last.any():
-                    k[j, last] -= 1
-                    t[j, last] = 1.0
-                ok &= (k[j] >= 0) & (k[j] < upper[j])
-            if not ok.all():
-                dropped[cell] += float(ws[~ok].sum())
-                k, t, ws = k[:, ok], t[:, ok], ws[ok]
-            if ws.size == 0:
-                continue
-            # indices within a box around this chunk's bins in its cell's own array
-            # (2 nodes of room for the stencils' reach): binning and stencils
-            # touch only that box, so a block of C cells costs C times one cell
-            # (not C^2) and a cell pays for its data's extent, not the lattice
-            blo = np.maximum(k.min(axis=1) - 2, 0)
-            bhi = np.minimum(k.max(axis=1) + 4, np.array(nfft, dtype=np.int64))
-            bshape = tuple(int(v) for v in bhi - blo)
-            bsize = math.prod(bshape)
-            lstrides = np.array([math.prod(bshape[j + 1:]) for j in range(d)], dtype=np.int64)
-            loffsets = np.array([sum(int(lstrides[j]) for j, bit in enumerate(bits) if bit)
-                                 for bits in itertools.product((0, 1), repeat=d)], dtype=np.int64)
-            box = (slice(cell, cell + 1),) + tuple(slice(int(a0), int(a1)) for a0, a1 in zip(blo, bhi))
-            base = lstrides @ (k - blo[:, None])
-            # corner weights prod_j (1 - t_j or t_j), built axis by axis (corner order
-            # matches itertools.product((0, 1), repeat=d))
-            frac = np.empty((1 << d, ws.size))
-            frac[0] = ws
-            for j in range(d):
-                # corners so far (2^j rows) split on axis j: row c -> 2c (1 - t_j), 2c + 1 (t_j)
-                rows = 1 << j
-                cur = frac[:rows].copy()
-                np.multiply(cur, t[j], out=frac[1:2 * rows:2])
-                np.subtract(cur, frac[1:2 * rows:2], out=frac[0:2 * rows:2])
-            idx = (base[None, :] + loffsets[:, None]).ravel()
-            near = None
-            tt = t.T  # (rows, d) view for the factors
-            for factor, taps, target, *how in terms:
-                if how and how[0] == "nearest":
-                    # error-estimate terms: the nearest node is enough (2^d times cheaper)
-                    if near is None:
-                        near = base + lstrides @ (t >= 0.5).astype(np.int64)
-                    wt = ws if factor is None else ws * factor(tt, ws)
-                    binned = np.bincount(near, weights=wt, minlength=bsize)
-                else:
-                    wt = frac if factor is None else frac * factor(tt, ws)[None, :]
-                    binned = np.bincount(idx, weights=wt.ravel(), minlength=bsize)
-                view = outs[target][box]
-                _add_stencil(view, binned.reshape(view.shape), taps)
+        if x.shape[0] == 0:
+            continue
+        # the piece's box: lowest bin - 2 to highest corner + 2 on every axis
+        # ((x - origin) / delta is monotone in x, so its extremes give the bins')
+        blo, bshape = [], []
+        inside = True  # every datum strictly below the last node of every axis, none below the first
+        for j in range(d):
+            ends = [(v - origin[j]) / delta[j] for v in (x[:, j].min(), x[:, j].max())]
+            inside = inside and all(map(math.isfinite, ends)) and ends[0] >= 0 and math.floor(ends[1]) < upper[j]
+            k0, k1 = (min(max(math.floor(e), 0), upper[j] - 1) if math.isfinite(e) else b
+                      for e, b in zip(ends, (0, upper[j] - 1)))
+            blo.append(k0 - 2)
+            bshape.append(k1 - k0 + 6)
+        bsize = math.prod(bshape)
+        lstrides = [math.prod(bshape[j + 1:]) for j in range(d)]
+        offsets = [sum(lstrides[j] for j, bit in enumerate(bits) if bit) for bits in corners]
+        per_group = max(1, int(BOX_BUDGET // (8 * bsize)))
+        for g0 in range(0, len(terms), per_group):
+            group = terms[g0:g0 + per_group]
+            # one row per node, one column per term: a datum's terms share cache lines
+            table = np.zeros((bsize, len(group)))
+            acc = [table[:, i] for i in range(len(group))]
+            for a in range(0, x.shape[0], chunk):
+                ws = w[a:a + chunk]
+                ks, ts, ok = _chunk_bins(x[a:a + chunk], origin, delta, upper, check=not inside)
+                if ok is not None:
+                    if g0 == 0:
+                        dropped[cell] += float(ws[~ok].sum())
+                    ks = [kj[ok] for kj in ks]
+                    ts = [tj[ok] for tj in ts]
+                    ws = ws[ok]
+                if ws.size == 0:
+                    continue
+                base = ks[0] - blo[0]
+                if d > 1:
+                    base *= lstrides[0]
+                for j in range(1, d):
+                    base += (ks[j] - blo[j]) * lstrides[j]
+                frac = _Fractions(ts)
+                near = None
+                for out, (factor, taps, target, *how) in zip(acc, group):
+                    wt = ws if factor is None else ws * factor(frac, ws)
+                    if how and how[0] == "nearest":
+                        # error-estimate terms: the nearest node is enough (2^d times cheaper)
+                        if near is None:
+                            near = base.copy()
+                            for j in range(d):
+                                near += (ts[j] >= 0.5) * lstrides[j]
+                        np.add.at(out, near, wt)
+                    else:
+                        _tent_scatter(out, base, wt, ts, offsets)
+            boxes: dict[int, np.ndarray] = {}
+            for binned, (factor, taps, target, *how) in zip(acc, group):
+                binned = np.ascontiguousarray(binned)  # the stencil's shifted slices run faster
+                box = boxes.get(target)
+                if box is None:
+                    box = boxes[target] = np.zeros(bsize)
+                _add_flat_stencil(box, binned, taps, lstrides)
+            del acc, table
+            _add_box(outs, boxes, cell, blo, bshape, nfft)
     return outs, dropped
 
 
-def _add_stencil(out, b, taps):
-    """out[p] += sum coef * b[p + shifts] (array axes 1..d; taps beyond the edge dropped).
+def _chunk_bins(x, origin, delta, upper, check=True):
+    """Lower-corner bin ``k_j`` and in-bin fraction ``t_j`` per axis of a chunk of rows,
+    and the mask of rows inside the lattice (None when all are).
 
-    The lattice keeps two empty-enough nodes of margin beyond the kernel's
-    reach, so taps that would leave the array only concern nodes whose
-    convolution with the kernel never reaches an output node.
+    ``check=False``: the caller knows from the data's extremes that every row lies
+    inside the lattice and strictly below its last node (the tests would change nothing).
+    """
+    ks, ts = [], []
+    ok = None
+    for j in range(x.shape[1]):
+        uj = (x[:, j] - origin[j]) / delta[j]
+        kf = np.floor(uj)
+        tj = uj - kf
+        kj = kf.astype(np.int64)
+        if not check:
+            ks.append(kj)
+            ts.append(tj)
+            continue
+        last = kj == upper[j]          # a datum exactly on the last node
+        if last.any():
+            kj[last] -= 1
+            tj[last] = 1.0
+        okj = (kj >= 0) & (kj < upper[j])
+        if not okj.all():
+            ok = okj if ok is None else ok & okj
+        ks.append(kj)
+        ts.append(tj)
+    return ks, ts, ok
+
+
+def _tent_scatter(out, base, wt, ts, offsets):
+    """Add the linear binning of weights ``wt`` to the flat box ``out``.
+
+    Corner weights prod_j (1 - t_j or t_j) are built axis by axis, corner order as
+    ``itertools.product((0, 1), repeat=d)``; each corner is scattered onto the
+    lower corners ``base`` shifted ``offsets[c]`` flat nodes higher (``np.add.at``,
+    unbuffered and allocation-free since numpy 1.25).
+    """
+    weights = [wt]
+    for tj in ts:
+        nxt = []
+        for cur in weights:
+            hi = cur * tj
+            nxt += [cur - hi, hi]
+        weights = nxt
+    for off, wc in zip(offsets, weights):
+        # the box has room above every corner: base + off stays inside it
+        np.add.at(out[off:], base, wc)
+
+
+def _add_flat_stencil(acc, b, taps, lstrides):
+    """acc[p] += sum coef * b[p + shift] on flat boxes (taps beyond the box dropped).
+
+    Within the box a tap that crosses a row boundary reads one of the 2 empty
+    nodes at the other edge of the box, i.e. zero, as a tap leaving the box does.
     """
     if taps is None:
-        out += b
+        acc += b
         return
+    n = b.size
     for shifts, coef in taps:
-        dst = [slice(None)] * out.ndim
-        src = [slice(None)] * out.ndim
-        for axis, sh in shifts.items():
-            if sh > 0:
-                dst[axis], src[axis] = slice(0, -sh), slice(sh, None)
-            elif sh < 0:
-                dst[axis], src[axis] = slice(-sh, None), slice(0, sh)
+        s = sum(lstrides[axis - 1] * sh for axis, sh in shifts.items())
+        lo, hi = max(0, -s), n - max(0, s)
         if coef == 1.0:
-            out[tuple(dst)] += b[tuple(src)]
+            acc[lo:hi] += b[lo + s:hi + s]
         else:
-            out[tuple(dst)] += coef * b[tuple(src)]
+            acc[lo:hi] += coef * b[lo + s:hi + s]
+
+
+def _add_box(outs, boxes, cell, blo, bshape, nfft):
+    """Add each target's flat box into its (cells, *nfft) array (clipped to the array)."""
+    src, dst = [], []
+    for lo, n, size in zip(blo, bshape, nfft):
+        a0, a1 = max(lo, 0), min(lo + n, size)
+        src.append(slice(a0 - lo, a1 - lo))
+        dst.append(slice(a0, a1))
+    for target, acc in boxes.items():
+        outs[target][(cell,) + tuple(dst)] += acc.reshape(bshape)[tuple(src)]
 
 
 # difference stencils along one axis: (offset, coefficient), D a(p) = sum c a(p + s)
@@ -608,8 +706,6 @@ def _convolve(todo, samples, weights, bws, mk, lo, delta, margins, shape, r):
     def conv(a):
         return sfft.irfftn(sfft.rfftn(a, axes=axes) * spec, s=nfft, axes=axes)
 
-    def u(t, j):
-        return t[:, j] * (1.0 - t[:, j])
 
     # One pass over the data.  Array 0: the counts minus the second-order
     # binning-error term (for the uniform kernel: the counts, and that term
@@ -622,21 +718,21 @@ def _convolve(todo, samples, weights, bws, mk, lo, delta, margins, shape, r):
     e2_target = 0 if correct else 1
     rest = 1 if correct else 2
     for j in range(d):
-        terms.append((lambda t, w, j=j: 0.5 * u(t, j), _taps(j + 1, 2, -1.0 if correct else 1.0),
+        terms.append((lambda f, w, j=j: 0.5 * f.u(j), _taps(j + 1, 2, -1.0 if correct else 1.0),
                       e2_target))
     if correct:
         for j in range(d):
-            terms.append((lambda t, w, j=j: u(t, j) * (1.0 - 2.0 * t[:, j]) / 6.0, _taps(j + 1, 3), rest,
+            terms.append((lambda f, w, j=j: f.u(j) * (1.0 - 2.0 * f.t[j]) / 6.0, _taps(j + 1, 3), rest,
                           "nearest"))
         # fourth order after the correction: -(3/8) u_j^2 D^4_j - (1/4) u_j u_k D^2_j D^2_k
         for j in range(d):
-            terms.append((lambda t, w, j=j: -0.375 * u(t, j) ** 2, _taps(j + 1, 4), rest, "nearest"))
+            terms.append((lambda f, w, j=j: -0.375 * f.u(j) ** 2, _taps(j + 1, 4), rest, "nearest"))
         for j, k in itertools.combinations(range(d), 2):
-            terms.append((lambda t, w, j=j, k=k: -0.25 * u(t, j) * u(t, k), _cross_taps(j + 1, k + 1, 1.0),
+            terms.append((lambda f, w, j=j, k=k: -0.25 * f.u(j) * f.u(k), _cross_taps(j + 1, k + 1, 1.0),
                           rest, "nearest"))
     weighted = any(weights[c] is not None for c in todo)
     if kind in ("kink", "jump") and weighted:
-        terms.append((lambda t, w: w, None, rest if not correct else rest + 1))
+        terms.append((lambda f, w: w, None, rest if not correct else rest + 1))
     outs, dropped = _bin(pieces, origin, delta, shape, nfft, cells, terms)
     counts = outs[0]
     sq = outs[-1] if (kind in ("kink", "jump") and weighted) else None

@@ -15,7 +15,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..cells import CellProducts, fit_cells
-from ..errors import ConfigError, MvkdeError
+from ..errors import ConfigError, InputError, MvkdeError
 from ..estimator import fit
 from ..products.grid import node_weights
 from .readers import read_points
@@ -31,8 +31,25 @@ FLAGS = {
     "bandwidth_at_edge": 8,
     "grid_mass_off_by_more_than_1_percent": 16,
     "subsampled": 32,
+    "grid_too_coarse_for_the_bandwidth": 64,
 }
 GRID_MASS_TOLERANCE = 0.01
+#: a grid node spacing above this many kernel standard deviations (sqrt H_jj) along a variable is too
+#: coarse: the trapezoid rule's error on a Gaussian bump is about exp(-2 pi^2 (sd/spacing)^2), 1.6e-4 at
+#: 1.5 sd, and grows fast beyond; near a bound, where the density is steep, a coarser grid biases the
+#: integrated products (measured: 40 nodes over 0-60 mm gave grid masses up to 1.40)
+COARSE_SPACING = 1.5
+
+
+@dataclass
+class CompareSettings:
+    """What a block task needs to compare each label with the reference label (``[compare]``)."""
+
+    axis: int                 # which entry of split_shape is the compared label dim
+    reference: int            # index of the reference label along it
+    alpha: float
+    bootstrap: int
+    band_level: float
 
 
 @dataclass
@@ -58,6 +75,15 @@ class CellSettings:
     n_cell_dims: int
     sphere: list | None = None
     products: CellProducts = field(default_factory=CellProducts)
+    #: refuse values outside the bounds inside the task (a lazy run has not looked at the data before)
+    refuse_outside_bounds: bool = False
+    #: season/month splits within one label combination (n_splits = label combinations x n_season)
+    n_season: int = 1
+    #: the split axis as output dims: one size per label dim (window, source), then the season split
+    split_shape: tuple = ()
+    #: [compare]: None, or CompareSettings
+    compare: "CompareSettings | None" = None
+
 
     @property
     def d(self) -> int:
@@ -97,7 +123,27 @@ def settings_for(plan, axes) -> CellSettings:
         engine=est["engine"], axes=[np.asarray(a, dtype=float) for a in axes] if axes else [],
         min_samples=inp["min_samples"], max_samples=inp["max_samples"], seed=est["seed"],
         n_splits=plan.n_splits, n_cell_dims=len(plan.cell_dims), sphere=est.get("sphere"),
-        products=_cell_products(wf, plan))
+        products=_cell_products(wf, plan), n_season=plan.n_season, split_shape=plan.split_shape,
+        compare=_compare_settings(wf, plan))
+
+
+def compared_dim(wf, plan) -> str | None:
+    """The label dim ``[compare]`` compares along (None without a reference)."""
+    ref = wf["compare"]["reference"]
+    if ref is None:
+        return None
+    return wf["compare"]["dim"] or plan.label_dims[0]
+
+
+def _compare_settings(wf, plan) -> CompareSettings | None:
+    dim = compared_dim(wf, plan)
+    if dim is None:
+        return None
+    prod = wf["products"]
+    return CompareSettings(axis=plan.label_dims.index(dim),
+                           reference=plan.label_names[dim].index(wf["compare"]["reference"]),
+                           alpha=float(wf["compare"]["alpha"]), bootstrap=int(prod["bootstrap"]),
+                           band_level=float(prod["band_level"]))
 
 
 def _cell_products(wf, plan) -> CellProducts:
@@ -186,11 +232,18 @@ class BlockResult:
     paths: set = field(default_factory=set)
 
 
-def _cell_samples(vals, codes, c, S, settings, first_cell, arrays):
-    """The usable samples of cell ``c`` per split, with counts and flags filled in."""
+def _cell_samples(vals, codes, c, S, settings, first_cell, arrays, members=None):
+    """The usable samples of cell ``c`` per split, with counts and flags filled in.
+
+    Split ``s`` is label combination ``s // n_season`` and season ``s % n_season``; ``members``
+    (label combinations, cells, samples) says which samples carry each label (a sample in two
+    overlapping windows is in both).
+    """
     finite = np.isfinite(vals[c]).all(axis=1)
     for s in range(S):
-        member = codes[c] == s
+        member = codes[c] == (s % settings.n_season)
+        if members is not None:
+            member = member & members[s // settings.n_season, c]
         x = vals[c][member & finite]
         arrays["n_missing"][c, s] = int((member & ~finite).sum())
         if settings.max_samples is not None and len(x) > settings.max_samples:
@@ -216,6 +269,7 @@ def _empty_arrays(ncell: int, S: int, settings: CellSettings) -> dict:
         "grid_mass": np.full((ncell, S), np.nan),
         "bandwidth_converged": np.zeros((ncell, S), dtype=np.int8),
         "flags": np.zeros((ncell, S), dtype=np.uint8),
+        "failure_reason": np.full((ncell, S), "", dtype=object),
     }
     if j is not None:
         out["point_mass_probability"] = np.full((ncell, S), np.nan)
@@ -225,7 +279,8 @@ def _empty_arrays(ncell: int, S: int, settings: CellSettings) -> dict:
     return out
 
 
-def process_block(values, codes, first_cell: int, tile_shape: tuple, settings: CellSettings) -> BlockResult:
+def process_block(values, codes, first_cell: int, tile_shape: tuple, settings: CellSettings,
+                  members=None) -> BlockResult:
     """One dask task: every cell (and split) of a block, fitted and evaluated.
 
     ``values`` has shape (*tile_shape, *sample_shape, d); ``codes`` (split index
@@ -233,18 +288,26 @@ def process_block(values, codes, first_cell: int, tile_shape: tuple, settings: C
     Missing values are dropped per cell and counted; a cell with fewer valid
     samples than ``settings.min_samples`` or refused by the library gets NaN
     and a flag.  ``first_cell`` and the cell's position seed its subsample, so
-    results do not depend on how cells are grouped into blocks.
+    results do not depend on how cells are grouped into blocks.  ``members`` (label
+    combinations first, then broadcastable like ``codes``) labels the samples by window and
+    source; with ``[compare]`` every (cell, label) is compared with the cell's reference label
+    in the same task (:func:`_compare_block`).
     """
     values = np.asarray(values, dtype=float)
     d = settings.d
+    if settings.refuse_outside_bounds:
+        _refuse_outside_bounds(values, settings)
     ncell = int(np.prod(tile_shape)) if tile_shape else 1
     vals = values.reshape(ncell, -1, d)
     codes = np.broadcast_to(np.asarray(codes), values.shape[:-1]).reshape(ncell, -1)
     S = settings.n_splits
+    if members is not None:
+        members = np.asarray(members, dtype=bool)
+        members = np.stack([np.broadcast_to(m, values.shape[:-1]).reshape(ncell, -1) for m in members])
     arrays = _empty_arrays(ncell, S, settings)
     todo, where = [], []
     for c in range(ncell):
-        for s, x in _cell_samples(vals, codes, c, S, settings, first_cell, arrays):
+        for s, x in _cell_samples(vals, codes, c, S, settings, first_cell, arrays, members):
             todo.append(x)
             where.append((c, s))
 
@@ -252,7 +315,91 @@ def process_block(values, codes, first_cell: int, tile_shape: tuple, settings: C
                       keys=[(first_cell + c, s) for c, s in where], **settings.fit_kwargs())
     result = BlockResult(arrays, paths={batch.path})
     _store_batch(result, batch, where, settings, first_cell)
+    if settings.compare is not None:
+        _compare_block(result, todo, where, batch.errors, settings, first_cell)
     return result
+
+
+def _compare_block(result: BlockResult, samples, where, errors, settings: CellSettings, first_cell: int) -> None:
+    """Every (cell, label) of the block against the cell's reference label, in one batch of pairs.
+
+    The arrays are over (cell, split) like the densities, NaN at the reference label's splits
+    (the output drops them).  The common H, the refits, the local test, the exceedances and the
+    bootstrap go through :func:`mvkde.compare_cells.compare_pairs_cells` once per block.
+    """
+    from ..compare_cells import compare_pairs_cells
+
+    cmp_ = settings.compare
+    arrays = result.arrays
+    ncell, S = arrays["flags"].shape
+    shape = settings.split_shape
+    usable = {cs: k for k, cs in enumerate(where) if errors[k] is None}
+    refs, others, places = [], [], []
+    for (c, s), k in usable.items():
+        index = list(np.unravel_index(s, shape))
+        if index[cmp_.axis] == cmp_.reference:
+            continue
+        index[cmp_.axis] = cmp_.reference
+        r = int(np.ravel_multi_index(tuple(index), shape))
+        if (c, r) in usable:
+            refs.append(samples[usable[(c, r)]])
+            others.append(samples[k])
+            places.append((c, s))
+    grid_shape = tuple(len(a) for a in settings.axes)
+    thresholds = settings.products.thresholds
+    m = len(thresholds)
+    arrays["density_difference"] = np.full((ncell, S) + grid_shape, np.nan)
+    arrays["density_change_significant"] = np.zeros((ncell, S) + grid_shape, dtype=np.int8)
+    arrays["common_bandwidth"] = np.full((ncell, S, settings.d, settings.d), np.nan)
+    if m:
+        for name in ("probability_ratio",) + (("probability_ratio_lower", "probability_ratio_upper")
+                                               if cmp_.bootstrap else ()):
+            arrays[name] = np.full((ncell, S, m), np.nan)
+    if settings.point_mass_index is not None:
+        arrays["point_mass_probability_change"] = np.full((ncell, S), np.nan)
+    if not places:
+        return
+    kw = settings.fit_kwargs()
+    bandwidth = kw.pop("bandwidth")
+    given = None if isinstance(bandwidth, str) else np.repeat(np.asarray(bandwidth, float)[None], len(places), 0)
+    kw.pop("parametrization")
+    out = compare_pairs_cells(refs, others, axes=settings.axes, selector=bandwidth if given is None else "plugin",
+                              parametrization=settings.parametrization, H=given,
+                              thresholds=thresholds if m else None, alpha=cmp_.alpha,
+                              bootstrap=cmp_.bootstrap, band_level=cmp_.band_level, seed=settings.seed,
+                              keys=[(first_cell + c, s) for c, s in places], **kw)
+    for p, (c, s) in enumerate(places):
+        if out["errors"][p] is not None:
+            continue
+        arrays["density_difference"][c, s] = out["difference"][p]
+        arrays["density_change_significant"][c, s] = out["significant"][p]
+        arrays["common_bandwidth"][c, s] = out["H"][p]
+        if m:
+            arrays["probability_ratio"][c, s] = out["ratio"][p]
+            if cmp_.bootstrap:
+                arrays["probability_ratio_lower"][c, s] = out["lower"][p]
+                arrays["probability_ratio_upper"][c, s] = out["upper"][p]
+        if "point_mass_change" in out:
+            arrays["point_mass_probability_change"][c, s] = out["point_mass_change"][p]
+
+
+def _refuse_outside_bounds(values: np.ndarray, settings: CellSettings) -> None:
+    """The check ``inputs.resolve_axes`` makes before a run, made per block when nothing was read before."""
+    if not settings.bounds:
+        return
+    for j, pair in enumerate(settings.bounds):
+        if pair is None:
+            continue
+        x = values[..., j]
+        x = x[np.isfinite(x)]
+        if not x.size:
+            continue
+        lo, hi = float(x.min()), float(x.max())
+        if lo < pair[0] or hi > pair[1]:
+            side, value = ("down to", lo) if lo < pair[0] else ("up to", hi)
+            raise InputError(f"variable {settings.names[j]} has values {side} {value:.6g}, outside "
+                             f"bounds[{settings.names[j]!r}] = ({pair[0]:g}, {pair[1]:g}): fix the bounds "
+                             "or the data")
 
 
 def _store_batch(result: BlockResult, batch, where, settings: CellSettings, first_cell: int) -> None:
@@ -271,6 +418,7 @@ def _store_batch(result: BlockResult, batch, where, settings: CellSettings, firs
             arrays[name][c, s] = value[k]
         if batch.errors[k] is not None:
             arrays["flags"][c, s] |= FLAGS["fit_failed"]
+            arrays["failure_reason"][c, s] = batch.errors[k]
             result.failures.append((first_cell + c, s, batch.errors[k]))
             continue
         arrays["density"][c, s] = batch.density[k]
@@ -281,6 +429,8 @@ def _store_batch(result: BlockResult, batch, where, settings: CellSettings, firs
             arrays["flags"][c, s] |= FLAGS["bandwidth_not_converged"]
         if batch.at_edge[k]:
             arrays["flags"][c, s] |= FLAGS["bandwidth_at_edge"]
+        if _too_coarse(batch.H[k], settings):
+            arrays["flags"][c, s] |= FLAGS["grid_too_coarse_for_the_bandwidth"]
         mass = float(np.sum(batch.density[k] * weights))
         if j is not None:
             p = float(batch.point_mass_probability[k])
@@ -293,6 +443,18 @@ def _store_batch(result: BlockResult, batch, where, settings: CellSettings, firs
         arrays["grid_mass"][c, s] = mass
         if abs(mass - 1.0) > GRID_MASS_TOLERANCE:
             arrays["flags"][c, s] |= FLAGS["grid_mass_off_by_more_than_1_percent"]
+
+
+def _too_coarse(H, settings: CellSettings) -> bool:
+    """True when the node spacing of a linear variable exceeds ``COARSE_SPACING`` kernel standard deviations."""
+    directional = set(settings.sphere or ()) | {v for v, p in zip(settings.names, settings.periods or ())
+                                                if p is not None}
+    for j, (name, axis) in enumerate(zip(settings.names, settings.axes)):
+        if name in directional or len(axis) < 2 or not np.isfinite(H[j, j]):
+            continue
+        if axis[1] - axis[0] > COARSE_SPACING * np.sqrt(H[j, j]):
+            return True
+    return False
 
 
 def _sphere_axes(settings: CellSettings):

@@ -22,6 +22,7 @@ import xarray as xr
 
 from ..cells import engine_work_bytes
 from ..errors import ConfigError, InputError
+from . import labels as _labels
 from . import readers as _io
 from .workflow import SEASONS, Workflow
 
@@ -51,6 +52,12 @@ class Plan:
     variable_attrs: dict
     sample_counts: tuple = (0, 0, 0)           # min, median, max samples per cell before dropping NaN
     notes: list = field(default_factory=list)
+    origin: str = ""                           # how messages name the input when there are no files
+    label_dims: list = field(default_factory=list)    # "window" and/or "source", in this order
+    label_names: dict = field(default_factory=dict)   # dim -> label names
+    label_info: dict = field(default_factory=dict)    # dim -> what each label is (date range, path)
+    members: np.ndarray | None = None          # (label combinations, *codes shape) bool, or None
+    rates: np.ndarray | None = None            # observations per year of every split (return periods)
 
     @property
     def cell_shape(self) -> tuple:
@@ -61,8 +68,28 @@ class Plan:
         return int(np.prod(self.cell_shape)) if self.cell_dims else 1
 
     @property
-    def n_splits(self) -> int:
+    def n_season(self) -> int:
+        """Splits by season or month within one label combination."""
         return max(1, len(self.split_labels)) if self.split_dim else 1
+
+    @property
+    def n_labels(self) -> int:
+        """Label combinations (windows x sources); 1 without labels."""
+        return int(np.prod([len(self.label_names[d]) for d in self.label_dims])) if self.label_dims else 1
+
+    @property
+    def n_splits(self) -> int:
+        """Every sample set of a cell: label combinations x seasons (flattened in that order)."""
+        return self.n_labels * self.n_season
+
+    @property
+    def split_shape(self) -> tuple:
+        """The flattened split axis as output dims: one per label dim, then the season/month split."""
+        return tuple(len(self.label_names[d]) for d in self.label_dims) + ((self.n_season,) if self.split_dim else ())
+
+    @property
+    def split_dims(self) -> list:
+        return list(self.label_dims) + ([self.split_dim] if self.split_dim else [])
 
     def tiles(self):
         """Slices over the cell dims, one tuple per block."""
@@ -86,8 +113,11 @@ class Plan:
                 elif isinstance(value, np.datetime64):
                     value = str(value)[:10]
                 parts.append(f"{dim}={value}")
+        index = np.unravel_index(int(split), self.split_shape) if self.split_shape else ()
+        for dim, i in zip(self.label_dims, index):
+            parts.append(f"{dim}={self.label_names[dim][i]}")
         if self.split_dim:
-            parts.append(f"{self.split_dim}={self.split_labels[split]}")
+            parts.append(f"{self.split_dim}={self.split_labels[int(split) % self.n_season]}")
         return ", ".join(parts) if parts else "the only cell"
 
     @property
@@ -134,6 +164,8 @@ def _tile_shape(shape, block_size) -> tuple:
 def prepare(wf: Workflow) -> Plan:
     """Open the inputs lazily, apply the selection and tile the cells."""
     inp = wf["input"]
+    if inp["sources"]:
+        return _labels.prepare_sources(wf, plan_from_dataset, plan_from_table, _read_table_of, _file_chunks)
     files = _io.expand_paths(wf.input_paths())
     kind = _io.input_format(files, inp["format"])
     if kind == "netcdf":
@@ -182,6 +214,17 @@ def check_memory(plan: Plan) -> None:
             "(input.box) or a smaller compute.block_size")
 
 
+def _refuse_without_dates(src, inp, tname, coord, file_name) -> None:
+    """A selection by dates on a time coordinate that holds no dates: one clear line."""
+    keys = [k for k in ("time_range", "months", "seasons", "split_by") if inp[k]]
+    units = coord.attrs.get("units")
+    why = (f"its units {units!r} could not be read as dates" if units else "it has no units of the form "
+           "'days since YYYY-MM-DD'")
+    raise ConfigError(f"{src}: {', '.join('input.' + k for k in keys)} select(s) by date, but the time "
+                      f"coordinate {tname!r} of {file_name} holds plain {coord.dtype} numbers ({why}): remove "
+                      f"{' and '.join('input.' + k for k in keys)}, or give the file a CF time coordinate")
+
+
 def _months_of(times) -> np.ndarray:
     return np.asarray(xr.DataArray(times).dt.month.values)
 
@@ -214,26 +257,112 @@ def _month_filter(inp) -> set | None:
 
 
 def _prepare_gridded(wf: Workflow, files) -> Plan:
-    inp, src = wf["input"], wf.source
-    names = wf.variables
-    if inp["group_by"] is not None:
-        raise ConfigError(f"{src}: input.group_by applies to tables (.csv, .parquet); for gridded inputs "
+    if wf["input"]["group_by"] is not None:
+        raise ConfigError(f"{wf.source}: input.group_by applies to tables (.csv, .parquet); for gridded inputs "
                           "every dimension not in input.sample_dims is a cell dimension")
     # one file: opened without dask, so the selection below stays lazy indexing and each
     # block's dask chunk becomes one hyperslab read (a file chunked along time is never
     # rechunked in memory); several files: dask chunks of whole cell columns per file
     ds = _io.open_gridded(files, chunks=None if len(files) == 1 else _file_chunks(wf, files))
+    origin = files[0].name + (" and the other files" if len(files) > 1 else "")
+    if len(files) > 1:
+        missing = [v for v in wf.variables if v not in ds.data_vars]
+        if not missing:
+            _io.check_units_agree(files, wf.variables)
+    return plan_from_dataset(wf, ds, files=files, origin=origin)
+
+
+def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "the Dataset",
+                      tile: tuple | None = None) -> Plan:
+    """The plan of a gridded input already opened as a Dataset (lazy or in memory).
+
+    ``mvkde run`` reaches it through :func:`prepare` (files opened lazily) and
+    :func:`mvkde.densities` with the caller's Dataset; ``tile`` (block shape
+    over the cell dims) overrides ``compute.block_size``: the caller's dask
+    chunks along the cell dims become the blocks.
+    """
+    inp, src = wf["input"], wf.source
+    names = wf.variables
+    files = list(files)
+    tname = inp["time"]
+    source_of = None
+    if isinstance(ds, dict):  # input.sources: name -> (Dataset, how messages name it)
+        ds, source_of, dims, sample_dims, cell_dims = _labels.combine_sources(wf, ds, _check_dataset, _select)
+    else:
+        dims, sample_dims, cell_dims = _check_dataset(wf, ds, origin)
+        ds = _select(ds[names], wf, dims, sample_dims, origin)
+
+    cell_shape = tuple(ds.sizes[d] for d in cell_dims)
+    n_per_cell = int(np.prod([ds.sizes[d] for d in sample_dims]))
+    if tile is None:
+        tile = _tile_shape(cell_shape, block_cells(wf, int(np.prod(cell_shape)), n_per_cell * len(names) * 8))
+    tile = tuple(max(1, min(int(t), n)) for t, n in zip(tile, cell_shape))
+    # chunk so that one block reads exactly its own hyperslab, all samples at once
+    chunks = {d: t for d, t in zip(cell_dims, tile)}
+    chunks.update({d: -1 for d in sample_dims})
+    with warnings.catch_warnings():
+        # blocks of whole cell columns cut across a file chunked along time: intended
+        warnings.filterwarnings("ignore", message=".*separate the stored chunks.*")
+        ds = ds.chunk(chunks)
+    arr = ds.to_dataarray("variable").transpose(*cell_dims, *sample_dims, "variable")
+    arr = arr.chunk({"variable": -1})
+
+    if tname in sample_dims and inp["split_by"]:
+        months = _months_of(ds[tname].values)
+        codes_1d, labels = _split_codes(months, inp["split_by"], inp["seasons"])
+        shape = [1] * (len(cell_dims) + len(sample_dims))
+        shape[len(cell_dims) + sample_dims.index(tname)] = len(codes_1d)
+        codes = codes_1d.reshape(shape)
+    else:
+        codes, labels = np.zeros([1] * (len(cell_dims) + len(sample_dims)), dtype=np.int16), []
+    n = int(np.prod([ds.sizes[d] for d in sample_dims]))
+    units = [wf.variable(v)["units"] or str(ds[v].attrs.get("units", "")) for v in names]
+    attrs = {v: {k: ds[v].attrs[k] for k in ("standard_name", "long_name") if k in ds[v].attrs} for v in names}
+    counts = (n, n, n)
+    if inp["split_by"]:
+        per = np.bincount(codes.ravel()[codes.ravel() >= 0], minlength=len(labels))
+        per = per * (n // max(1, codes.size))
+        counts = (int(per.min()), int(np.median(per)), int(per.max()))
+    split_codes_1d = codes.ravel()
+    times = ds[tname].values if tname in ds.coords else np.arange(ds.sizes.get(tname, 0))
+    label_dims, label_names, label_info, members = [], {}, {}, None
+    if inp["windows"] or source_of is not None:
+        if tname not in sample_dims:
+            raise ConfigError(f"{src}: input.windows selects along the time dimension {tname!r}: list it in "
+                              "input.sample_dims")
+        label_dims, label_names, label_info, members = _labels.label_members(
+            wf, times, source_of, list(inp["sources"]), origin)
+    n_season = max(1, len(labels)) if inp["split_by"] else 1
+    n_labels = 1 if members is None else members.shape[0]
+    rates = _labels.rates(wf, times, members, split_codes_1d if inp["split_by"] else None, n_season, n_labels, origin) \
+        if tname in sample_dims else _labels.rates(wf, [], None, None, n_season, n_labels, origin)
+    if members is not None:
+        per = [int(np.sum(members[m] & (split_codes_1d == s) if inp["split_by"] else members[m]))
+               * (n // max(1, members.shape[1])) for m in range(n_labels) for s in range(n_season)]
+        counts = (int(min(per)), int(np.median(per)), int(max(per)))
+        shape = [1] * (len(cell_dims) + len(sample_dims))
+        shape[len(cell_dims) + sample_dims.index(tname)] = members.shape[1]
+        members = members.reshape((members.shape[0],) + tuple(shape))
+    plan = Plan(wf, "netcdf", files, arr, codes, cell_dims, {d: ds[d] for d in cell_dims if d in ds.coords},
+                inp["split_by"], labels, tile, list(names), units, attrs, counts, origin=origin,
+                label_dims=label_dims, label_names=label_names, label_info=label_info, members=members,
+                rates=rates)
+    _labels.note_empty_labels(plan)
+    return plan
+
+
+def _check_dataset(wf: Workflow, ds: xr.Dataset, origin: str):
+    """(dims, sample_dims, cell_dims) of a gridded input, after refusing what cannot be a sample."""
+    inp, src = wf["input"], wf.source
+    names = wf.variables
     missing = [v for v in names if v not in ds.data_vars]
     if missing:
-        raise InputError(f"input.variables: {', '.join(missing)} not in {files[0].name}"
-                         f"{' and the other files' if len(files) > 1 else ''}; data variables there: "
+        raise InputError(f"input.variables: {', '.join(missing)} not in {origin}; data variables there: "
                          f"{', '.join(map(str, ds.data_vars))}")
     for v in names:
         if ds[v].dtype.kind not in "fiu":
-            raise InputError(f"input.variables: {v} in {files[0].name} holds {ds[v].dtype} values, not "
+            raise InputError(f"input.variables: {v} in {origin} holds {ds[v].dtype} values, not "
                              "numbers: choose a numeric variable")
-    if len(files) > 1:
-        _io.check_units_agree(files, names)
     dims = ds[names[0]].dims
     for v in names[1:]:
         if set(ds[v].dims) != set(dims):
@@ -248,7 +377,12 @@ def _prepare_gridded(wf: Workflow, files) -> Plan:
     clash = set(names) & set(cell_dims)
     if clash:
         raise InputError(f"variable name(s) {sorted(clash)} equal cell dimension names: rename them")
-    ds = ds[names]
+    return dims, sample_dims, cell_dims
+
+
+def _select(ds: xr.Dataset, wf: Workflow, dims, sample_dims, origin: str) -> xr.Dataset:
+    """The workflow's selection: time range, months or seasons, coordinate box (refused without dates)."""
+    inp, src = wf["input"], wf.source
     tname = inp["time"]
     needs_time = inp["time_range"] or inp["months"] or inp["seasons"] or inp["split_by"]
     if needs_time and tname not in ds.coords:
@@ -257,6 +391,8 @@ def _prepare_gridded(wf: Workflow, files) -> Plan:
                           "input.split_by need it")
     if inp["split_by"] and tname not in sample_dims:
         raise ConfigError(f"{src}: input.split_by needs the time dimension {tname!r} in input.sample_dims")
+    if needs_time and not np.issubdtype(ds[tname].dtype, np.datetime64) and ds[tname].dtype != object:
+        _refuse_without_dates(src, inp, tname, ds[tname], origin)
     if inp["time_range"]:
         start, end = inp["time_range"]
         try:
@@ -282,38 +418,7 @@ def _prepare_gridded(wf: Workflow, files) -> Plan:
         if ds.sizes[dname] == 0:
             raise InputError(f"the selection (input.time_range / months / seasons / box) leaves no data "
                              f"along {dname!r}: widen it")
-
-    cell_shape = tuple(ds.sizes[d] for d in cell_dims)
-    n_per_cell = int(np.prod([ds.sizes[d] for d in sample_dims]))
-    tile = _tile_shape(cell_shape, block_cells(wf, int(np.prod(cell_shape)), n_per_cell * len(names) * 8))
-    # chunk so that one block reads exactly its own hyperslab, all samples at once
-    chunks = {d: t for d, t in zip(cell_dims, tile)}
-    chunks.update({d: -1 for d in sample_dims})
-    with warnings.catch_warnings():
-        # blocks of whole cell columns cut across a file chunked along time: intended
-        warnings.filterwarnings("ignore", message=".*separate the stored chunks.*")
-        ds = ds.chunk(chunks)
-    arr = ds.to_dataarray("variable").transpose(*cell_dims, *sample_dims, "variable")
-    arr = arr.chunk({"variable": -1})
-
-    if tname in sample_dims:
-        months = _months_of(ds[tname].values)
-        codes_1d, labels = _split_codes(months, inp["split_by"], inp["seasons"])
-        shape = [1] * (len(cell_dims) + len(sample_dims))
-        shape[len(cell_dims) + sample_dims.index(tname)] = len(codes_1d)
-        codes = codes_1d.reshape(shape)
-    else:
-        codes, labels = np.zeros([1] * (len(cell_dims) + len(sample_dims)), dtype=np.int16), []
-    n = int(np.prod([ds.sizes[d] for d in sample_dims]))
-    units = [wf.variable(v)["units"] or str(ds[v].attrs.get("units", "")) for v in names]
-    attrs = {v: {k: ds[v].attrs[k] for k in ("standard_name", "long_name") if k in ds[v].attrs} for v in names}
-    counts = (n, n, n)
-    if inp["split_by"]:
-        per = np.bincount(codes.ravel()[codes.ravel() >= 0], minlength=len(labels))
-        per = per * (n // max(1, codes.size))
-        counts = (int(per.min()), int(np.median(per)), int(per.max()))
-    return Plan(wf, "netcdf", files, arr, codes, cell_dims, {d: ds[d] for d in cell_dims if d in ds.coords},
-                inp["split_by"], labels, tile, list(names), units, attrs, counts)
+    return ds
 
 
 def _file_chunks(wf: Workflow, files) -> dict:
@@ -333,12 +438,23 @@ def _file_chunks(wf: Workflow, files) -> dict:
 
 
 def _prepare_table(wf: Workflow, files, kind) -> Plan:
+    table = _read_table_of(wf, files, kind)
+    return plan_from_table(wf, table, files=files, kind=kind, origin=files[0].name)
+
+
+def _table_needs_time(inp, prod) -> bool:
+    return bool(inp["time_range"] or inp["months"] or inp["seasons"] or inp["split_by"] or inp["windows"]
+                or (prod["return_periods"] and prod["observations_per_year"] is None))
+
+
+def _read_table_of(wf: Workflow, files, kind) -> pd.DataFrame:
+    """The columns a workflow needs from a table input, after checking they are there."""
     inp, src = wf["input"], wf.source
     names = wf.variables
     header = _io.table_columns(files, kind)
     group = inp["group_by"]
     tname = inp["time"]
-    needs_time = bool(inp["time_range"] or inp["months"] or inp["seasons"] or inp["split_by"])
+    needs_time = _table_needs_time(inp, wf["products"])
     wanted = list(names) + ([group] if group else []) + ([tname] if needs_time else []) + list(inp["box"])
     wanted = list(dict.fromkeys(wanted))
     for col in wanted:
@@ -347,10 +463,26 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
                     else "input.time" if col == tname else f"input.box.{col}")
             raise ConfigError(f"{src}: {what} names column {col!r}, which is not in {files[0].name} "
                               f"(columns: {', '.join(header)})")
-    table = _io.read_table(files, kind, wanted)
+    return _io.read_table(files, kind, wanted)
+
+
+def plan_from_table(wf: Workflow, table: pd.DataFrame, *, files=(), kind: str = "table",
+                    origin: str = "the DataFrame", source_of=None) -> Plan:
+    """The plan of a table already read (one density per ``input.group_by`` value).
+
+    ``source_of`` (the source index of every row) labels the rows of joined ``input.sources``.
+    """
+    inp = wf["input"]
+    names = wf.variables
+    files = list(files)
+    group = inp["group_by"]
+    tname = inp["time"]
+    needs_time = _table_needs_time(inp, wf["products"])
+    if source_of is not None:
+        table = table.assign(_mvkde_source=np.asarray(source_of))
     for v in names:
         if not pd.api.types.is_numeric_dtype(table[v]):
-            raise InputError(f"input.variables: column {v!r} of {files[0].name} is not numeric: list numeric "
+            raise InputError(f"input.variables: column {v!r} of {origin} is not numeric: list numeric "
                              "columns only, or clean the column")
     if needs_time:
         try:
@@ -380,6 +512,18 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
                                           inp["split_by"], inp["seasons"])
     else:
         codes_flat, labels = np.zeros(len(table), dtype=np.int16), []
+    label_dims, label_names, label_info, members_flat = [], {}, {}, None
+    row_times = pd.to_datetime(table[tname]).to_numpy() if needs_time else np.arange(len(table))
+    if inp["windows"] or source_of is not None:
+        label_dims, label_names, label_info, members_flat = _labels.label_members(
+            wf, row_times, table["_mvkde_source"].to_numpy() if source_of is not None else None,
+            list(inp["sources"]), origin)
+    n_season = max(1, len(labels)) if inp["split_by"] else 1
+    n_labels = 1 if members_flat is None else members_flat.shape[0]
+    rates = _labels.rates(wf, np.unique(row_times) if members_flat is None else row_times, members_flat,
+                   codes_flat if inp["split_by"] else None, n_season, n_labels, origin) \
+        if members_flat is not None else _labels.rates(wf, np.unique(row_times), None, None, n_season, 1, origin) \
+        if not inp["split_by"] else _labels.rates_by_unique(wf, row_times, codes_flat, n_season, origin)
     if group:
         keys, uniques = pd.factorize(table[group], sort=True)
     else:
@@ -393,10 +537,15 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
     pos = np.arange(len(keys)) - np.repeat(np.cumsum(sizes) - sizes, sizes)
     values[keys[order], pos] = table[names].to_numpy(dtype=float)[order]
     codes[keys[order], pos] = codes_flat[order]
+    members = None
+    if members_flat is not None:
+        members = np.zeros((members_flat.shape[0], n_groups, width), dtype=bool)
+        members[:, keys[order], pos] = members_flat[:, order]
 
     cell_dims = [group] if group else []
     if not group:
         values, codes = values[0], codes[0]
+        members = None if members is None else members[:, 0]
     tile = _tile_shape((n_groups,) if group else (), block_cells(wf, n_groups))
     import dask.array as da
 
@@ -407,7 +556,9 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
     units = [wf.variable(v)["units"] or "" for v in names]
     counts = (int(sizes.min()), int(np.median(sizes)), int(sizes.max()))
     plan = Plan(wf, kind, files, arr, codes, cell_dims, cell_coords, inp["split_by"], labels, tile,
-                list(names), units, {v: {} for v in names}, counts)
+                list(names), units, {v: {} for v in names}, counts, origin=origin, label_dims=label_dims,
+                label_names=label_names, label_info=label_info, members=members, rates=rates)
+    _labels.note_empty_labels(plan)
     if inp["sample_dims"] != ["time"]:
         plan.notes.append("input.sample_dims is ignored for tables: every row of a group is a sample")
     if not any(units):
@@ -420,8 +571,13 @@ def _prepare_table(wf: Workflow, files, kind) -> Plan:
 # the shared grid
 # ---------------------------------------------------------------------------
 
-def resolve_axes(plan: Plan, compute=None) -> list[np.ndarray]:
+def resolve_axes(plan: Plan, compute=None, *, check_bounds: bool = True) -> list[np.ndarray]:
     """Evaluation axes shared by every cell: grid.limits, else the pooled data range.
+
+    With ``check_bounds`` the same pass over the data refuses values outside
+    declared bounds before any fit; a lazy caller passes False (and asks the
+    block tasks to refuse them, ``CellSettings.refuse_outside_bounds``), so
+    that with every limit given nothing is read here.
 
     The pooled range is widened by 20 % each side (the kernel's reach beyond
     the data, common practice for a shared grid) and cut at the bounds; for
@@ -433,7 +589,7 @@ def resolve_axes(plan: Plan, compute=None) -> list[np.ndarray]:
     limits = dict(wf["grid"]["limits"])
     sphere = list(wf["estimator"].get("sphere") or [])
     todo = [v for v in plan.names if v not in limits and wf.variable(v)["period"] is None and v not in sphere]
-    bounded = [v for v in plan.names if wf.variable(v)["bounds"] is not None]
+    bounded = [v for v in plan.names if wf.variable(v)["bounds"] is not None] if check_bounds else []
     for v in plan.names:
         if wf.variable(v)["period"] is not None and v not in limits:
             limits[v] = [0.0, wf.variable(v)["period"]]
@@ -495,6 +651,8 @@ def resolve_axes(plan: Plan, compute=None) -> list[np.ndarray]:
 
 
 def where_files(plan: Plan) -> str:
+    if not plan.files:
+        return plan.origin or "the input"
     return plan.files[0].name + (f" and {len(plan.files) - 1} more file(s)" if len(plan.files) > 1 else "")
 
 

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import glob
 import os
+import shutil
 from pathlib import Path
 
 import numpy as np
@@ -20,9 +21,10 @@ from ..directional import node_areas_km2
 from ..estimator import CAUTION
 from ..errors import InputError
 from ..units import density_units
+from . import provenance as _prov
 from .blocks import FLAGS, CellSettings
 from .inputs import Plan
-from .products import add_cell_products, add_grid_products
+from .products import add_cell_products, add_comparison, add_grid_products, add_return_periods
 
 
 def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Dataset:
@@ -33,18 +35,21 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
     results = results["arrays"]
     names, units = plan.names, plan.units
     cdims = list(plan.cell_dims)
-    split = [plan.split_dim] if plan.split_dim else []
+    split = plan.split_dims
     lead = cdims + split
+    split_shape = plan.split_shape
 
-    def squeeze(a):  # drop the split axis when there is no split
-        return a if split else a.reshape(a.shape[: len(cdims)] + a.shape[len(cdims) + 1:])
+    def squeeze(a):  # the flat split axis as the label dims and the season split (none without them)
+        a = np.asarray(a)
+        return a.reshape(a.shape[: len(cdims)] + split_shape + a.shape[len(cdims) + 1:])
 
     coords = {}
     for dname in cdims:
         if dname in plan.cell_coords:
             c = plan.cell_coords[dname]
             coords[dname] = (dname, np.asarray(c.values), dict(getattr(c, "attrs", {})))
-    if split:
+    coords.update(label_coords(plan))
+    if plan.split_dim:
         coords[plan.split_dim] = (plan.split_dim, np.asarray(plan.split_labels),
                                   {"long_name": "meteorological season (DJF, MAM, JJA, SON)"
                                    if plan.split_dim == "season" else "month of the year"})
@@ -107,11 +112,59 @@ def build_dataset(plan: Plan, settings: CellSettings, results: dict) -> xr.Datas
                 "long_name": "density of " + ", ".join(others) + f" on the point mass of {names[j]} "
                              f"(integrates to point_mass_probability)",
                 "units": density_units([u for k, u in enumerate(units) if k != j])})
+    data_vars["failure_reason"] = (lead, squeeze(np.asarray(results["failure_reason"], dtype=object)), {
+        "long_name": "why the estimator refused the cell (empty where it got a density)"})
     ds = xr.Dataset(data_vars, coords=coords)
     add_cell_products(ds, results, settings, lead, squeeze)
     add_grid_products(ds, plan.workflow["products"], names, j,
-                      settings.bounds[j][0] if j is not None else float("nan"))
+                      settings.bounds[j][0] if j is not None else float("nan"),
+                      sphere=(names.index(sphere[0]), names.index(sphere[1])) if sphere else None)
+    if plan.workflow["products"]["return_periods"] and len(settings.products.thresholds):
+        add_return_periods(ds, settings, np.asarray(plan.rates, dtype=float).reshape(split_shape),
+                           cdims, split, pm_bound=settings.bounds[j][0] if j is not None else None)
+    if settings.compare is not None:
+        add_comparison(ds, plan, settings, results, squeeze, lead)
     return ds
+
+
+def label_coords(plan: Plan) -> dict:
+    """Coordinates of the window and source dims: names, and the dates or paths of each label."""
+    coords = {}
+    if "window" in plan.label_dims:
+        spans = list(plan.workflow["input"]["windows"].values())
+        coords["window"] = ("window", np.asarray(plan.label_names["window"]), {
+            "long_name": "named time window of the samples (input.windows; both end days included)",
+            "note": "windows may overlap and differ in length; a sample in two windows counts in both"})
+        coords["window_start"] = ("window", np.array([a for a, _ in spans]), {"long_name": "first day of the window"})
+        coords["window_end"] = ("window", np.array([b for _, b in spans]), {"long_name": "last day of the window"})
+    if "source" in plan.label_dims:
+        coords["source"] = ("source", np.asarray(plan.label_names["source"]), {
+            "long_name": "named input the samples come from (input.sources)"})
+        coords["source_path"] = ("source", np.asarray(plan.label_info["source"]),
+                                 {"long_name": "path or glob of the source"})
+    return coords
+
+
+def global_attributes(wf, settings: CellSettings, names: list, rec: dict) -> dict:
+    """The global attributes of an output (the same from ``mvkde run`` and :func:`mvkde.densities`)."""
+    est = wf["estimator"]
+    return {
+        "title": wf["output"]["title"] or ("joint probability density of " + ", ".join(names)),
+        "Conventions": "CF-1.8",
+        "source": f"mvkde {rec['software']['mvkde']}: multivariate kernel density estimation",
+        "history": _prov.history_line(rec),
+        "provenance": _prov.to_json(rec),
+        "caution": CAUTION,
+        "kernel": est["kernel"], "kernel_form": est["form"], "bandwidth_method": est["bandwidth"],
+        "bandwidth_parametrization": est["parametrization"],
+        "boundary": settings.boundary or "none",
+        "min_samples": int(wf["input"]["min_samples"]),
+    }
+
+
+def is_zarr_path(path) -> bool:
+    """An output path naming a Zarr store (``output.path`` ending in ``.zarr``)."""
+    return str(path).rstrip("/").lower().endswith(".zarr")
 
 
 def encoding_for(ds: xr.Dataset, plan: Plan, output: dict) -> dict:
@@ -172,7 +225,10 @@ def clean_stale_partials(path) -> list[Path]:
         if not pid_text.isdigit() or int(pid_text) == os.getpid() or _pid_alive(int(pid_text)):
             continue
         try:
-            f.unlink()
+            if f.is_dir() and not f.is_symlink():  # a Zarr store
+                shutil.rmtree(f)
+            else:
+                f.unlink()
             removed.append(f)
         except OSError:
             pass
@@ -184,8 +240,11 @@ def check_output_path(path, *, overwrite: bool = False) -> Path:
     path = Path(path)
     if path.exists() and not overwrite:
         raise InputError(f"output {path} exists: pass --overwrite (or choose another output.path)")
-    if path.exists() and path.is_dir():
+    if path.exists() and path.is_dir() and not (is_zarr_path(path) and _looks_like_zarr(path)):
         raise InputError(f"output.path {path} is a folder: name a file, e.g. {path / 'density.nc'}")
+    if path.exists() and not path.is_dir() and is_zarr_path(path):
+        raise InputError(f"output.path {path} is a file, not a Zarr store: remove it or choose another "
+                         "output.path")
     folder = path.parent if str(path.parent) else Path(".")
     try:
         folder.mkdir(parents=True, exist_ok=True)
@@ -211,3 +270,68 @@ def write_netcdf_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encodi
         if tmp.exists():
             tmp.unlink()
     return path
+
+
+def _looks_like_zarr(path: Path) -> bool:
+    return any((path / name).exists() for name in ("zarr.json", ".zgroup", ".zattrs"))
+
+
+def zarr_encoding(ds: xr.Dataset, netcdf_encoding: dict) -> dict:
+    """The netCDF encoding translated for Zarr: same chunks (one block of cells) and storage types."""
+    enc = {}
+    for name, e in (netcdf_encoding or {}).items():
+        z = {}
+        if "chunksizes" in e:
+            z["chunks"] = e["chunksizes"]
+        if "dtype" in e:
+            z["dtype"] = e["dtype"]
+        if "_FillValue" in e:
+            z["_FillValue"] = e["_FillValue"]
+        enc[name] = z
+    return enc
+
+
+def write_zarr_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding=None) -> Path:
+    """Write ``ds`` as a Zarr store at ``path``: a temporary store in the same folder, renamed when complete.
+
+    The store is a folder, so an existing output is first moved aside and
+    removed only once the new store is in place; a write that fails or is
+    killed leaves no store at ``path`` (the temporary one is removed here, or
+    by the next run's :func:`clean_stale_partials`).
+    """
+    try:
+        import zarr  # noqa: F401
+    except ImportError:
+        raise InputError(f"output.path {path} asks for a Zarr store, which needs the zarr package: "
+                         "pip install 'mvkde[zarr]' (or name a .nc file)") from None
+    path = check_output_path(path, overwrite=overwrite)
+    clean_stale_partials(path)
+    tmp = temporary_path(path)
+    old = path.with_name(f".{path.name}.{os.getpid()}.old.partial")
+    try:
+        if tmp.exists():
+            shutil.rmtree(tmp)
+        # Zarr format 2: read by every zarr and xarray release, and its string and
+        # consolidated-metadata encodings are stable (zarr warns that format 3 ones are not yet)
+        # text variables (failure_reason) as fixed-width unicode: Zarr format 2 stores no Python objects
+        text = {name: ds[name].astype(str) for name, var in ds.data_vars.items() if var.dtype.kind == "O"}
+        ds = ds.assign(text) if text else ds
+        ds.to_zarr(tmp, mode="w", encoding=zarr_encoding(ds, encoding), consolidated=True, zarr_format=2)
+        if path.exists():
+            os.replace(path, old)
+        os.replace(tmp, path)
+    except OSError as exc:  # disk full, quota, a folder removed under the run
+        raise InputError(f"cannot write output {path}: {exc.strerror or exc}: free space or choose another "
+                         "output.path") from None
+    finally:
+        for leftover in (tmp, old):
+            if leftover.exists():
+                shutil.rmtree(leftover, ignore_errors=True)
+    return path
+
+
+def write_output_atomic(ds: xr.Dataset, path, *, overwrite: bool = False, encoding=None) -> Path:
+    """netCDF, or a Zarr store when ``path`` ends in ``.zarr``; either way complete or absent."""
+    if is_zarr_path(path):
+        return write_zarr_atomic(ds, path, overwrite=overwrite, encoding=encoding)
+    return write_netcdf_atomic(ds, path, overwrite=overwrite, encoding=encoding)

@@ -167,3 +167,167 @@ def add_grid_products(ds: xr.Dataset, spec: dict, names: list, pm_index, pm_boun
                                 bound=float(pm_bound) if k == pm_index else float("nan"))
             ds[f"quantile_{v}"] = (lead_dims + ["probability"], q,
                                    {"long_name": f"marginal quantile of {v}", "units": units[k]})
+
+
+# ---------------------------------------------------------------------------
+# joint return periods
+# ---------------------------------------------------------------------------
+
+def cdf_at_thresholds(density, axes, thresholds, nlead, *, point_mass_probability=None, density_at_point_mass=None,
+                      pm_index=None, pm_bound=None) -> np.ndarray:
+    """Joint CDF P(X <= t componentwise) at each threshold row from gridded densities (leading cell axes).
+
+    The grid's cumulative trapezoid sums (:func:`mvkde.products.grid.cumulative`, as the ``cdf``
+    product) interpolated multilinearly at t, t clipped to the grid (the CDF is 0 at the first node,
+    the whole grid mass beyond the last); the point mass (at its bound) adds p x the CDF of the
+    other variables on it where t reaches the bound.  Returns (*lead, m).
+    """
+    t = np.atleast_2d(np.asarray(thresholds, dtype=float))
+    d = len(axes)
+    clean = np.nan_to_num(np.asarray(density, dtype=float), nan=0.0)
+    out = _lower_at(_grid.cumulative(clean, axes, upper=False, nlead=nlead), axes, t, nlead)
+    if pm_index is not None and point_mass_probability is not None:
+        p = np.asarray(point_mass_probability, dtype=float)
+        if d == 1:
+            part = np.repeat(p[..., None], t.shape[0], axis=-1)
+        else:
+            others = [k for k in range(d) if k != pm_index]
+            at = np.nan_to_num(np.asarray(density_at_point_mass, dtype=float), nan=0.0)
+            sub = [axes[k] for k in others]
+            part = _lower_at(_grid.cumulative(at, sub, upper=False, nlead=nlead), sub, t[:, others], nlead)
+        out = out + np.where(t[:, pm_index] >= pm_bound, part, 0.0)
+    nan = np.isnan(np.asarray(density, dtype=float)).reshape(np.shape(density)[:nlead] + (-1,)).all(axis=-1)
+    out[nan] = np.nan
+    return np.clip(out, 0.0, 1.0)
+
+
+def _lower_at(cum, axes, t, nlead) -> np.ndarray:
+    """Multilinear interpolation of (*lead, *grid) node values at the rows of t -> (*lead, m)."""
+    cols = []
+    for row in t:
+        out = cum
+        for a, x in zip(axes, row):
+            a = np.asarray(a, dtype=float)
+            w = np.zeros(a.size)
+            x = min(max(float(x), a[0]), a[-1])
+            i = int(np.clip(np.searchsorted(a, x, side="right") - 1, 0, a.size - 2)) if a.size > 1 else 0
+            if a.size == 1:
+                w[0] = 1.0
+            else:
+                f = (x - a[i]) / (a[i + 1] - a[i])
+                w[i], w[i + 1] = 1.0 - f, f
+            out = np.tensordot(out, w, axes=([nlead], [0]))
+        cols.append(out)
+    return np.stack(cols, axis=-1)
+
+
+def add_return_periods(ds: xr.Dataset, settings, rates, cdims: list, split: list, pm_bound=None) -> None:
+    """``cdf_at_threshold``, ``observations_per_year``, ``return_period_and`` and ``return_period_or``.
+
+    T_AND = 1 / (lambda exceedance_at_threshold) and T_OR = 1 / (lambda (1 - cdf_at_threshold)), both
+    from the numbers the file holds (Salvadori & De Michele 2004); lambda per split (a season's
+    samples per year are its own days).
+    """
+    from ..products.return_periods import RETURN_PERIOD_CAUTION
+
+    names = list(settings.names)
+    lead = cdims + split
+    thr = settings.products.thresholds
+    j = settings.point_mass_index
+    nlead = len(lead)
+    cdf = cdf_at_thresholds(ds["density"].values, settings.axes, thr, nlead,
+                            point_mass_probability=ds["point_mass_probability"].values if j is not None else None,
+                            density_at_point_mass=(ds["density_at_point_mass"].values
+                                                   if j is not None and "density_at_point_mass" in ds else None),
+                            pm_index=j, pm_bound=pm_bound)
+    ds["cdf_at_threshold"] = (lead + ["threshold"], cdf, {
+        "long_name": "joint non-exceedance probability P(" + ", ".join(f"{v} <= threshold_{v}" for v in names)
+                     + "), from the density grid (cumulative trapezoid sums, as the cdf product)",
+        "units": "1", "caution": CAUTION_PRODUCTS})
+    rates = np.asarray(rates, dtype=float)
+    ds["observations_per_year"] = (split, rates, {
+        "long_name": "observations per year lambda of the return periods (samples of the split per year of "
+                     "its label, or products.observations_per_year)", "units": "year-1"})
+    lam = rates.reshape((1,) * len(cdims) + rates.shape + (1,))
+    exceed = ds["exceedance_at_threshold"].values
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t_and = 1.0 / (lam * exceed)
+        t_or = 1.0 / (lam * (1.0 - cdf))
+    common = {"units": "year", "observations_per_year": "the observations_per_year variable",
+              "reference": "Salvadori, G. & De Michele, C. (2004). Frequency analysis via copulas: theoretical "
+                           "aspects and applications to hydrological events. Water Resources Research 40, "
+                           "W12511",
+              "caution": RETURN_PERIOD_CAUTION + " " + CAUTION_PRODUCTS}
+    ds["return_period_and"] = (lead + ["threshold"], t_and, {
+        "long_name": "joint return period of every variable exceeding its threshold: "
+                     "1 / (observations_per_year x exceedance_at_threshold)", **common})
+    ds["return_period_or"] = (lead + ["threshold"], t_or, {
+        "long_name": "joint return period of at least one variable exceeding its threshold: "
+                     "1 / (observations_per_year x (1 - cdf_at_threshold))", **common})
+
+
+# ---------------------------------------------------------------------------
+# comparison of labels
+# ---------------------------------------------------------------------------
+
+COMPARE_NAMES = ("density_difference", "density_change_significant", "probability_ratio",
+                 "probability_ratio_lower", "probability_ratio_upper", "point_mass_probability_change",
+                 "common_bandwidth")
+
+
+def add_comparison(ds: xr.Dataset, plan, settings, results: dict, squeeze, lead: list) -> None:
+    """The [compare] outputs, over ``DIM_compared`` (the labels other than the reference)."""
+    from ..comparison import COMPARE_CAUTION
+
+    cmp_ = settings.compare
+    names = list(settings.names)
+    dim = plan.label_dims[cmp_.axis]
+    labels = plan.label_names[dim]
+    keep = [i for i in range(len(labels)) if i != cmp_.reference]
+    new = f"{dim}_compared"
+    axis = len(plan.cell_dims) + cmp_.axis
+    dims = [new if x == dim else x for x in lead]
+    reference = labels[cmp_.reference]
+    ds.coords[new] = (new, np.asarray([labels[i] for i in keep]), {
+        "long_name": f"{dim} compared with the reference {dim} {reference!r}", "reference": reference})
+    units = ds["density"].attrs["units"]
+    test = ("local kernel two-sample z test with a common bandwidth matrix (Duong, Koch & Wand 2009, Biometrical "
+            "Journal 51, 504-521; Duong 2013), false discovery rate over the tested nodes of each cell by "
+            "Benjamini & Hochberg (1995), statsmodels multipletests")
+    common_h = ("both samples of a pair refitted with ONE bandwidth matrix H, chosen by estimator.bandwidth on "
+                "the two samples pooled (a given matrix is used as it is), so the smoothing bias cancels under "
+                "the null")
+    base = {"reference": reference, "compared_dim": dim, "alpha": cmp_.alpha, "common_bandwidth": common_h,
+            "caution": COMPARE_CAUTION}
+    attrs = {
+        "density_difference": {"long_name": f"density of the {dim} minus density of the reference {dim} "
+                                            f"{reference!r}, both with the common bandwidth matrix",
+                               "units": units, **base},
+        "density_change_significant": {"long_name": "1 where the density difference is significant by the local "
+                                                    "test (0 elsewhere, at untested nodes below the floor and "
+                                                    "where there is no comparison)", "units": "1", "test": test,
+                                       "floor": 0.05, "floor_note": "nodes where the mean of the two densities is "
+                                       "below 0.05 x its largest value in the cell are not tested", **base},
+        "probability_ratio": {"long_name": "P_label(X > threshold) / P_reference(X > threshold), componentwise "
+                                           "joint exceedance, both from the common-H densities on the grid",
+                              "units": "1", "note": "without products.bootstrap there are no interval limits",
+                              **base},
+        "point_mass_probability_change": {"long_name": "point-mass probability of the label minus that of the "
+                                                       "reference", "units": "1", **base},
+        "common_bandwidth": {"long_name": "common bandwidth matrix H of the pair", "choice": common_h},
+    }
+    for side in ("lower", "upper"):
+        attrs[f"probability_ratio_{side}"] = {
+            "long_name": f"{side} limit of the bootstrap percentile interval of probability_ratio", "units": "1",
+            "band_level": settings.products.band_level, "replicates": cmp_.bootstrap,
+            "bootstrap": "each label's sample resampled independently; H held fixed at the common matrix",
+            **base}
+    for name in COMPARE_NAMES:
+        if name not in results:
+            continue
+        arr = np.take(squeeze(results[name]), keep, axis=axis)
+        rest = arr.ndim - len(lead)
+        tail = (names if name in ("density_difference", "density_change_significant") else
+                ["threshold"] if name.startswith("probability_ratio") else
+                ["variable_row", "variable_column"] if name == "common_bandwidth" else [])[:rest]
+        ds[name] = (dims + tail, arr, attrs[name])

@@ -69,15 +69,25 @@ def open_gridded(files, chunks=None) -> xr.Dataset:
     get dask chunks (``{}`` when ``chunks`` is None).
     """
     try:
-        if len(files) == 1:
-            return xr.open_dataset(files[0], chunks=chunks, engine="netcdf4")
-        return xr.open_mfdataset([str(f) for f in files], chunks={} if chunks is None else chunks,
-                                 engine="netcdf4",
-                                 combine="by_coords", data_vars="minimal", coords="minimal",
-                                 compat="override", parallel=False)
+        try:
+            return _open(files, chunks, decode_times=True)
+        except ValueError as exc:
+            if "decode time" not in str(exc):
+                raise
+            # a time coordinate in units xarray cannot decode: keep its numbers (a run that needs
+            # dates then says so, naming the coordinate)
+            return _open(files, chunks, decode_times=False)
     except (OSError, ValueError) as exc:
         raise InputError(f"input.path: cannot open {', '.join(map(str, files[:3]))}"
                          f"{' ...' if len(files) > 3 else ''} as netCDF: {exc}") from None
+
+
+def _open(files, chunks, decode_times: bool) -> xr.Dataset:
+    if len(files) == 1:
+        return xr.open_dataset(files[0], chunks=chunks, engine="netcdf4", decode_times=decode_times)
+    return xr.open_mfdataset([str(f) for f in files], chunks={} if chunks is None else chunks, engine="netcdf4",
+                             combine="by_coords", data_vars="minimal", coords="minimal", compat="override",
+                             parallel=False, decode_times=decode_times)
 
 
 def check_units_agree(files, names) -> None:

@@ -32,7 +32,7 @@ class BlockStore:
             import zarr
         except ImportError:
             raise ConfigError(f"{plan.workflow.source}: output.resume = true needs the zarr package: "
-                              "pip install 'mvkde[resume]' (or set output.resume = false)") from None
+                              "pip install 'mvkde[zarr]' (or set output.resume = false)") from None
         self.zarr = zarr
         self.path = Path(path)
         self.markers = self.path / "done"
@@ -65,11 +65,19 @@ class BlockStore:
         for name in self.root.array_keys():
             block = np.asarray(self.root[name][tile if tile else ...])
             out[name] = block.reshape((ncell,) + block.shape[len(tile):])
-        return BlockResult(out, [tuple(m) for m in meta["failures"]], set(meta["engines"]), set(meta["paths"]))
+        failures = [tuple(m) for m in meta["failures"]]
+        # text arrays live in the marker (Zarr arrays hold numbers): the reasons come back from the failures
+        out["failure_reason"] = np.full(out["flags"].shape, "", dtype=object)
+        first = int(meta["first_cell"])
+        for cell, split, message in failures:
+            out["failure_reason"][cell - first, split] = message
+        return BlockResult(out, failures, set(meta["engines"]), set(meta["paths"]))
 
     def write(self, i: int, tile, res: BlockResult) -> None:
         tshape = tuple(t.stop - t.start for t in tile)
         for name, arr in res.arrays.items():
+            if arr.dtype.kind == "O":
+                continue  # text: kept in the marker (failures)
             if name not in self.root:
                 fill = np.nan if arr.dtype.kind == "f" else 0
                 self.root.create_array(name, shape=self.cell_shape + arr.shape[1:], dtype=arr.dtype,
@@ -77,8 +85,11 @@ class BlockStore:
                                        fill_value=fill)
             self.root[name][tile if tile else ...] = arr.reshape(tshape + arr.shape[1:])
         meta = {"failures": [list(m) for m in res.failures], "engines": sorted(e for e in res.engines if e),
-                "paths": sorted(res.paths)}
+                "paths": sorted(res.paths), "first_cell": self._first_cell(tile)}
         _write_atomic(self.markers / f"{i}.json", json.dumps(meta))
+
+    def _first_cell(self, tile) -> int:
+        return int(np.ravel_multi_index(tuple(t.start for t in tile), self.cell_shape)) if tile else 0
 
     def remove(self) -> None:
         shutil.rmtree(self.path, ignore_errors=True)

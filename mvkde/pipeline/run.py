@@ -12,7 +12,7 @@ Reading a run from ``mvkde run`` down::
         schedule.execute                one blocks.process_block per block -> mvkde.cells.fit_cells
         output.build_dataset            labelled Dataset (+ products.add_*_products)
       provenance.record                 versions, inputs' SHA-256, resolved workflow
-      output.write_netcdf_atomic        temporary file -> rename
+      output.write_output_atomic        temporary file (netCDF) or store (.zarr) -> rename
 
 ``mvkde check`` is :func:`plan_run` and :func:`describe_plan`.
 """
@@ -27,9 +27,12 @@ import numpy as np
 from ..errors import ConfigError, InputError
 from ..estimator import CAUTION
 from . import provenance as _prov
-from .blocks import FLAGS, check_settings, settings_for
+from ..errors import MvkdeError
+from ..estimator import fit
+from .blocks import COARSE_SPACING, FLAGS, check_settings, settings_for
 from .inputs import Plan, check_memory, estimate_sizes, human_bytes, prepare, resolve_axes, where_files
-from .output import check_output_path, clean_stale_partials, encoding_for, build_dataset, write_netcdf_atomic
+from .output import (build_dataset, check_output_path, clean_stale_partials, encoding_for, global_attributes,
+                     is_zarr_path, write_output_atomic)
 from .resume import BlockStore, resume_store_path
 from .schedule import Progress, Scheduler, execute
 from .workflow import Workflow, load
@@ -145,7 +148,49 @@ def describe_plan(plan: Plan) -> str:
     lines.append(f"  output      {wf['output']['path']}: about {human_bytes(sizes['output_bytes'])} before compression")
     for note in plan.notes:
         lines.append(f"  note        {note}")
+    for warning in coarse_grid_warnings(plan):
+        lines.append(f"  warning     {warning}")
     return "\n".join(lines)
+
+
+def coarse_grid_warnings(plan: Plan) -> list[str]:
+    """Variables whose grid spacing exceeds the kernel's standard deviation in a sample cell.
+
+    The first cell with enough valid samples is fitted with the run's own
+    settings (all its samples pooled, so its bandwidths are if anything
+    smaller than a split's); a spacing above ``COARSE_SPACING`` kernel
+    standard deviations makes the trapezoid rule miss the density near a
+    bound or a peak, and the products integrated on the grid are biased.
+    """
+    wf = plan.workflow
+    first = plan.values.isel({d: 0 for d in plan.cell_dims}) if plan.cell_dims else plan.values
+    x = np.asarray(first.values, dtype=float).reshape(-1, len(plan.names))
+    x = x[np.isfinite(x).all(axis=1)]
+    if len(x) < max(wf["input"]["min_samples"], len(plan.names) + 1):
+        return []
+    settings = settings_for(plan, None)
+    try:
+        H = fit(x, **settings.fit_kwargs()).H
+    except MvkdeError:
+        return []
+    out = []
+    limits = wf["grid"]["limits"]
+    for j, (v, size) in enumerate(zip(plan.names, wf.grid_size())):
+        table = wf.variable(v)
+        if table["period"] is not None or v in (wf["estimator"].get("sphere") or ()) or not np.isfinite(H[j, j]):
+            continue
+        if v in limits:
+            lo, hi = limits[v]
+        else:
+            lo, hi = float(x[:, j].min()), float(x[:, j].max())
+            lo, hi = lo - 0.2 * (hi - lo), hi + 0.2 * (hi - lo)
+        spacing, sd = (hi - lo) / (size - 1), float(np.sqrt(H[j, j]))
+        if spacing > COARSE_SPACING * sd:
+            need = int(np.ceil((hi - lo) / (COARSE_SPACING * sd))) + 1
+            out.append(f"grid.size gives {v} a node spacing of {spacing:.3g}, above {COARSE_SPACING:g} x the "
+                       f"kernel's standard deviation {sd:.3g} in the first cell: products integrated on the grid will be biased; "
+                       f"use about {need} nodes for {v}")
+    return out
 
 
 def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out=None, progress_stream=None):
@@ -158,6 +203,12 @@ def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out
     overwrite = overwrite or wf["output"]["overwrite"]
     target = check_output_path(wf["output"]["path"], overwrite=overwrite)
     clean_stale_partials(target)  # left by an earlier run that was killed while writing
+    if is_zarr_path(target):
+        try:
+            import zarr  # noqa: F401
+        except ImportError:
+            raise ConfigError(f"{wf.source}: output.path = {str(target)!r} names a Zarr store, which needs the "
+                              "zarr package: pip install 'mvkde[zarr]' (or name a .nc file)") from None
     plan = plan_run(wf)
     store_path = resume_store_path(target) if wf["output"]["resume"] else None
     if store_path is not None:
@@ -165,25 +216,13 @@ def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out
             import zarr  # noqa: F401
         except ImportError:
             raise ConfigError(f"{wf.source}: output.resume = true needs the zarr package: "
-                              "pip install 'mvkde[resume]' (or set output.resume = false)") from None
+                              "pip install 'mvkde[zarr]' (or set output.resume = false)") from None
     ds, plan, settings, summary = run(wf, progress_stream=progress_stream, plan=plan, store_path=store_path)
     rec = _prov.record(wf, plan.files, command_line=command_line, extra={
         "scheduler": summary["scheduler"], "engines": summary["engines"], "batch": summary["paths"],
         "grid_limits": {v: [float(a[0]), float(a[-1])] for v, a in zip(plan.names, settings.axes)}})
-    est = wf["estimator"]
-    ds.attrs.update({
-        "title": wf["output"]["title"] or ("joint probability density of " + ", ".join(plan.names)),
-        "Conventions": "CF-1.8",
-        "source": f"mvkde {rec['software']['mvkde']}: multivariate kernel density estimation",
-        "history": _prov.history_line(rec),
-        "provenance": _prov.to_json(rec),
-        "caution": CAUTION,
-        "kernel": est["kernel"], "kernel_form": est["form"], "bandwidth_method": est["bandwidth"],
-        "bandwidth_parametrization": est["parametrization"],
-        "boundary": settings.boundary or "none",
-        "min_samples": int(wf["input"]["min_samples"]),
-    })
-    write_netcdf_atomic(ds, target, overwrite=overwrite, encoding=encoding_for(ds, plan, wf["output"]))
+    ds.attrs.update(global_attributes(wf, settings, plan.names, rec))
+    write_output_atomic(ds, target, overwrite=overwrite, encoding=encoding_for(ds, plan, wf["output"]))
     if summary["store"] is not None:
         summary["store"].remove()  # the output is complete: the finished blocks are no longer needed
     fc = summary["flag_counts"]

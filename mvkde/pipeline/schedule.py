@@ -10,43 +10,13 @@ there is one, and gathers the block results into arrays over the cells.
 from __future__ import annotations
 
 import logging
-import sys
-import time
 
 import numpy as np
 
 from ..errors import ConfigError
+from ..progress import Progress
 from .blocks import BlockResult, CellSettings, process_block
 from .inputs import Plan
-
-class Progress:
-    """A bar on a terminal; plain log lines (every 10 % or 30 s) otherwise."""
-
-    def __init__(self, total: int, stream=None, label="blocks"):
-        self.total, self.done, self.label = max(1, total), 0, label
-        self.stream = stream if stream is not None else sys.stderr
-        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
-        self.t0 = self.last = time.perf_counter()
-        self.last_tenth = -1
-
-    def update(self, n: int = 1) -> None:
-        self.done += n
-        now = time.perf_counter()
-        frac = self.done / self.total
-        if self.tty:
-            width = 30
-            fill = int(round(width * frac))
-            self.stream.write(f"\r[{'#' * fill}{'.' * (width - fill)}] {self.done}/{self.total} {self.label} "
-                              f"{now - self.t0:6.1f} s")
-            if self.done >= self.total:
-                self.stream.write("\n")
-            self.stream.flush()
-            return
-        tenth = int(frac * 10)
-        if tenth > self.last_tenth or now - self.last > 30 or self.done >= self.total:
-            self.last_tenth, self.last = tenth, now
-            print(f"mvkde run: {self.done}/{self.total} {self.label} done ({100 * frac:.0f} %), "
-                  f"{now - self.t0:.1f} s", file=self.stream, flush=True)
 
 
 def _worker_environ() -> dict:
@@ -187,14 +157,19 @@ class Scheduler:
 # the blocks of a run
 # ---------------------------------------------------------------------------
 
-def block_tasks(plan: Plan, settings: CellSettings, skip=()) -> list:
-    """One delayed :func:`process_block` per block of cells (except the blocks in ``skip``)."""
+def block_tasks(plan: Plan, settings: CellSettings, skip=(), token: str | None = None) -> list:
+    """One delayed :func:`process_block` per block of cells (except the blocks in ``skip``).
+
+    ``mvkde run`` gathers them with :func:`execute`; :func:`mvkde.densities`
+    assembles them into the dask arrays of a lazy Dataset.  Keys end in
+    ``token`` (default: unique to the call).
+    """
     import uuid
 
     import dask
 
     # a run-unique token: two runs on one shared dask cluster must never share keys
-    token = uuid.uuid4().hex[:12]
+    token = token or uuid.uuid4().hex[:12]
     tasks = []
     data = plan.values.data
     nd = len(plan.cell_dims)
@@ -202,14 +177,17 @@ def block_tasks(plan: Plan, settings: CellSettings, skip=()) -> list:
         if b in skip:
             continue
         block = data[tile] if tile else data
-        codes = plan.codes
+        codes, members = plan.codes, plan.members
         if nd:
-            # codes carry the cell dims only for tables (one row layout per group)
+            # codes (and label members) carry the cell dims only for tables (one row layout per group)
             codes = codes[tuple(t if codes.shape[k] > 1 else slice(None) for k, t in enumerate(tile))]
+            if members is not None:
+                members = members[(slice(None),) + tuple(t if members.shape[k + 1] > 1 else slice(None)
+                                                         for k, t in enumerate(tile))]
         tile_shape = tuple(t.stop - t.start for t in tile)
         first = _first_cell(tile, plan.cell_shape)
         tasks.append(dask.delayed(process_block, pure=True)(
-            block, codes, first, tile_shape, settings, dask_key_name=f"mvkde-block-{b}-{token}"))
+            block, codes, first, tile_shape, settings, members, dask_key_name=f"mvkde-block-{b}-{token}"))
     return tasks
 
 
@@ -238,7 +216,7 @@ def execute(plan: Plan, settings: CellSettings, scheduler: Scheduler, progress: 
         tshape = tuple(t.stop - t.start for t in tile)
         for name, arr in res.arrays.items():
             if name not in arrays:
-                fill = np.nan if arr.dtype.kind == "f" else 0
+                fill = np.nan if arr.dtype.kind == "f" else "" if arr.dtype.kind == "O" else 0
                 arrays[name] = np.full(ncell_shape + arr.shape[1:], fill, dtype=arr.dtype)
             arrays[name][tile] = arr.reshape(tshape + arr.shape[1:])
         failures.extend(res.failures)

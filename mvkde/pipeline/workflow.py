@@ -15,22 +15,19 @@ closest match.
 from __future__ import annotations
 
 import copy
-import datetime as _dt
 import math
 import os
 import tomllib
-from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable
 
-from .. import boundary, engines, kernels
-from ..bandwidth import PARAMETRIZATIONS, SELECTORS, BandwidthMatrix
+from ..bandwidth import BandwidthMatrix
 from ..errors import ConfigError, MvkdeError, closest_names
+from .keys import (Key, SEASONS, _bandwidth, _block_size, _bool, _bounds, _box, _choice, _float, _fractions, _int,
+                   _limits, _months, _number_list, _one_of, _opt_str, _paths, _scheduler, _seasons, _show, _size, _str,
+                   _str_list, _thresholds, _time_range, estimator_choices, _windows, _sources, _alpha)
 
-__all__ = ["SCHEMA", "Workflow", "load", "loads", "apply_override", "SEASONS", "REQUIRED",
+__all__ = ["SCHEMA", "Workflow", "load", "loads", "from_arguments", "apply_override", "SEASONS", "REQUIRED",
            "estimator_choices", "key_reference"]
-
-SEASONS = ("DJF", "MAM", "JJA", "SON")  # meteorological seasons (common practice)
 
 
 class _Required:
@@ -42,285 +39,10 @@ REQUIRED = _Required()
 
 
 # ---------------------------------------------------------------------------
-# choices: what the library's registries hold
-# ---------------------------------------------------------------------------
-
-def estimator_choices() -> dict[str, tuple[str, ...]]:
-    """Option names the library accepts, read from its registries (one source of truth)."""
-    return {
-        "kernel": tuple(kernels.KERNEL_NAMES) + tuple(kernels.HIGHER_ORDER_NAMES),
-        "form": tuple(kernels.FORMS),
-        "bandwidth": tuple(SELECTORS),
-        "parametrization": tuple(PARAMETRIZATIONS),
-        "boundary": tuple(boundary.BOUNDARY_METHODS),
-        "engine": tuple(engines.ENGINES),
-    }
-
 
 # ---------------------------------------------------------------------------
 # the schema
 # ---------------------------------------------------------------------------
-
-@dataclass(frozen=True)
-class Key:
-    """One workflow key: its default, a checker and a line of documentation.
-
-    ``check(value, where)`` returns the normalised value or raises ConfigError
-    (``where`` prefixes the message with file and key path).
-    """
-
-    default: Any
-    check: Callable
-    doc: str
-    choices: Callable | tuple | None = None
-
-
-def _fail(where: str, value, expected: str, valid=None) -> ConfigError:
-    hint = closest_names(value, valid, cutoff=0.5) if valid is not None and isinstance(value, str) else ""
-    return ConfigError(f"{where} = {_show(value)} is not valid: expected {expected}{hint}")
-
-
-def _show(value) -> str:
-    if isinstance(value, str):
-        return repr(value)
-    return str(value)
-
-
-def _str(value, where):
-    if not isinstance(value, str) or not value.strip():
-        raise _fail(where, value, "a non-empty string")
-    return value
-
-
-def _opt_str(value, where):
-    return None if value is None else _str(value, where)
-
-
-def _bool(value, where):
-    if not isinstance(value, bool):
-        raise _fail(where, value, "true or false")
-    return value
-
-
-def _int(lo=None, hi=None, optional=False):
-    def check(value, where):
-        if value is None and optional:
-            return None
-        if isinstance(value, bool) or not isinstance(value, int) or (lo is not None and value < lo) \
-                or (hi is not None and value > hi):
-            rng = f" between {lo} and {hi}" if hi is not None else (f" >= {lo}" if lo is not None else "")
-            raise _fail(where, value, f"an integer{rng}")
-        return value
-    return check
-
-
-def _float(optional=False, positive=False):
-    def check(value, where):
-        if value is None and optional:
-            return None
-        if isinstance(value, bool) or not isinstance(value, (int, float)) or math.isnan(value) \
-                or (positive and not (value > 0 and math.isfinite(value))):
-            raise _fail(where, value, "a positive finite number" if positive else "a number")
-        return float(value)
-    return check
-
-
-def _choice(option):
-    def check(value, where):
-        valid = estimator_choices()[option]
-        key = value.strip().lower() if isinstance(value, str) else value
-        if key not in valid:
-            raise _fail(where, value, "one of " + ", ".join(valid), valid)
-        return key
-    return check
-
-
-def _one_of(*valid, optional=False):
-    def check(value, where):
-        if value is None and optional:
-            return None
-        if value not in valid:
-            raise _fail(where, value, "one of " + ", ".join(map(str, valid)), valid)
-        return value
-    return check
-
-
-def _str_list(optional=False, nonempty=True):
-    def check(value, where):
-        if value is None and optional:
-            return None
-        if isinstance(value, str):
-            value = [value]
-        if not isinstance(value, list) or not all(isinstance(v, str) and v for v in value) \
-                or (nonempty and not value):
-            raise _fail(where, value, "a list of names, e.g. [\"pr\", \"tasmax\"]")
-        if len(set(value)) != len(value):
-            raise _fail(where, value, "distinct names")
-        return list(value)
-    return check
-
-
-def _fractions(value, where):
-    """A list of numbers strictly between 0 and 1 (HDR masses, quantile probabilities)."""
-    if not isinstance(value, list) or not all(isinstance(v, (int, float)) and not isinstance(v, bool)
-                                              and 0 < v < 1 for v in value):
-        raise _fail(where, value, "a list of numbers strictly between 0 and 1, e.g. [0.5, 0.9, 0.99]")
-    return [float(v) for v in value]
-
-
-def _number_list(value, where):
-    if not isinstance(value, list) or not all(isinstance(v, (int, float)) and not isinstance(v, bool)
-                                              and math.isfinite(v) for v in value) \
-            or any(b <= a for a, b in zip(value, value[1:])):
-        raise _fail(where, value, "an increasing list of numbers, e.g. [0, 3, 6, 10, 20]")
-    return [float(v) for v in value]
-
-
-def _thresholds(value, where):
-    """A list of points (one number per variable) for exceedance probabilities."""
-    if not isinstance(value, list) or not all(
-            isinstance(r, list) and r and all(isinstance(v, (int, float)) and not isinstance(v, bool)
-                                              for v in r) for r in value):
-        raise _fail(where, value, "a list of points, one number per variable, e.g. [[10.0, 25.0]]")
-    return [[float(v) for v in r] for r in value]
-
-
-def _paths(value, where):
-    if isinstance(value, str):
-        value = [value]
-    if not isinstance(value, list) or not value or not all(isinstance(v, str) and v for v in value):
-        raise _fail(where, value, "a path, a glob or a list of paths")
-    return list(value)
-
-
-def _pair(value, where, *, allow_inf=True, what="[lo, hi]"):
-    if not isinstance(value, list) or len(value) != 2 or not all(
-            isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
-        raise _fail(where, value, f"a pair {what}")
-    lo, hi = float(value[0]), float(value[1])
-    if math.isnan(lo) or math.isnan(hi) or not lo < hi or (
-            not allow_inf and not (math.isfinite(lo) and math.isfinite(hi))):
-        raise _fail(where, value, f"a pair {what} with lo < hi" + ("" if allow_inf else ", both finite"))
-    return [lo, hi]
-
-
-def _time_range(value, where):
-    if value is None:
-        return None
-    if not isinstance(value, list) or len(value) != 2:
-        raise _fail(where, value, "[start, end], e.g. [\"2001-01-01\", \"2003-12-31\"] or TOML dates")
-    out = []
-    for v in value:
-        if isinstance(v, (_dt.date, _dt.datetime)):
-            out.append(v.isoformat())
-        elif isinstance(v, str):
-            try:
-                _dt.date.fromisoformat(v[:10])
-            except ValueError:
-                raise _fail(where, value, "ISO dates, e.g. [\"2001-01-01\", \"2003-12-31\"]") from None
-            out.append(v)
-        else:
-            raise _fail(where, value, "[start, end] as ISO date strings or TOML dates")
-    if out[0][:10] > out[1][:10]:
-        raise _fail(where, value, "start <= end")
-    return out
-
-
-def _months(value, where):
-    if value is None:
-        return None
-    if isinstance(value, int) and not isinstance(value, bool):
-        value = [value]
-    if not isinstance(value, list) or not value or not all(
-            isinstance(m, int) and not isinstance(m, bool) and 1 <= m <= 12 for m in value):
-        raise _fail(where, value, "a list of month numbers 1..12")
-    return sorted(set(value))
-
-
-def _seasons(value, where):
-    if value is None:
-        return None
-    if isinstance(value, str):
-        value = [value]
-    if not isinstance(value, list) or not value:
-        raise _fail(where, value, "a list of seasons from " + ", ".join(SEASONS))
-    out = []
-    for s in value:
-        key = s.upper() if isinstance(s, str) else s
-        if key not in SEASONS:
-            raise _fail(where, s, "one of " + ", ".join(SEASONS), SEASONS)
-        out.append(key)
-    return [s for s in SEASONS if s in out]
-
-
-def _box(value, where):
-    if value is None:
-        return {}
-    if not isinstance(value, dict):
-        raise _fail(where, value, "a table of coordinate = [lo, hi], e.g. {lat = [60, 61], lon = [20, 22]}")
-    return {str(k): _pair(v, f"{where}.{k}", allow_inf=False) for k, v in value.items()}
-
-
-def _size(value, where):
-    if isinstance(value, int) and not isinstance(value, bool):
-        value = [value]
-    if not isinstance(value, list) or not value or not all(
-            isinstance(s, int) and not isinstance(s, bool) and 2 <= s <= 4096 for s in value):
-        raise _fail(where, value, "a node count (2..4096) or a list of them, one per variable")
-    return list(value)
-
-
-def _limits(value, where):
-    if value is None:
-        return {}
-    if not isinstance(value, dict):
-        raise _fail(where, value, "a table of variable = [lo, hi]")
-    return {str(k): _pair(v, f"{where}.{k}", allow_inf=False) for k, v in value.items()}
-
-
-def _bandwidth(value, where):
-    """A selector name, or a given matrix H as a list of rows (checked against d later)."""
-    if isinstance(value, list):
-        if not value or not all(isinstance(r, list) and r and all(
-                isinstance(x, (int, float)) and not isinstance(x, bool) for x in r) for r in value):
-            raise _fail(where, value, "a selector name or a d x d matrix of numbers, e.g. [[1.0, 0.2], [0.2, 0.5]]")
-        return [[float(x) for x in r] for r in value]
-    return _choice("bandwidth")(value, where)
-
-
-def _scheduler(value, where):
-    if not isinstance(value, str):
-        raise _fail(where, value, "\"threads\", \"processes\", \"local-cluster\" or \"tcp://HOST:PORT\"")
-    if value in ("threads", "processes", "local-cluster", "synchronous"):
-        return value
-    if value.startswith(("tcp://", "tls://", "ucx://", "inproc://")):
-        rest = value.split("://", 1)[1]
-        if not rest:
-            raise _fail(where, value, "an address like \"tcp://HOST:PORT\"")
-        return value
-    raise _fail(where, value, "\"threads\", \"processes\", \"local-cluster\", \"synchronous\" or "
-                              "\"tcp://HOST:PORT\"", ("threads", "processes", "local-cluster", "synchronous"))
-
-
-def _block_size(value, where):
-    if value == "auto":
-        return value
-    if isinstance(value, bool) or not isinstance(value, int) or value < 1:
-        raise _fail(where, value, "\"auto\" or a positive integer")
-    return value
-
-
-def _bounds(value, where):
-    if value is None:
-        return None
-    if not isinstance(value, list) or len(value) != 2 or not all(
-            isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
-        raise _fail(where, value, "[lo, hi] with inf or -inf for an open side, e.g. [0, inf]")
-    lo, hi = float(value[0]), float(value[1])
-    if math.isnan(lo) or math.isnan(hi) or not lo < hi:
-        raise _fail(where, value, "[lo, hi] with lo < hi")
-    return [lo, hi]
-
 
 #: section -> key -> Key.  ``variables`` is a table of tables (one per variable),
 #: described by VARIABLE_KEYS; ``grid.limits`` and ``input.box`` are free tables.
@@ -328,7 +50,12 @@ SCHEMA: dict[str, dict[str, Key]] = {
     "input": {
         "path": Key(REQUIRED, _paths, "a netCDF file, a glob of netCDF files, a .csv or .parquet table, or a "
                                       "list of files; relative paths are looked up from the current folder, "
-                                      "then from the workflow file's folder"),
+                                      "then from the workflow file's folder (not needed with input.sources)"),
+        "windows": Key({}, _windows, "NAME = [start, end]: named time windows (ISO dates, both days included) "
+                                     "giving an output dimension window; windows may differ in length and may "
+                                     "overlap (a sample in two windows counts in both)"),
+        "sources": Key({}, _sources, "NAME = \"path or glob\": several inputs with the same variables and "
+                                     "cells, giving an output dimension source (replaces input.path)"),
         "variables": Key(REQUIRED, _str_list(), "variables whose joint density is estimated, in order"),
         "sample_dims": Key(["time"], _str_list(), "dimensions pooled into each sample; every other "
                                                   "dimension of the variables is a cell dimension"),
@@ -356,8 +83,10 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                                "scaled kernel)", "bandwidth"),
         "parametrization": Key("full", _choice("parametrization"), "full, diagonal or scalar H",
                                "parametrization"),
-        "boundary": Key("reflect", _choice("boundary"), "boundary correction for bounded variables "
-                                                        "(used only when bounds are declared)", "boundary"),
+        "boundary": Key("linear", _choice("boundary"), "boundary correction for bounded variables (used only "
+                                                       "when bounds are declared); linear = the linear boundary "
+                                                       "kernel (Jones 1993), reflection where it cannot apply "
+                                                       "(recorded in the output)", "boundary"),
         "engine": Key("auto", _choice("engine"), "evaluation engine", "engine"),
         "seed": Key(0, _int(lo=0), "seed of every random step (subsampling); recorded in the provenance"),
         "sphere": Key(None, _str_list(optional=True), "[latitude, longitude]: two of input.variables (degrees) "
@@ -405,16 +134,35 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "bootstrap": Key(0, _int(lo=0), "bootstrap replicates for percentile bands of the density "
                                         "(density_lower/upper) and of exceedance_at_threshold; 0 = none"),
         "band_level": Key(0.9, _float(positive=True), "coverage of the bootstrap bands (0 < level < 1)"),
+        "return_periods": Key(False, _bool, "write return_period_and and return_period_or (years) at "
+                                            "products.thresholds (Salvadori & De Michele 2004); needs "
+                                            "thresholds"),
+        "observations_per_year": Key(None, _float(optional=True, positive=True),
+                                     "samples per year for the return periods; default: the mean number "
+                                     "per year of the selection, from the time coordinate (required when "
+                                     "time is not a date)"),
+    },
+    "compare": {
+        "reference": Key(None, _opt_str, "a label of input.windows or input.sources: writes "
+                                         "density_difference, density_change_significant, and at "
+                                         "products.thresholds probability_ratio (with _lower/_upper from "
+                                         "products.bootstrap) for every other label"),
+        "alpha": Key(0.05, _alpha, "false discovery rate of the local test over each cell's grid "
+                                   "(Benjamini-Hochberg)"),
+        "dim": Key(None, _one_of("window", "source", optional=True),
+                   "which labels are compared (window or source), when both input.windows and "
+                   "input.sources are given; the other stays a plain dimension"),
     },
     "output": {
-        "path": Key(REQUIRED, _str, "output netCDF file (relative to the current folder)"),
+        "path": Key(REQUIRED, _str, "output netCDF file, or a Zarr store when it ends in .zarr (needs the zarr "
+                                    "extra); relative to the current folder"),
         "dtype": Key("float64", _one_of("float64", "float32"), "storage type of the density"),
         "complevel": Key(4, _int(lo=0, hi=9), "zlib compression level (0 = none)"),
         "title": Key(None, _opt_str, "global title attribute"),
         "overwrite": Key(False, _bool, "replace an existing output (also --overwrite)"),
         "resume": Key(False, _bool, "keep finished blocks in a Zarr store next to the output "
                                     "(folder OUTPUT.resume) and skip them when the run is restarted; needs "
-                                    "the resume extra (zarr)"),
+                                    "the zarr extra (also installed as the resume extra)"),
     },
 }
 
@@ -433,17 +181,18 @@ VARIABLE_KEYS: dict[str, Key] = {
 class Workflow:
     """A validated workflow: ``spec`` is the resolved dict with every default."""
 
-    def __init__(self, spec: dict, path: Path | None, overrides: list[str]):
+    def __init__(self, spec: dict, path: Path | None, overrides: list[str], name: str | None = None):
         self.spec = spec
         self.path = path
         self.overrides = list(overrides)
+        self.name = name
 
     def __getitem__(self, section):
         return self.spec[section]
 
     @property
     def source(self) -> str:
-        return str(self.path) if self.path else "<workflow>"
+        return str(self.path) if self.path else (self.name or "<workflow>")
 
     @property
     def variables(self) -> list[str]:
@@ -458,8 +207,12 @@ class Workflow:
 
     def input_paths(self) -> list[str]:
         """Input paths resolved: the current folder first, then the workflow's folder."""
+        return self.resolve_paths(self.spec["input"]["path"] or [])
+
+    def resolve_paths(self, paths) -> list[str]:
+        """Paths (or globs) resolved: the current folder first, then the workflow's folder."""
         out = []
-        for p in self.spec["input"]["path"]:
+        for p in paths:
             q = Path(os.path.expanduser(p))
             if not q.is_absolute() and self.path is not None and not _exists(q):
                 alt = self.path.parent / q
@@ -519,6 +272,11 @@ def loads(text: str, source=None, overrides=()) -> Workflow:
     return Workflow(spec, Path(source) if source else None, list(overrides))
 
 
+def from_arguments(raw: dict, name: str) -> Workflow:
+    """Validate a workflow given as a dict in the TOML layout (built from a function's arguments)."""
+    return Workflow(_validate(raw, name), None, [], name=name)
+
+
 def _override_key(item: str) -> str:
     return item.split("=", 1)[0].strip()
 
@@ -573,6 +331,8 @@ def _validate(raw: dict, source: str, overridden=frozenset()) -> dict:
             path = f"{sec}.{k}"
             if k in given:
                 spec[sec][k] = key.check(given[k], _where(source, path, overridden))
+            elif key.default is REQUIRED and path == "input.path" and given.get("sources"):
+                spec[sec][k] = None  # every input is a source
             elif key.default is REQUIRED:
                 raise ConfigError(f"{source}: missing required key {path!r} ({key.doc})")
             else:
@@ -600,7 +360,39 @@ def _validate(raw: dict, source: str, overridden=frozenset()) -> dict:
         }
 
     _cross_checks(spec, source)
+    _label_checks(spec, source)
     return spec
+
+
+def _label_checks(spec: dict, source: str) -> None:
+    """input.windows / input.sources, [compare] and the return periods: the combinations that cannot run."""
+    inp, cmp_, prod = spec["input"], spec["compare"], spec["products"]
+    if inp["sources"] and inp["path"] is not None:
+        raise ConfigError(f"{source}: input.path and input.sources are both given: with sources, every input "
+                          "is a source (drop input.path)")
+    present = {dim: list(inp[key]) for dim, key in (("window", "windows"), ("source", "sources")) if inp[key]}
+    if cmp_["dim"] is not None and cmp_["dim"] not in present:
+        raise ConfigError(f"{source}: compare.dim = {cmp_['dim']!r} but input.{cmp_['dim']}s is not given")
+    if cmp_["reference"] is not None:
+        if not present:
+            raise ConfigError(f"{source}: compare.reference = {cmp_['reference']!r} needs labels to compare: "
+                              "give input.windows or input.sources")
+        if len(present) == 2 and cmp_["dim"] is None:
+            raise ConfigError(f"{source}: both input.windows and input.sources are given: set compare.dim = "
+                              "\"window\" or \"source\" to say which labels are compared")
+        dim = cmp_["dim"] or next(iter(present))
+        labels = present[dim]
+        if cmp_["reference"] not in labels:
+            raise ConfigError(f"{source}: compare.reference = {cmp_['reference']!r} is not a {dim} label; the "
+                              f"{dim} labels are: {', '.join(labels)}" + closest_names(cmp_["reference"], labels))
+        if len(labels) < 2:
+            raise ConfigError(f"{source}: compare.reference = {cmp_['reference']!r} is the only {dim} label: "
+                              f"give at least two input.{dim}s")
+    elif cmp_["dim"] is not None:
+        raise ConfigError(f"{source}: compare.dim is set but compare.reference is not: name the reference label")
+    if prod["return_periods"] and not prod["thresholds"]:
+        raise ConfigError(f"{source}: products.return_periods = true needs products.thresholds (the points "
+                          "whose joint return periods are written)")
 
 
 def _cross_checks(spec: dict, source: str) -> None:

@@ -19,22 +19,23 @@ trapezoid sums and multilinear interpolation); the grid's size is an
 argument, and its limits extend past the data by the kernel's reach, so the
 mass outside is negligible.
 
+Uncertainty (standard error, bootstrap) is in :mod:`mvkde.products.uncertainty`,
+wind-rose tables in :mod:`mvkde.products.wind_rose`.
+
 References
 ----------
 Hyndman, R. J. (1996). Computing and graphing highest density regions.
 The American Statistician 50, 120-126.
-Wand, M. P. & Jones, M. C. (1995). Kernel Smoothing, Sec. 4.3 (variance).
-Hall, P. (1992). Effect of bias estimation on coverage accuracy of bootstrap
-confidence intervals for a probability density. Ann. Statist. 20, 675-694.
 """
 
 from __future__ import annotations
 
 import numpy as np
 import xarray as xr
-from scipy import integrate, interpolate
+from scipy import interpolate
 
 from ..errors import InputError
+from ..progress import Progress
 from ..units import density_units
 from . import grid as _grid
 
@@ -70,6 +71,21 @@ def _plain(est) -> bool:
 # ---------------------------------------------------------------------------
 
 def marginal_is_exact(est, idx) -> bool:
+    """Whether the marginal of the variables ``idx`` is an estimate of the same kind.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    idx : list of int
+        Indices of the kept variables.
+
+    Returns
+    -------
+    bool
+        True for the Gaussian kernel, a product kernel with the kept variables
+        leading (or no H cross terms between kept and dropped), a radial kernel
+        when nothing is dropped; directional factors drop exactly, a spherical pair as one.
+    """
     if getattr(est, "is_directional", False):
         return _directional_marginal_is_exact(est, idx)
     if est.kernel.name == "gaussian":
@@ -114,6 +130,15 @@ def node_weights(g: xr.DataArray) -> np.ndarray:
     Trapezoid weights along each axis; along a latitude/longitude pair
     carrying a ``cell_area`` coordinate, the node areas (see
     :mod:`mvkde.products.grid`).
+
+    Parameters
+    ----------
+    g : xarray.DataArray
+        A density on a grid, one dimension per variable.
+
+    Returns
+    -------
+    ndarray
     """
     return _grid.GridWeights([g[d].values for d in g.dims], _sphere_axes(g)).full()
 
@@ -126,7 +151,20 @@ def _sphere_axes(g: xr.DataArray):
 
 
 def marginal(est, names):
-    """The marginal estimate of ``names`` as a new estimate (exact cases only)."""
+    """The marginal estimate of ``names`` as a new estimate (exact cases only).
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    names : str or list of str
+        Variables to keep.
+
+    Returns
+    -------
+    DensityEstimate
+        Refitted on the kept columns with H's sub-block; InputError when not
+        exact (:func:`marginal_is_exact`).
+    """
     idx = _names_index(est, names)
     if not marginal_is_exact(est, idx):
         raise InputError(
@@ -134,9 +172,8 @@ def marginal(est, names):
             f"{est.kernel.form} {est.kernel.name} kernel with this H: use marginal_grid(...) "
             "(numerical, always available), or put these variables first when fitting"
         )
-    if est.point_mass_probability:
-        raise InputError("the marginal of an estimate with a point mass is not a single estimate: "
-                         "use marginal_grid(...) for the continuous part and point_mass_grid(...) for the rest")
+    if est.support.point_mass is not None:
+        return est._point_mass_marginal(idx)
     return est._refit(est.data[:, idx], idx, est.weights)
 
 
@@ -146,6 +183,19 @@ def marginal_grid(est, names, size=None, limits=None) -> xr.DataArray:
     With a point mass on a variable that is integrated out, the density of
     the kept variables on the point mass is added, so the marginal integrates
     to 1; a kept point-mass variable's marginal is that of its continuous part.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    names : str or list of str
+        Variables to keep, in the order of the result's dimensions.
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+
+    Returns
+    -------
+    xarray.DataArray
     """
     idx = _names_index(est, names)
     support = est.support
@@ -255,22 +305,66 @@ def _joint_probability(est, points, upper: bool, size, limits, what: str) -> np.
     _refuse_sphere(est, what)
     if _exact_cdf_available(est):
         return _exact_cdf(est, pts, upper=upper)
+    if est.n == 0:  # every value at the point mass: no continuous part
+        return _point_mass_part(est, pts, upper, size)
     axes, vals, _ = _grid_cumulative(est, size, limits, upper=upper)
     return _interp(axes, vals, pts, upper=upper) + _point_mass_part(est, pts, upper, size)
 
 
 def cdf(est, points, *, size=None, limits=None) -> np.ndarray:
-    """P(X_1 <= x_1, ..., X_d <= x_d) at each point (point masses included)."""
+    """P(X_1 <= x_1, ..., X_d <= x_d) at each point (point masses included).
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    points : array_like, shape (m, d), or pandas.DataFrame
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+        Used only when no closed form applies (see the module docstring).
+
+    Returns
+    -------
+    ndarray, shape (m,)
+    """
     return _joint_probability(est, points, False, size, limits, "the joint CDF")
 
 
 def exceedance(est, points, *, size=None, limits=None) -> np.ndarray:
-    """P(X_1 > x_1, ..., X_d > x_d) at each point (joint exceedance, point masses included)."""
+    """P(X_1 > x_1, ..., X_d > x_d) at each point (joint exceedance, point masses included).
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    points : array_like, shape (m, d), or pandas.DataFrame
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+        Used only when no closed form applies (see the module docstring).
+
+    Returns
+    -------
+    ndarray, shape (m,)
+    """
     return _joint_probability(est, points, True, size, limits, "the joint exceedance probability")
 
 
 def probability_grid(est, kind="exceedance", size=None, limits=None) -> xr.DataArray:
-    """Joint CDF or exceedance probability at every node of a grid."""
+    """Joint CDF or exceedance probability at every node of a grid.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    kind : {'exceedance', 'cdf'}
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+
+    Returns
+    -------
+    xarray.DataArray
+        Probabilities clipped to [0, 1], named ``kind``.
+    """
     if kind not in ("cdf", "exceedance"):
         raise InputError(f"kind must be 'cdf' or 'exceedance', got {kind!r}")
     axes, vals, g = _grid_cumulative(est, size, limits, upper=(kind == "exceedance"))
@@ -292,10 +386,30 @@ def quantiles(est, name, probs, *, size=None, limits=None) -> np.ndarray:
     is integrated from that grid, exactly as a workflow's ``quantile_*``
     products are; without them, an exact marginal is evaluated on 4096 nodes
     where one exists, else the joint grid of the default size is integrated.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    name : str
+    probs : float or array_like of float
+        Probabilities strictly between 0 and 1.
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+
+    Returns
+    -------
+    ndarray, shape (len(probs),)
     """
     probs = np.atleast_1d(np.asarray(probs, dtype=float))
     k = _names_index(est, [name])[0]
     pm = est.support.point_mass
+    if est.n == 0 and pm is not None:  # every value at the point mass
+        if k == pm.index:
+            return np.full(probs.shape, float(pm.bound))
+        if est._point.estimate is None:
+            raise InputError(f"the density of {name} on the point mass is not available: {est._point.problem}")
+        return quantiles(est._point.estimate, name, probs)
     if size is None and limits is None and (est.d == 1 or marginal_is_exact(est, [k])) and pm is None:
         m = (est if est.d == 1 else marginal(est, [name])).grid(4096)
     else:
@@ -315,14 +429,40 @@ def hdr_levels(est, masses=DEFAULT_HDR_MASSES, *, size=None, limits=None) -> np.
 
     Of the gridded density (the continuous part when there is a point mass,
     normalised to its own mass), with the node weights of
-    :func:`mvkde.products.grid.hdr_levels`.
+    :func:`mvkde.products.grid.hdr_levels` (Hyndman 1996).
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    masses : sequence of float
+        Fractions strictly between 0 and 1.
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+
+    Returns
+    -------
+    ndarray, shape (len(masses),)
     """
     g = est.grid(size or DEFAULT_GRID.get(est.d, 24), limits)
     return _grid.hdr_levels(g.values, node_weights(g), masses)
 
 
 def mass_above(est, level, *, size=None, limits=None) -> np.ndarray:
-    """Probability mass of the region where the density is at least ``level``."""
+    """Probability mass of the region where the density is at least ``level``.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    level : float or array_like of float
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+
+    Returns
+    -------
+    ndarray, shape (len(level),)
+    """
     g = est.grid(size or DEFAULT_GRID.get(est.d, 24), limits)
     return _grid.mass_above(g.values, node_weights(g), level)
 
@@ -336,6 +476,21 @@ def conditional(est, given: dict, *, size=None, limits=None) -> xr.DataArray:
 
     ``given`` maps variable names to a value or to a (lo, hi) bin; the result
     is normalised on the grid of the remaining variables so it integrates to 1.
+
+    Parameters
+    ----------
+    est : DensityEstimate
+    given : dict
+        Variable name -> value or (lo, hi) bin (integrated on 65 nodes).
+    size, limits : optional
+        The joint grid: nodes per variable (int or sequence; by default 2048, 256, 64 or 24
+        for d = 1 to 3, else 24) and (lo, hi) per variable (sequence, or dict by name).
+        Here ``size`` is per remaining variable.
+
+    Returns
+    -------
+    xarray.DataArray
+        Its attribute ``conditioning_density`` is the normalising constant.
     """
     if not isinstance(given, dict) or not given:
         raise InputError("given must be a dict {variable: value or (lo, hi)}")
@@ -366,7 +521,7 @@ def conditional(est, given: dict, *, size=None, limits=None) -> xr.DataArray:
     ordered = [axes[j] for j in range(est.d)]
     mesh = np.meshgrid(*ordered, indexing="ij")
     pts = np.column_stack([m.ravel() for m in mesh])
-    vals = est.pdf(pts).reshape([a.size for a in ordered])
+    vals = _pdf_with_progress(est, pts, "conditional density").reshape([a.size for a in ordered])
     for j in sorted(gidx, reverse=True):
         if j in bins:
             vals = np.trapezoid(vals, ordered[j], axis=j)
@@ -387,151 +542,14 @@ def conditional(est, given: dict, *, size=None, limits=None) -> xr.DataArray:
                         name="conditional_density", attrs=attrs)
 
 
-# ---------------------------------------------------------------------------
-# uncertainty
-# ---------------------------------------------------------------------------
-
-def standard_error(est, density_values) -> np.ndarray:
-    """Asymptotic pointwise standard error sqrt(f R(K) / (n |H|^{1/2})).
-
-    Wand & Jones (1995, Sec. 4.3): Var f_hat(x) ~ n^{-1} |H|^{-1/2} R(K) f(x),
-    with R(K) of the unit-covariance d-variate kernel and n the effective
-    sample size (every row, the point mass's included, for the continuous
-    part of an estimate with a point mass).  Asymptotic: it overstates the variance at small n.
-    """
-    f = np.maximum(np.asarray(density_values, dtype=float), 0.0)
-    # with a point mass, f is the continuous part (1 - p) f_c = n^{-1} sum over ALL n rows of
-    # 1{above} K_H(x - X_i): its variance has the whole sample size, n_above / (1 - p)
-    n = est.n_effective / (1.0 - est.point_mass_probability) if est.point_mass_probability < 1 else np.inf
-    var = f * est.kernel.roughness / (n * est.bandwidth.matrix.sqrt_det)
-    return np.sqrt(var)
-
-
-def bootstrap(est, statistic, replicates=200, seed=None):
-    """Values of ``statistic(estimate)`` over bootstrap resamples of the data.
-
-    The bandwidth matrix is held fixed (the bands describe the sampling
-    variability of the estimate, not its smoothing bias: they cover
-    E f_hat = f * K_H, Hall 1992).  Returns an array (replicates, ...).
-    """
-    replicates = int(replicates)
-    if replicates < 2:
-        raise InputError(f"replicates must be at least 2, got {replicates}")
-    rng = np.random.default_rng(seed)
-    out = []
-    every = list(range(est.d))
-    for _ in range(replicates):
-        idx = rng.choice(est.n, size=est.n, replace=True, p=est.weights)
-        out.append(np.asarray(statistic(est._refit(est.data[idx], every))))
-    return np.stack(out)
-
-
-def bootstrap_bands(est, points=None, *, kind="density", level=0.9, replicates=200, seed=None,
-                    size=None):
-    """Percentile bootstrap band (lower, upper) for the density or the exceedance probability.
-
-    ``points`` (m, d) or None for the grid of ``size``; ``kind`` is 'density'
-    or 'exceedance'.
-    """
-    if kind not in ("density", "exceedance"):
-        raise InputError(f"kind must be 'density' or 'exceedance', got {kind!r}")
-    if not 0 < level < 1:
-        raise InputError(f"level must lie strictly between 0 and 1, got {level}")
-    if points is None:
-        g = est.grid(size or DEFAULT_GRID.get(est.d, 24))
-        mesh = np.meshgrid(*[g[n].values for n in est.names], indexing="ij")
-        points = np.column_stack([m.ravel() for m in mesh])
-    pts = est._points(points)
-    stat = (lambda b: b.pdf(pts)) if kind == "density" else (lambda b: exceedance(b, pts))
-    draws = bootstrap(est, stat, replicates, seed)
-    a = (1 - level) / 2
-    lo, hi = np.quantile(draws, [a, 1 - a], axis=0)
-    return lo, hi
-
-
-SPEED_CLASSES = 5
-
-
-def speed_class_edges(lo: float, hi: float, given=None, classes: int = SPEED_CLASSES) -> np.ndarray:
-    """Edges of the speed classes of a wind-rose table: ``given``, else ``classes`` equal classes on [lo, hi].
-
-    One rule for :func:`sector_table` (``lo, hi`` = the estimate's grid limits
-    of the speed variable) and the workflow's ``products.sectors`` (the shared
-    grid's limits), so a table computed either way has the same classes.
-    """
-    if given is not None and len(given):
-        return np.asarray(given, dtype=float)
-    return np.linspace(float(lo), float(hi), int(classes) + 1)
-
-
-def direction_and_speed(est) -> tuple[str, str]:
-    """(direction, speed): the circular variable and the linear one of a 2-variable estimate."""
-    circular = [n for n, p in zip(est.names, est.support.periods) if p is not None]
-    if est.d != 2 or len(circular) != 1:
-        raise InputError("a wind-rose table needs one circular and one linear variable, got "
-                         f"{est.names} (circular: {circular or 'none'})")
-    return circular[0], next(n for n in est.names if n != circular[0])
-
-
-def sector_table(est, direction: str, speed: str, sectors=16, speed_edges=None, *, nodes=8):
-    """Joint probabilities per direction sector and speed class (the numbers of a wind rose).
-
-    Sector k is centred on ``k * period / sectors`` (north = 0 for degrees) and spans
-    half a sector width each side, across the wrap for sector 0.  Speed classes are
-    ``[speed_edges[c], speed_edges[c + 1])``; by default five equal classes between the
-    estimate's default grid limits of the speed variable (:func:`speed_class_edges`,
-    the rule the workflow's ``products.sectors`` uses too).  Each sector x
-    class cell is integrated with ``nodes``-point Gauss-Legendre rules in direction
-    and (three panels) in speed, so no grid node is counted twice at the wrap.
-    The estimate's other variables, if any, are refused: condition first.
-    """
-    di, si = _names_index(est, [direction, speed])
-    if est.d != 2:
-        raise InputError("sector_table needs a 2-variable estimate (direction, speed)")
-    sectors = int(sectors)
-    if sectors < 2:
-        raise InputError("sectors must be at least 2")
-    periods = est.support.periods
-    period = periods[di] if periods[di] is not None else 360.0
-    if periods[si] is not None:
-        raise InputError(f"sector_table: speed variable {speed!r} is circular; pass the linear variable as speed")
-    width = period / sectors
-    limits = est.default_limits()
-    speed_edges = speed_class_edges(limits[si][0], limits[si][1], speed_edges)
-    if speed_edges.ndim != 1 or speed_edges.size < 2 or np.any(np.diff(speed_edges) <= 0) \
-            or not np.all(np.isfinite(speed_edges)):
-        raise InputError("speed_edges must be at least two finite, increasing values")
-    gx, gw = np.polynomial.legendre.leggauss(int(nodes))
-    # direction nodes: every sector, Gauss-Legendre inside [centre - width/2, centre + width/2)
-    centres = np.arange(sectors) * width
-    dnodes = (centres[:, None] + 0.5 * width * gx[None, :]).ravel()
-    dweights = np.tile(0.5 * width * gw, sectors)
-    # speed nodes: three panels per class
-    panels = 3
-    s_nodes, s_weights, s_class = [], [], []
-    for c in range(speed_edges.size - 1):
-        edges = np.linspace(speed_edges[c], speed_edges[c + 1], panels + 1)
-        for a, b in zip(edges[:-1], edges[1:]):
-            s_nodes.append(0.5 * (a + b) + 0.5 * (b - a) * gx)
-            s_weights.append(0.5 * (b - a) * gw)
-            s_class.append(np.full(gx.size, c))
-    s_nodes, s_weights, s_class = map(np.concatenate, (s_nodes, s_weights, s_class))
-    D, S = np.meshgrid(np.mod(dnodes, period), s_nodes, indexing="ij")
-    pts = np.empty((D.size, 2))
-    pts[:, di], pts[:, si] = D.ravel(), S.ravel()
-    f = est.pdf(pts).reshape(D.shape) * dweights[:, None] * s_weights[None, :]
-    per_sector = f.reshape(sectors, int(nodes), -1).sum(axis=1)
-    table = np.zeros((sectors, speed_edges.size - 1))
-    for c in range(speed_edges.size - 1):
-        table[:, c] = per_sector[:, s_class == c].sum(axis=1)
-    unit = est.units[di] if est.units[di] else ("degree" if period == 360.0 else "")
-    return xr.DataArray(table, dims=("sector", "speed_class"),
-                        coords={"sector": ("sector", centres, {"units": unit, "long_name": "sector centre"}),
-                                "speed_lower": ("speed_class", speed_edges[:-1]),
-                                "speed_upper": ("speed_class", speed_edges[1:])},
-                        name="sector_probability",
-                        attrs={"long_name": "joint probability per direction sector and speed class",
-                               "units": "1", "sector_width": float(width),
-                               "total_probability": float(table.sum()),
-                               "note": "sectors centred on multiples of the width; speed classes "
-                                       "[lower, upper); mass beyond the outer speed edges is not counted"})
+def _pdf_with_progress(est, pts, label: str, pieces: int = 20) -> np.ndarray:
+    """``est.pdf(pts)`` in pieces, with a progress bar where a terminal is attached (many points take seconds)."""
+    if len(pts) < 50_000:
+        return est.pdf(pts)
+    chunks = np.array_split(np.arange(len(pts)), pieces)
+    progress = Progress(len(chunks), label=f"parts of the {label}", prefix="mvkde", log_lines=False)
+    out = np.empty(len(pts))
+    for idx in chunks:
+        out[idx] = est.pdf(pts[idx])
+        progress.update()
+    return out

@@ -37,7 +37,18 @@ __all__ = ["trapezoid_weights", "GridWeights", "node_weights", "integrate_out", 
 
 
 def trapezoid_weights(axis) -> np.ndarray:
-    """Trapezoid-rule weights of the nodes of one increasing axis."""
+    """Trapezoid-rule weights of the nodes of one increasing axis.
+
+    Parameters
+    ----------
+    axis : array_like of float
+        The nodes.
+
+    Returns
+    -------
+    ndarray
+        Half the spacing on each side of every node (zeros for one node).
+    """
     axis = np.asarray(axis, dtype=float)
     w = np.zeros(axis.size)
     if axis.size > 1:
@@ -73,14 +84,35 @@ class GridWeights:
             self.factors.append(((ia, ib), area) if ia < ib else ((ib, ia), area.T))
 
     def full(self) -> np.ndarray:
-        """The weight of every node, shape of the grid."""
+        """The weight of every node, shape of the grid.
+
+        Returns
+        -------
+        ndarray
+            Product of the factors, broadcast to the grid's shape.
+        """
         w = np.ones(self.shape)
         for dims, f in self.factors:
             w = w * f.reshape([self.shape[k] if k in dims else 1 for k in range(len(self.shape))])
         return w
 
     def integrate(self, values, keep, nlead: int = 0) -> np.ndarray:
-        """Integrate every grid axis not in ``keep`` out of ``values`` (kept axes stay in order)."""
+        """Integrate every grid axis not in ``keep`` out of ``values`` (kept axes stay in order).
+
+        Parameters
+        ----------
+        values : array_like of float
+            Values on the grid, after ``nlead`` leading axes.
+        keep : iterable of int
+            Grid axes to keep (a spherical pair both or neither).
+        nlead : int
+            Number of leading (cell) axes of ``values`` before the grid axes.
+
+        Returns
+        -------
+        ndarray
+            ``values`` with the other grid axes summed out against their weights.
+        """
         keep = set(keep)
         d = len(self.shape)
         out = np.asarray(values, dtype=float)
@@ -103,12 +135,45 @@ def node_weights(axes, periods=None, sphere=None) -> np.ndarray:
     variable; the trapezoid rule on ``linspace(0, period, m)`` already is the
     periodic rule.  ``sphere`` = (latitude index, longitude index) uses node
     areas in km^2 for that pair.
+
+    Parameters
+    ----------
+    axes : list of array_like
+        The grid's axes.
+    periods : list of float or None, optional
+        Unused (see above).
+    sphere : (int, int), optional
+        Indices of the latitude and longitude axes.
+
+    Returns
+    -------
+    ndarray
+        Node weights, shape of the grid.
     """
     return GridWeights(axes, sphere).full()
 
 
 def integrate_out(values, axes, keep, nlead: int = 0, sphere=None) -> np.ndarray:
-    """Marginal on the kept axes: integrate every other grid axis out (trapezoid rule)."""
+    """Marginal on the kept axes: integrate every other grid axis out (trapezoid rule).
+
+    Parameters
+    ----------
+    values : array_like of float
+        Values on the grid, after ``nlead`` leading axes.
+    axes : list of array_like
+        The grid's axes.
+    keep : iterable of int
+        Grid axes to keep.
+    nlead : int
+        Number of leading (cell) axes of ``values`` before the grid axes.
+    sphere : (int, int), optional
+        Indices of a latitude and a longitude axis (node areas in km^2).
+
+    Returns
+    -------
+    ndarray
+        The marginal, leading axes then the kept axes in their order.
+    """
     return GridWeights(axes, sphere).integrate(values, keep, nlead)
 
 
@@ -117,6 +182,22 @@ def cumulative(values, axes, *, upper: bool, nlead: int = 0) -> np.ndarray:
 
     Cumulative trapezoid sums along each grid axis in turn: P(X <= x) from the
     first node, or P(X > x) from the last.  Mass outside the grid is not counted.
+
+    Parameters
+    ----------
+    values : array_like of float
+        Density on the grid, after ``nlead`` leading axes.
+    axes : list of array_like
+        The grid's axes.
+    upper : bool
+        True for the exceedance, False for the CDF.
+    nlead : int
+        Number of leading (cell) axes of ``values`` before the grid axes.
+
+    Returns
+    -------
+    ndarray
+        Probabilities, shape of ``values``.
     """
     out = np.asarray(values, dtype=float)
     for k, a in enumerate(axes):
@@ -136,7 +217,27 @@ def hdr_levels(values, weights, masses, nlead: int = 0) -> np.ndarray:
     Node densities (negative values and NaN count as 0) are sorted in
     decreasing order and their masses (density x node weight) accumulated
     (Hyndman 1996 computes the same level from the density at the data).
-    Returns shape (*lead, len(masses)); NaN where a cell has no mass.
+
+    Parameters
+    ----------
+    values : array_like of float
+        Density on the grid, after ``nlead`` leading axes.
+    weights : array_like of float
+        Node weights, broadcastable to the grid's shape.
+    masses : float or sequence of float
+        Fractions strictly between 0 and 1.
+    nlead : int
+        Number of leading (cell) axes of ``values`` before the grid axes.
+
+    Returns
+    -------
+    ndarray, shape (*lead, len(masses))
+        The levels; NaN where a cell has no mass.
+
+    References
+    ----------
+    Hyndman, R. J. (1996). Computing and graphing highest density regions.
+    The American Statistician 50, 120-126.
     """
     masses = np.atleast_1d(np.asarray(masses, dtype=float))
     if np.any((masses <= 0) | (masses >= 1)) or not np.all(np.isfinite(masses)):
@@ -159,7 +260,22 @@ def hdr_levels(values, weights, masses, nlead: int = 0) -> np.ndarray:
 
 
 def mass_above(values, weights, levels) -> np.ndarray:
-    """Fraction of the grid's mass where the density is at least each of ``levels`` (one cell)."""
+    """Fraction of the grid's mass where the density is at least each of ``levels`` (one cell).
+
+    Parameters
+    ----------
+    values : array_like of float
+        Density on the grid (negative values and NaN count as 0).
+    weights : array_like of float
+        Node weights, broadcastable to the shape of ``values``.
+    levels : float or array_like of float
+        Density levels.
+
+    Returns
+    -------
+    ndarray, shape (len(levels),)
+        Fractions; NaN when the grid holds no mass.
+    """
     v = np.maximum(np.nan_to_num(np.asarray(values, dtype=float), nan=0.0), 0.0).ravel()
     m = v * np.broadcast_to(np.asarray(weights, dtype=float), np.shape(values)).ravel()
     total = m.sum()
@@ -172,8 +288,25 @@ def quantiles(marginal, axis, probs, *, base=None, bound=float("nan")) -> np.nda
 
     The CDF is the cumulative trapezoid sum, normalised to the cell's total
     mass; ``base`` (per cell) is a point mass at ``bound`` below the axis,
-    so probabilities up to ``base / total`` map to ``bound``.  Returns shape
-    (*lead, len(probs)); NaN for a cell without a finite, positive marginal.
+    so probabilities up to ``base / total`` map to ``bound``.
+
+    Parameters
+    ----------
+    marginal : array_like of float
+        Marginal densities, the last axis on ``axis``.
+    axis : array_like of float
+        Nodes of the variable.
+    probs : float or array_like of float
+        Probabilities strictly between 0 and 1.
+    base : float or array_like of float, optional
+        Point-mass probability per cell (0 when None).
+    bound : float
+        Value of the point mass.
+
+    Returns
+    -------
+    ndarray, shape (*lead, len(probs))
+        The quantiles; NaN for a cell without a finite, positive marginal.
     """
     probs = np.atleast_1d(np.asarray(probs, dtype=float))
     if np.any((probs <= 0) | (probs >= 1)) or not np.all(np.isfinite(probs)):
