@@ -4,7 +4,10 @@ Every method is a small class built once per fit, with the same interface:
 
 * ``density(points, log=False) -> (values, EngineChoice)`` at points inside
   the support (the estimator sets points outside the support to zero);
-* ``grid(axes) -> (values, EngineChoice)`` on a tensor grid;
+* ``grid(axes) -> (values, EngineChoice)`` on a tensor grid, through
+  ``grid_pieces(axes)``: the kernel sums the grid is made of and how they
+  combine, so that the batch door (:mod:`mvkde.cells`) evaluates the pieces of
+  a whole block of cells in one engine call (:func:`evaluate_pieces`);
 * ``sample(n, rng) -> (n, d)`` draws that respect the bounds;
 * ``attrs``: numbers worth recording in the outputs.
 
@@ -14,6 +17,11 @@ The symmetric-kernel methods evaluate only through
 the engine with reweighted data and a closed-form correction, linear boundary
 kernel = a few engine calls with moment weights), so any engine serves them.
 The asymmetric kernels of Chen (1999, 2000) live in :mod:`mvkde.boundary.asymmetric`.
+
+Long because each symmetric-kernel method keeps its density, grid pieces,
+normalising constant and sampling together, and they share the engine-call
+helpers (``_Base``, :func:`evaluate_pieces`) and the boundary-zone integrals
+(``_Factorised``, ``_zone_table``) defined here.
 
 References
 ----------
