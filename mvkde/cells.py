@@ -8,12 +8,17 @@ mass and the per-cell products asked for.  The pipeline calls this function
 and nothing else of the library; :func:`mvkde.fit` is the door for one
 sample.
 
-Cells without bounds, point masses or directions are selected and evaluated
-as one array problem (:func:`mvkde.bandwidth.select_many`, one binned FFT
-for the block in :func:`mvkde.engines.evaluate_grid_many`).  Other settings
-are fitted cell by cell through :func:`mvkde.fit`; ``CellBatch.path`` says
-which path ran and why.  Either way every cell gives the numbers
-``fit(sample, ...).grid(...)`` gives for it.
+Every cell runs the steps of :func:`mvkde.fit` (so both doors give the same
+numbers), advanced together: the bandwidth selections of a round (the
+continuous parts, then the other variables on a point mass) are answered by
+one :func:`mvkde.bandwidth.select_many` call, and every boundary model (none,
+reflection, renormalisation, the linear boundary kernel) hands its grid over
+as kernel-sum pieces that the whole block evaluates in one
+:func:`mvkde.engines.evaluate_grid_many` call (one binning, one batched FFT);
+the other variables on a point mass are a second, (d-1)-dimensional batch.
+Models that are not kernel sums on a regular lattice (von Mises kernels of
+circular variables, the transformation, beta and gamma kernels, masks) are
+evaluated cell by cell, and ``CellBatch.path`` says which and why.
 """
 
 from __future__ import annotations
@@ -27,8 +32,8 @@ from . import bandwidth as _bandwidth
 from . import engines as _engines
 from . import products as _products
 from .errors import MvkdeError, MvkdeWarning
-from .estimator import fit
-from .kernels import get_kernel, get_multivariate_kernel
+from .boundary import methods as _methods
+from .estimator import fit_steps
 
 __all__ = ["fit_cells", "CellBatch", "CellProducts", "engine_work_bytes"]
 
@@ -132,23 +137,6 @@ class CellBatch:
         return self.density.shape[0]
 
 
-def _per_cell_reason(bandwidth, bounds, point_masses, periods, sphere, products: CellProducts) -> str:
-    """Why a batch cannot take the one-array path ('' when it can)."""
-    if bounds is not None and any(b is not None for b in bounds):
-        return "bounded variables are fitted cell by cell"
-    if point_masses is not None and any(t is not None for t in point_masses):
-        return "point masses are fitted cell by cell"
-    if periods is not None and any(p is not None for p in periods):
-        return "circular variables are fitted cell by cell"
-    if sphere is not None:
-        return "a location on the sphere is fitted cell by cell"
-    if not isinstance(bandwidth, str):
-        return "a given bandwidth matrix is applied cell by cell"
-    if products.any:
-        return "per-cell products need each cell's estimate"
-    return ""
-
-
 def fit_cells(samples, *, axes, names=None, units=None, kernel="gaussian", form="product", bandwidth="plugin",
               parametrization="full", bounds=None, boundary=None, point_masses=None, periods=None, sphere=None,
               engine="auto", products: CellProducts | None = None, keys=None) -> CellBatch:
@@ -177,6 +165,21 @@ def fit_cells(samples, *, axes, names=None, units=None, kernel="gaussian", form=
         Arrays with the cell axis first.  A cell the estimator refuses (too
         few distinct values, a singular sample) gets NaN and its reason in
         ``errors``; the other cells are unaffected.
+
+    Notes
+    -----
+    Every cell runs the steps of :func:`mvkde.fit` (:func:`mvkde.estimator.fit_steps`)
+    in lock step: the bandwidth selections a round of cells asks for (the
+    continuous parts, then the other variables on a point mass) are answered
+    by one :func:`mvkde.bandwidth.select_many` call, and the grids of all
+    cells are evaluated together: each boundary model gives its grid as
+    kernel-sum pieces (reflected images, moment-weighted copies, reweighted
+    data; ``grid_pieces``), all pieces of the block go through one
+    :func:`mvkde.engines.evaluate_grid_many` call (one binning and one
+    batched FFT), and each cell's pieces are combined as its single estimate
+    combines them.  Models that are not kernel sums on the binned engine
+    (directional kernels, transformation, beta/gamma kernels, masks) are
+    evaluated cell by cell; ``CellBatch.path`` says which and why.
     """
     products = products or CellProducts()
     axes = [np.asarray(a, dtype=float) for a in axes]
@@ -187,22 +190,227 @@ def fit_cells(samples, *, axes, names=None, units=None, kernel="gaussian", form=
     batch = _empty_batch(len(samples), names, axes, point_masses)
     if not samples:
         return batch
-    reason = _per_cell_reason(bandwidth, bounds, point_masses, periods, sphere, products)
+    options = dict(kernel=kernel, form=form, bandwidth=bandwidth, parametrization=parametrization,
+                   engine=engine, names=names, units=units, bounds=bounds, boundary=boundary,
+                   point_masses=point_masses, periods=periods, sphere=sphere)
+    notes: list = []
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", MvkdeWarning)  # the caller reports through the diagnostics
-        if not reason:
-            try:
-                _fill_batched(batch, samples, kernel, form, bandwidth, parametrization, engine)
-                return batch
-            except (MvkdeError, np.linalg.LinAlgError):
-                reason = "a cell was refused: fitted cell by cell so only that cell is flagged"
-        batch.path = "per cell: " + reason
-        options = dict(kernel=kernel, form=form, bandwidth=bandwidth, parametrization=parametrization,
-                       engine=engine, names=names, units=units, bounds=bounds, boundary=boundary,
-                       point_masses=point_masses, periods=periods, sphere=sphere)
-        for c, (x, key) in enumerate(zip(samples, keys)):
-            _fill_one(batch, c, x, options, products, key)
+        estimates = _fit_all(samples, options, batch.errors, notes)
+        _fill_grids(batch, estimates, notes)
+        if products.any:
+            notes.append("per-cell products are computed from each cell's estimate")
+            limits = [(a[0], a[-1]) for a in axes]
+            size = [len(a) for a in axes]
+            for c, (est, key) in enumerate(zip(estimates, keys)):
+                if est is None or batch.errors[c] is not None:
+                    continue
+                try:
+                    _store_products(batch, c, _cell_products(est, products, size, limits, key))
+                except (MvkdeError, np.linalg.LinAlgError) as exc:
+                    _refuse(batch, c, exc)
+    batch.path = "batched" if not notes else "batched; per cell: " + "; ".join(dict.fromkeys(notes))
     return batch
+
+
+def _refuse(batch: CellBatch, c: int, exc) -> None:
+    batch.density[c] = np.nan
+    batch.H[c] = np.nan
+    if batch.point_mass_probability is not None:
+        batch.point_mass_probability[c] = np.nan
+    if batch.density_at_point_mass is not None:
+        batch.density_at_point_mass[c] = np.nan
+    batch.errors[c] = f"{type(exc).__name__}: {exc}"
+
+
+def _store_products(batch: CellBatch, c: int, values: dict) -> None:
+    for name, value in values.items():
+        value = np.asarray(value, dtype=float)
+        if name not in batch.products:
+            batch.products[name] = np.full((batch.n_cells,) + value.shape, np.nan)
+        batch.products[name][c] = value
+
+
+# ---------------------------------------------------------------------------
+# fitting: every cell's fit steps in lock step, selections answered together
+# ---------------------------------------------------------------------------
+
+def _fit_all(samples, options: dict, errors: list, notes: list) -> list:
+    """The fitted estimate of every cell (None for a refused cell, its reason in ``errors``)."""
+    C = len(samples)
+    estimates: list = [None] * C
+    steps = [fit_steps(x, **options) for x in samples]
+    pending: dict = {}
+
+    def advance(c, how, value=None):
+        try:
+            if how == "start":
+                request = next(steps[c])
+            elif how == "throw":
+                request = steps[c].throw(value)
+            else:
+                request = steps[c].send(value)
+        except StopIteration as stop:
+            estimates[c] = stop.value
+        except (MvkdeError, np.linalg.LinAlgError) as exc:
+            errors[c] = f"{type(exc).__name__}: {exc}"
+        else:
+            pending[c] = request
+
+    for c in range(C):
+        advance(c, "start")
+    while pending:
+        todo, pending = pending, {}
+        for requests in _groups(todo).values():
+            for c, answer in zip(requests, _select_round([todo[c] for c in requests])):
+                advance(c, "throw" if isinstance(answer, BaseException) else "send", answer)
+    if any(est is not None and est.is_directional for est in estimates):
+        notes.append("circular or spherical variables: bandwidths chosen and densities summed with "
+                     "von Mises (-Fisher) kernels cell by cell (not kernel sums the binned engine can batch)")
+    return estimates
+
+
+def _groups(requests: dict) -> dict:
+    """Requests that one select_many call can answer, grouped."""
+    out: dict = {}
+    for c, r in requests.items():
+        key = (r.method, r.data.shape[1], r.kernel, r.form, r.parametrization, r.weights is None)
+        out.setdefault(key, []).append(c)
+    return out
+
+
+def _select_round(requests) -> list:
+    """One BandwidthResult (or the error select would raise) per request, chosen together."""
+    answers: list = [None] * len(requests)
+    good = []
+    for k, r in enumerate(requests):
+        try:
+            _bandwidth.check_sample_rank(r.data, r.weights, r.names)
+            good.append(k)
+        except MvkdeError as exc:
+            answers[k] = exc
+    if not good:
+        return answers
+    first = requests[good[0]]
+    try:
+        results = _bandwidth.select_many(
+            first.method, [requests[k].data for k in good],
+            None if first.weights is None else [requests[k].weights for k in good],
+            kernel=first.kernel, form=first.form, parametrization=first.parametrization, names=first.names,
+            _checked=True)
+    except (MvkdeError, np.linalg.LinAlgError):
+        # one cell spoils the block: answer each alone so only that cell is refused
+        for k in good:
+            r = requests[k]
+            try:
+                answers[k] = _bandwidth.select(r.method, r.data, r.weights, kernel=r.kernel, form=r.form,
+                                               parametrization=r.parametrization, names=r.names)
+            except (MvkdeError, np.linalg.LinAlgError) as exc:
+                answers[k] = exc
+        return answers
+    for k, result in zip(good, results):
+        answers[k] = result
+    return answers
+
+
+# ---------------------------------------------------------------------------
+# grids: the pieces of every cell's model in one engine call
+# ---------------------------------------------------------------------------
+
+_PER_CELL_MODELS = {
+    "DirectionalModel": None,  # noted by _fit_all
+    "Transformation": "boundary='transform' is evaluated point by point in the transformed space, cell by cell",
+    "BetaKernel": "beta kernels are not convolutions: summed directly, cell by cell",
+    "GammaKernel": "gamma kernels are not convolutions: summed directly, cell by cell",
+    "MaskRenormalization": "the mask's edge correction is evaluated cell by cell",
+}
+
+
+def _model_pieces(model, axes, notes: list):
+    pieces = getattr(model, "grid_pieces", None)
+    pieces = pieces(axes) if pieces is not None else None
+    if pieces is None:
+        why = _PER_CELL_MODELS.get(type(model).__name__)
+        if why:
+            notes.append(why)
+    return pieces
+
+
+def _evaluate_many(estimates: dict, axes, notes: list) -> dict:
+    """Grid of each estimate (``{c: est}``) as ``est.grid`` computes it: cell -> values or error."""
+    out: dict = {}
+    batched = {}
+    for c, est in estimates.items():
+        try:
+            pieces = _model_pieces(est._model, axes, notes)
+            if pieces is None:
+                out[c] = est._evaluate_grid(axes)
+            else:
+                batched[c] = pieces
+        except (MvkdeError, np.linalg.LinAlgError) as exc:
+            out[c] = exc
+    if not batched:
+        return out
+    cells = list(batched)
+    first = estimates[cells[0]]
+    try:
+        values, choices = _methods.evaluate_pieces(axes, [batched[c][0] for c in cells], first.kernel, first.engine)
+    except (MvkdeError, np.linalg.LinAlgError):
+        values = None
+    for k, c in enumerate(cells):
+        est = estimates[c]
+        try:
+            if values is None:
+                out[c] = est._evaluate_grid(axes)
+            else:
+                out[c] = est._finish_grid(axes, batched[c][1](values[k]), choices[k])
+        except (MvkdeError, np.linalg.LinAlgError) as exc:
+            out[c] = exc
+    return out
+
+
+def _fill_grids(batch: CellBatch, estimates: list, notes: list) -> None:
+    axes = batch.axes
+    d = len(axes)
+    good = {c: est for c, est in enumerate(estimates) if est is not None}
+    for c, value in _evaluate_many(good, axes, notes).items():
+        if isinstance(value, BaseException):
+            _refuse(batch, c, value)
+            continue
+        est = good[c]
+        batch.density[c] = value
+        batch.H[c] = est.H
+        batch.converged[c] = bool(est.bandwidth.converged)
+        batch.at_edge[c] = bool(est.bandwidth.at_edge)
+        batch.engine[c] = str(est.attrs.get("engine", ""))
+        if est._point is not None:
+            batch.point_mass_probability[c] = est.point_mass_probability
+    if batch.point_mass_probability is None or d == 1:
+        return
+    # the other variables on the point mass: a second batch on the other axes
+    index = next((est._point.index for est in estimates if est is not None and est._point is not None), None)
+    if index is None:
+        return
+    other_axes = [a for k, a in enumerate(axes) if k != index]
+    parts = {}
+    for c, est in good.items():
+        if batch.errors[c] is not None:
+            continue
+        pm = est._point
+        if pm.estimate is not None:
+            parts[c] = pm.estimate
+        elif pm.count == 0:
+            batch.density_at_point_mass[c] = 0.0
+        else:
+            try:
+                est.point_mass_grid([len(a) for a in other_axes], limits=[(a[0], a[-1]) for a in other_axes])
+            except (MvkdeError, np.linalg.LinAlgError) as exc:
+                _refuse(batch, c, exc)
+    for c, value in _evaluate_many(parts, other_axes, notes).items():
+        if isinstance(value, BaseException):
+            _refuse(batch, c, value)
+        else:
+            batch.density_at_point_mass[c] = value * good[c]._point.probability
 
 
 def _empty_batch(C: int, names, axes, point_masses) -> CellBatch:
@@ -222,51 +430,6 @@ def _point_mass_index(point_masses) -> int | None:
     if point_masses is None:
         return None
     return next((j for j, t in enumerate(point_masses) if t is not None), None)
-
-
-def _fill_batched(batch: CellBatch, samples, kernel, form, bandwidth, parametrization, engine) -> None:
-    d = len(batch.axes)
-    mk = get_multivariate_kernel(get_kernel(kernel).name, form, d)
-    results = _bandwidth.select_many(bandwidth, samples, None, kernel=mk.name, form=mk.form,
-                                     parametrization=parametrization)
-    values, choices = _engines.evaluate_grid_many(batch.axes, samples, None, [r.matrix for r in results], mk,
-                                                  engine)
-    for c, (r, choice) in enumerate(zip(results, choices)):
-        batch.density[c] = values[c]
-        batch.H[c] = r.H
-        batch.converged[c] = bool(r.converged)
-        batch.at_edge[c] = bool(r.at_edge)
-        batch.engine[c] = choice.engine
-
-
-def _fill_one(batch: CellBatch, c: int, x, options: dict, products: CellProducts, key) -> None:
-    limits = [(a[0], a[-1]) for a in batch.axes]
-    size = [len(a) for a in batch.axes]
-    try:
-        est = fit(x, **options)
-        grid = est.grid(size, limits=limits)
-        batch.density[c] = grid.values
-        batch.H[c] = est.H
-        batch.converged[c] = bool(est.bandwidth.converged)
-        batch.at_edge[c] = bool(est.bandwidth.at_edge)
-        batch.engine[c] = str(grid.attrs.get("engine", ""))
-        j = _point_mass_index(options["point_masses"])
-        if j is not None:
-            batch.point_mass_probability[c] = est.point_mass_probability
-            if len(size) > 1:
-                keep = [k for k in range(len(size)) if k != j]
-                pm = est.point_mass_grid([size[k] for k in keep], limits=[limits[k] for k in keep])
-                batch.density_at_point_mass[c] = pm.values
-        if products.any:
-            for name, value in _cell_products(est, products, size, limits, key).items():
-                value = np.asarray(value, dtype=float)
-                if name not in batch.products:
-                    batch.products[name] = np.full((batch.n_cells,) + value.shape, np.nan)
-                batch.products[name][c] = value
-    except (MvkdeError, np.linalg.LinAlgError) as exc:
-        batch.density[c] = np.nan
-        batch.H[c] = np.nan
-        batch.errors[c] = f"{type(exc).__name__}: {exc}"
 
 
 def _cell_products(est, p: CellProducts, size, limits, key) -> dict:

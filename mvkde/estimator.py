@@ -19,6 +19,7 @@ a point mass), and splitting them would make an import circle.  The steps of
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -142,6 +143,52 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="plugin", parametr
     >>> float(est.grid(32).sum()) > 0
     True
     """
+    return run_steps(fit_steps(data, kernel=kernel, form=form, bandwidth=bandwidth,
+                               parametrization=parametrization, bounds=bounds, boundary=boundary,
+                               weights=weights, periods=periods, engine=engine, names=names, units=units,
+                               point_masses=point_masses, mask=mask, outside=outside, sphere=sphere))
+
+
+@dataclass
+class SelectionRequest:
+    """A bandwidth selection :func:`fit_steps` needs: the arguments of :func:`mvkde.bandwidth.select`."""
+
+    method: str
+    data: np.ndarray
+    weights: np.ndarray | None
+    kernel: str
+    form: str
+    parametrization: str
+    names: list
+
+
+def run_steps(steps) -> "DensityEstimate":
+    """Drive :func:`fit_steps` for one sample, answering each selection with ``select``."""
+    try:
+        request = next(steps)
+        while True:
+            try:
+                result = select(request.method, request.data, request.weights, kernel=request.kernel,
+                                form=request.form, parametrization=request.parametrization, names=request.names)
+            except MvkdeError as err:
+                request = steps.throw(err)
+                continue
+            request = steps.send(result)
+    except StopIteration as stop:
+        return stop.value
+
+
+def fit_steps(data, *, kernel="gaussian", form="product", bandwidth="plugin", parametrization="full",
+              bounds=None, boundary=None, weights=None, periods=None, engine="auto",
+              names=None, units=None, point_masses=None, mask=None, outside="error", sphere=None):
+    """:func:`fit` as a generator: yields a :class:`SelectionRequest` for each bandwidth it must
+    choose (the continuous part, then the other variables on a point mass), is sent the
+    :class:`BandwidthResult` (or thrown the selector's error), and returns the estimate.
+
+    :func:`fit` answers with :func:`mvkde.bandwidth.select`; the batch door
+    (:mod:`mvkde.cells`) advances many cells together and answers a round of
+    requests with one :func:`mvkde.bandwidth.select_many` call.
+    """
     values, names, units = _sample.as_table(data, names, units)
     values, w = _sample.check_sample(values, names, weights)
     d = values.shape[1]
@@ -171,13 +218,14 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="plugin", parametr
         model, result, method, concentrations, attrs = _directional.fit_model(
             cont_values, cont_w, names, spec, mk, bandwidth, parametrization, cont_box, boundary)
     else:
-        method, result, model, note = _fit_linear(cont_values, cont_w, cont_box, mask_spec, names, mk, options)
+        method, result, model, note = yield from _fit_linear(cont_values, cont_w, cont_box, mask_spec, names,
+                                                             mk, options)
         if note:
             attrs["boundary_choice"] = note
 
     # 4. the other variables' density on the point mass
     if point is not None:
-        _fit_point_part(point, values, w, support, names, units, options, result)
+        yield from _fit_point_part(point, values, w, support, names, units, options, result)
 
     est = DensityEstimate(cont_values, cont_w, names, units, mk, result, cont_box, method, engine, model=model,
                           point_mass=point, mask=mask_spec, support=support, concentrations=concentrations)
@@ -264,8 +312,8 @@ def _fit_linear(values, w, box, mask_spec, names, mk, options):
         _boundary.check_method(method, box, values, names)
     sel_values = _boundary.selection_data(method, values, box) if method != "mask" else values
     if isinstance(bandwidth, str):
-        result = select(bandwidth, sel_values, w, kernel=mk.name, form=mk.form,
-                        parametrization=options["parametrization"], names=names)
+        result = yield SelectionRequest(bandwidth, sel_values, w, mk.name, mk.form, options["parametrization"],
+                                        list(names))
     elif isinstance(bandwidth, BandwidthResult):
         result = bandwidth
     else:
@@ -297,7 +345,7 @@ def _fit_point_part(point, values, w, support: Support, names, units, options, r
         bandwidth = np.asarray(result.H)[np.ix_(others, others)]
     periods = list(sub_support.periods) if any(p is not None for p in sub_support.periods) else None
     try:
-        point.estimate = fit(values[point.rows][:, others], kernel=options["kernel"], form=options["form"],
+        point.estimate = yield from fit_steps(values[point.rows][:, others], kernel=options["kernel"], form=options["form"],
                              bandwidth=bandwidth, parametrization=options["parametrization"],
                              bounds=[None if periods and periods[i] is not None else b
                                      for i, b in enumerate(sub_support.bounds)],
@@ -513,6 +561,11 @@ class DensityEstimate:
 
     def _evaluate_grid(self, axes) -> np.ndarray:
         values, choice = self._model.grid(axes)
+        return self._finish_grid(axes, values, choice)
+
+    def _finish_grid(self, axes, values, choice) -> np.ndarray:
+        """The model's grid as the estimate's: the continuous share, zero outside the support
+        (shared with the batch door, which evaluates many models' grids together)."""
         if choice is not None:
             self.attrs.update(choice.as_attrs())
         values = np.asarray(values) * self._continuous_share

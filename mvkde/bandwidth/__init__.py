@@ -32,7 +32,7 @@ from .functionals import prepare
 from .matrix import BandwidthMatrix
 from .normal import effective_size, kernel_rescaling, normal_scale, weighted_covariance
 from .result import BandwidthResult
-from .selectors import CRITERIA, run_selector
+from .selectors import CRITERIA, EXACT_MAX_N, run_selector
 from .univariate import improved_sheather_jones, sheather_jones
 
 PARAMETRIZATIONS = ("full", "diagonal", "scalar")
@@ -218,18 +218,24 @@ def select_many(method, samples, weights=None, *, kernel="gaussian", form="produ
             H = normal_scale(s, w, kernel=kernel, form=form, parametrization=parametrization)
             results.append(BandwidthResult(BandwidthMatrix.from_matrix(H, d), method, parametrization))
         return results
-    for start in range(0, len(samples), BLOCK_CELLS):
-        block = samples[start:start + BLOCK_CELLS]
-        wblock = wlist[start:start + BLOCK_CELLS]
-        prep = prepare(block, wblock)
-        if method == "sj":
-            raw = sheather_jones(prep, binned=binned)
-        elif method == "isj":
-            raw = improved_sheather_jones(prep, [s[:, 0] for s in block])
-        else:
-            raw = run_selector(method, prep, parametrization, binned=binned)
-        for r in raw:
-            results.append(_to_result(r, method, parametrization, rescale, d))
+    # a cell's choice between exact and binned sums is its own (by its size, as
+    # for a single sample), so a cell gets the same matrix in any block
+    kinds = [binned if binned is not None else (s.shape[0] > EXACT_MAX_N and d <= 3) for s in samples]
+    results = [None] * len(samples)
+    for kind in dict.fromkeys(kinds):
+        members = [c for c, k in enumerate(kinds) if k == kind]
+        for start in range(0, len(members), BLOCK_CELLS):
+            chunk = members[start:start + BLOCK_CELLS]
+            block = [samples[c] for c in chunk]
+            prep = prepare(block, [wlist[c] for c in chunk])
+            if method == "sj":
+                raw = sheather_jones(prep, binned=binned)
+            elif method == "isj":
+                raw = improved_sheather_jones(prep, [s[:, 0] for s in block])
+            else:
+                raw = run_selector(method, prep, parametrization, binned=kind)
+            for c, r in zip(chunk, raw):
+                results[c] = _to_result(r, method, parametrization, rescale, d)
     return results
 
 

@@ -231,6 +231,7 @@ def _bin_cells(zs, ws, lo, delta, bins, size):
     C = len(zs)
     d = lo.shape[1]
     ntot = size ** d
+    cell_bins = np.broadcast_to(np.asarray(bins, dtype=np.int64), (C,))   # bins may differ per cell
     grid = np.zeros((C, ntot))
     self_sums = np.zeros((C, 1 << d))
     strides = [size ** (d - 1 - j) for j in range(d)]
@@ -243,7 +244,7 @@ def _bin_cells(zs, ws, lo, delta, bins, size):
             base, lower, upper, diag, cross = None, [], [], [], []
             for j in range(d):
                 u = (zc[:, j] - lo[c, j]) / delta[c, j]
-                i0 = np.clip(np.floor(u).astype(np.int64), 0, bins - 2)
+                i0 = np.clip(np.floor(u).astype(np.int64), 0, int(cell_bins[c]) - 2)
                 f = np.clip(u - i0, 0.0, 1.0)
                 base = i0 * strides[j] if base is None else base + i0 * strides[j]
                 g = 1.0 - f
@@ -301,10 +302,13 @@ class BinnedSums:
         if delta is None:
             delta = np.sqrt(prep.c_ns) / _RESOLUTION.get(d, 2.0)
         need = span / np.asarray(delta, dtype=float)[:, None]
-        bins = int(min(max(np.ceil(need.max()) + 1, 16), _MAX_BINS.get(d, 32)))
-        delta = span / (bins - 1)                                    # (C, d)
-        pad = int(np.ceil(np.max(8.0 * np.asarray(max_sd)[:, None] / delta)))
-        size = _fft.next_fast_len(bins + pad, real=True)
+        # bins and padding per cell, so that a cell's sums do not depend on the
+        # other cells of its block (the batch door equals the single fit); only
+        # the array size is shared, and extra zero padding changes no sum
+        bins = np.minimum(np.maximum(np.ceil(need.max(axis=1)) + 1, 16), _MAX_BINS.get(d, 32)).astype(np.int64)
+        delta = span / (bins - 1)[:, None]                           # (C, d)
+        pad = np.ceil(np.max(8.0 * np.asarray(max_sd, dtype=float).reshape(-1, 1) / delta, axis=1))
+        size = _fft.next_fast_len(int(np.max(bins + pad)), real=True)
         self.bins, self.size, self.delta, self.origin = bins, size, delta, lo
         shape = (size,) * d
         ntot = size ** d
@@ -487,7 +491,7 @@ class BinnedSums:
         z = self.prep.z[cell]
         w = self.prep.w[cell]
         u = (z - self.origin[cell]) / self.delta[cell]
-        i0 = np.clip(np.floor(u).astype(np.int64), 0, self.bins - 2)
+        i0 = np.clip(np.floor(u).astype(np.int64), 0, int(self.bins[cell]) - 2)
         frac = np.clip(u - i0, 0.0, 1.0)
         flat = grid.reshape(b, -1)
         strides = np.array([size ** (d - 1 - j) for j in range(d)])

@@ -110,6 +110,10 @@ class _Asymmetric(_Base):
         v, choice = self.density(pts)
         return v.reshape(mesh[0].shape), choice
 
+    def grid_pieces(self, axes):
+        # not a convolution: no kernel-sum pieces, summed directly per model
+        return None
+
     def sample(self, n, rng):
         return _envelope_sample(self, n, rng)
 

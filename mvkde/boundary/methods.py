@@ -4,7 +4,10 @@ Every method is a small class built once per fit, with the same interface:
 
 * ``density(points, log=False) -> (values, EngineChoice)`` at points inside
   the support (the estimator sets points outside the support to zero);
-* ``grid(axes) -> (values, EngineChoice)`` on a tensor grid;
+* ``grid(axes) -> (values, EngineChoice)`` on a tensor grid, through
+  ``grid_pieces(axes)``: the kernel sums the grid is made of and how they
+  combine, so that the batch door (:mod:`mvkde.cells`) evaluates the pieces of
+  a whole block of cells in one engine call (:func:`evaluate_pieces`);
 * ``sample(n, rng) -> (n, d)`` draws that respect the bounds;
 * ``attrs``: numbers worth recording in the outputs.
 
@@ -14,6 +17,11 @@ The symmetric-kernel methods evaluate only through
 the engine with reweighted data and a closed-form correction, linear boundary
 kernel = a few engine calls with moment weights), so any engine serves them.
 The asymmetric kernels of Chen (1999, 2000) live in :mod:`mvkde.boundary.asymmetric`.
+
+Long because each symmetric-kernel method keeps its density, grid pieces,
+normalising constant and sampling together, and they share the engine-call
+helpers (``_Base``, :func:`evaluate_pieces`) and the boundary-zone integrals
+(``_Factorised``, ``_zone_table``) defined here.
 
 References
 ----------
@@ -34,9 +42,10 @@ from __future__ import annotations
 
 import itertools
 import math
+from functools import lru_cache
 
 import numpy as np
-from scipy import special
+from scipy import interpolate, special
 from scipy.special import logsumexp
 
 from .. import engines as _engines
@@ -158,8 +167,22 @@ class _Base:
     def density(self, pts, log=False):
         return self._points(pts, self.data, self.w, self.bw, log)
 
+    def grid_pieces(self, axes):
+        """The grid as engine evaluations: ``(pieces, combine)``.
+
+        ``pieces`` is a list of ``(data, weights, bandwidth)``, each a plain
+        kernel sum on the grid; ``combine(values)`` turns their grids (in that
+        order, each scaled by its total weight) into the model's grid.  The
+        batch door evaluates the pieces of many cells in one call of
+        :func:`mvkde.engines.evaluate_grid_many`; :meth:`grid` does the same
+        for one model, so both give the same numbers on the same lattice.
+        """
+        return [(self.data, self.w, self.bw)], _first
+
     def grid(self, axes):
-        return self._grid(axes, self.data, self.w, self.bw)
+        pieces, combine = self.grid_pieces(axes)
+        (values,), (choice,) = evaluate_pieces(axes, [pieces], self.kernel, self.engine)
+        return combine(values), choice
 
     # draws of the uncorrected estimate (smoothed bootstrap)
     def _bootstrap(self, n, rng, w=None):
@@ -185,6 +208,60 @@ def _rejection(propose, accept, n, why, max_rounds=200):
     if have < n:
         raise InputError(f"sampling failed: {why}; use boundary='reflect'")
     return np.concatenate(out)[:n] if out else np.empty((0, 0))
+
+
+def _first(values):
+    return values[0]
+
+
+#: pieces evaluated by one engine call (see evaluate_pieces)
+PIECES_PER_CALL = 16
+
+
+def evaluate_pieces(axes, models, kernel, engine):
+    """Grids of the pieces of many models (see ``_Base.grid_pieces``) in one engine call.
+
+    ``models`` is a list (one entry per model) of lists of ``(data, weights,
+    bandwidth)``.  Returns, per model, the list of its pieces' grids (each
+    A piece may carry its own grid as a fourth entry (a list of axes); pieces
+    on the same grid share one engine call.  Values are
+    multiplied by the piece's total weight, zeros for a piece without
+    weight), and per model the engine choice of its first piece evaluated
+    (None when no piece carried weight).
+    """
+    groups: dict = {}   # pieces on the same grid go through one engine call
+    out = []
+    for m, pieces in enumerate(models):
+        out.append([None] * len(pieces))
+        for k, piece in enumerate(pieces):
+            data, w, bw = piece[:3]
+            piece_axes = piece[3] if len(piece) > 3 else axes
+            wn, total = _normalised(w)
+            if total <= 0 or data.shape[0] == 0:
+                out[m][k] = np.zeros(tuple(len(a) for a in piece_axes))
+                continue
+            key = tuple((float(a[0]), float(a[-1]), len(a)) for a in piece_axes)
+            group = groups.setdefault(key, (piece_axes, []))
+            group[1].append((m, k, data, wn, bw, total))
+    model_choices = [None] * len(models)
+    for piece_axes, flat in groups.values():
+        # The binned engine gives the pieces of one call a common lattice: wide
+        # enough for the widest data and fine enough for the most demanding
+        # piece.  Pieces sorted by where their data end and evaluated
+        # PIECES_PER_CALL at a time share lattices close to their own (measured
+        # on 64-cell blocks: lattice work 1.3-1.4 x that of one call per piece,
+        # against 1.9-2.6 x for one call for all).
+        flat.sort(key=lambda p: tuple(float(p[2][:, j].max()) for j in range(p[2].shape[1])))
+        for start in range(0, len(flat), PIECES_PER_CALL):
+            chunk = flat[start:start + PIECES_PER_CALL]
+            values, choices = _engines.evaluate_grid_many(piece_axes, [p[2] for p in chunk],
+                                                          [p[3] for p in chunk], [p[4] for p in chunk], kernel,
+                                                          engine)
+            for (m, k, _, _, _, total), v, choice in zip(chunk, values, choices):
+                out[m][k] = v * total
+                if model_choices[m] is None or k == 0:
+                    model_choices[m] = choice
+    return out, model_choices
 
 
 class NoCorrection(_Base):
@@ -276,16 +353,59 @@ class Reflection(_Base):
             return logsumexp(np.vstack(vals), axis=0), choice
         return np.sum(vals, axis=0), choice
 
-    def grid(self, axes):
-        total, choice = 0.0, None
-        for bw, data, w in self.groups:
-            v, c = self._grid(axes, data, w, bw)
-            total = total + v
-            choice = c or choice
-        return total, choice
+    def grid_pieces(self, axes):
+        mirrored = self._mirrored_grid(axes)
+        if mirrored is not None:
+            return mirrored
+        return [(data, w, bw) for bw, data, w in self.groups], _summed
+
+    def _mirrored_grid(self, axes):
+        """The reflection estimate as the plain one read at mirrored nodes, when they lie on the grid.
+
+        The image of X across the face x_j = c, with bandwidth R H R, contributes
+        K_{RHR}(x - R X - 2c e_j) = K_H(R x + 2c e_j - X) at x: the plain estimate at
+        the mirror image of x.  So with one-sided bounds whose mirror images of the
+        grid nodes fall on the grid extended across the bound (the grid starts or
+        ends on the bound, or an integer number of steps from it), the estimate is
+        ONE kernel sum of the data on the extended grid (the binned engine's
+        lattice covers only the part within the kernel's reach of the data),
+        summed over the reflection group at the mirrored nodes.  Otherwise None
+        (the image data sets are evaluated instead).
+        """
+        ext_axes, maps = [], []
+        for j, a in enumerate(axes):
+            lo, hi = self.box[j]
+            if not (math.isfinite(lo) or math.isfinite(hi)):
+                ext_axes.append(a)
+                maps.append([np.arange(a.size)])
+                continue
+            if (math.isfinite(lo) and math.isfinite(hi)) or a.size < 2:
+                return None
+            step = (a[-1] - a[0]) / (a.size - 1)
+            c = lo if math.isfinite(lo) else hi
+            shift = (2.0 * c - 2.0 * a[0]) / step          # mirror of node k is node shift - k
+            s = round(shift)
+            if abs(shift - s) > 1e-9 * max(1.0, abs(shift)) or step <= 0:
+                return None
+            k = np.arange(a.size)
+            first, last = min(0, s - (a.size - 1)), max(a.size - 1, s)
+            ext_axes.append(a[0] + step * np.arange(first, last + 1))
+            maps.append([k - first, s - k - first])
+        d = self.d
+        combos = list(itertools.product(*maps))
+
+        def combine(values):
+            v = values[0]
+            return np.sum([v[np.ix_(*idx)] for idx in combos], axis=0) if len(combos) > 1 else v[np.ix_(*combos[0])]
+
+        return [(self.data, self.w, self.bw, ext_axes)], combine
 
     def sample(self, n, rng):
         return fold_into_box(self._bootstrap(n, rng), self.box)
+
+
+def _summed(values):
+    return np.sum(values, axis=0)
 
 
 def fold_into_box(y, box):
@@ -346,6 +466,16 @@ class _Factorised(_Base):
             if math.isfinite(hi):
                 zones.append((hi - reach, hi))
         out = base.copy()
+        kind = getattr(self, "_zone_kind", None)
+        if kind is not None and self.kernel.name == "gaussian" and zones and zones[0] != (lo, hi):
+            # each zone's integral is one function of the distance to its bound in
+            # bandwidths, the same for every sample (tabulated once, _zone_table)
+            table = _zone_table(kind)
+            for a, b in zones:
+                u = (X - lo) / h if a == lo else (hi - X) / h
+                near = u < 2.0 * _GAUSS_REACH
+                out[near] += table(u[near])
+            return out
         for a, b in zones:
             near = (X > a - reach) & (X < b + reach)
             if not near.any():
@@ -354,6 +484,42 @@ class _Factorised(_Base):
             k = self.k1.unit((x[:, None] - X[None, near]) / h) / h
             out[near] += q @ (k * g(x, X[near]))
         return out
+
+
+_ZONE_STEP = 1.0 / 128.0
+
+
+@lru_cache(maxsize=None)
+def _zone_table(kind: str):
+    """``G(u) = int_0^R phi(p - u) g(p, u) dp`` for the Gaussian kernel and a lower bound at 0,
+    h = 1, as a cubic spline in u on [0, 2R] (R = the Gaussian reach).
+
+    ``g`` is the correction the boundary zone adds to a kernel's mass inside
+    the support: ``A(p) + B(p) u - 1`` for the linear boundary kernel (Jones
+    1993), ``1 / a0(p) - 1`` for pointwise renormalisation.  Scaled by h and
+    mirrored, it serves every bandwidth and either bound, so a model's
+    normalising constant costs one spline evaluation per datum instead of a
+    quadrature per datum (``_Factorised._axis_integral``).  The integrals are
+    the composite Gauss-Legendre rule used for other kernels; the spline's
+    interpolation error at this node spacing is below 1e-12.
+    """
+    from ..kernels import get_kernel
+
+    k1 = get_kernel("gaussian")
+    p, q = _panels(0.0, _GAUSS_REACH, 96)
+    a0, a1, a2 = cut_moments(k1, p, np.full_like(p, -np.inf))
+    u = np.arange(0.0, 2.0 * _GAUSS_REACH + 2 * _ZONE_STEP, _ZONE_STEP)
+    phi = np.exp(-0.5 * (p[None, :] - u[:, None]) ** 2) / math.sqrt(2.0 * math.pi)
+    if kind == "linear":
+        D = a0 * a2 - a1 * a1
+        ok = D > 1e-14
+        with np.errstate(divide="ignore", invalid="ignore"):
+            fixed = np.where(ok, (a2 - a1 * p) / D - 1.0, 0.0)
+            slope = np.where(ok, a1 / D, 0.0)
+        G = phi @ (q * fixed) + u * (phi @ (q * slope))
+    else:
+        G = phi @ (q * (1.0 / a0 - 1.0))
+    return interpolate.CubicSpline(u, G)
 
 
 class KernelRenormalization(_Factorised):
@@ -375,8 +541,8 @@ class KernelRenormalization(_Factorised):
     def density(self, pts, log=False):
         return self._points(pts, self.data, self.w_corrected, self.bw, log)
 
-    def grid(self, axes):
-        return self._grid(axes, self.data, self.w_corrected, self.bw)
+    def grid_pieces(self, axes):
+        return [(self.data, self.w_corrected, self.bw)], _first
 
     def sample(self, n, rng):
         idx = rng.choice(self.data.shape[0], size=n, p=self.w)
@@ -400,6 +566,7 @@ class PointwiseRenormalization(_Factorised):
     the total mass is one (the raw correction integrates to 1 + O(h^2))."""
 
     name = "renormalize"
+    _zone_kind = "renormalize"
     sample_note = ("rejection from the uncorrected estimate with acceptance min(a0)/a0(x) "
                    "(exact: a0 >= its minimum over the support)")
 
@@ -421,14 +588,20 @@ class PointwiseRenormalization(_Factorised):
                 return np.log(np.maximum(v, 0.0)), choice
         return v, choice
 
-    def grid(self, axes):
-        v, choice = self._grid(axes, self.data, self.w, self.bw)
+    def grid_pieces(self, axes):
+        divisors = []
         for j in self.scales:
-            a0 = self._moments(j, axes[j])[0]
             shape = [1] * self.d
             shape[j] = -1
-            v = v / a0.reshape(shape)
-        return v / self.constant, choice
+            divisors.append(self._moments(j, axes[j])[0].reshape(shape))
+
+        def combine(values):
+            v = values[0]
+            for a0 in divisors:
+                v = v / a0
+            return v / self.constant
+
+        return [(self.data, self.w, self.bw)], combine
 
     def sample(self, n, rng):
         lowest = 1.0
@@ -461,6 +634,7 @@ class LinearBoundaryKernel(_Factorised):
     """
 
     name = "linear"
+    _zone_kind = "linear"
     sample_note = ("rejection from the reflection estimate, target max(f, 0); envelope estimated "
                    "from pilot draws (approximate where the envelope is exceeded)")
 
@@ -519,18 +693,21 @@ class LinearBoundaryKernel(_Factorised):
                 return np.where(out > 0, np.log(np.where(out > 0, out, 1.0)), -np.inf), choice
         return out, choice
 
-    def grid(self, axes):
-        out, choice = 0.0, None
+    def grid_pieces(self, axes):
         coef = {j: self._coefficients(j, axes[j]) for j in self.scales}
-        for subset, w in self._terms():
-            v, c = self._grid(axes, self.data, w, self.bw)
-            choice = c or choice
-            for j in self.scales:
-                shape = [1] * self.d
-                shape[j] = -1
-                v = v * (coef[j][1] if j in subset else coef[j][0]).reshape(shape)
-            out = out + v
-        return out / self.constant, choice
+        terms = list(self._terms())
+
+        def combine(values):
+            out = 0.0
+            for (subset, _), v in zip(terms, values):
+                for j in self.scales:
+                    shape = [1] * self.d
+                    shape[j] = -1
+                    v = v * (coef[j][1] if j in subset else coef[j][0]).reshape(shape)
+                out = out + v
+            return out / self.constant
+
+        return [(self.data, w, self.bw) for _, w in terms], combine
 
     def sample(self, n, rng):
         return _envelope_sample(self, n, rng)
@@ -614,6 +791,9 @@ class Transformation(_Base):
         pts = np.column_stack([g.ravel() for g in mesh])
         v, choice = self.density(pts)
         return v.reshape(mesh[0].shape), choice
+
+    def grid_pieces(self, axes):
+        return None
 
     def sample(self, n, rng):
         return inverse_transform(self._bootstrap(n, rng), self.box)
