@@ -644,7 +644,7 @@ class DensityEstimate:
             # extent of the kernel's support along each axis
             L = self.bandwidth.matrix.cholesky
             if not self.kernel.is_radial:
-                reach = np.abs(L).sum(axis=1) * self.kernel.kernel.unit_radius
+                reach = np.abs(L).sum(axis=1) * self.kernel.univariate.unit_radius
             else:
                 reach = np.sqrt(np.diag(H)) * self.kernel.radius
         else:
@@ -666,7 +666,7 @@ class DensityEstimate:
             H = self.H[np.ix_(lin, lin)]
             if self.kernel.is_compact:
                 reach = np.sqrt(np.diag(H)) * (self.kernel.radius if self.kernel.is_radial
-                                               else self.kernel.kernel.unit_radius * math.sqrt(len(lin)))
+                                               else self.kernel.univariate.unit_radius * math.sqrt(len(lin)))
             else:
                 reach = 4.0 * np.sqrt(np.diag(H))
             data = self.data[:, lin]
@@ -744,7 +744,7 @@ class DensityEstimate:
         axes = self._grid_spec(size, limits)
         values = self._evaluate_grid(axes)
         attrs = self._grid_attrs()
-        if self.kernel.kernel.order > 2 or self.boundary == "linear":
+        if self.kernel.univariate.order > 2 or self.boundary == "linear":
             cell = np.prod([a[1] - a[0] for a in axes])
             neg = float(-values[values < 0].sum() * cell)
             attrs["negative_mass"] = neg
@@ -814,7 +814,7 @@ class DensityEstimate:
         float
             The negative mass on the grid (0.0 when the estimate cannot be negative).
         """
-        if self.kernel.kernel.order == 2 and self.boundary != "linear":
+        if self.kernel.univariate.order == 2 and self.boundary != "linear":
             return 0.0
         return float(self.grid(size, limits).attrs["negative_mass"])
 

@@ -368,7 +368,9 @@ class MultivariateKernel:
 
     Parameters
     ----------
-    kernel : Kernel
+    univariate : Kernel
+        The one-variable kernel it is built from (``est.kernel.univariate``; ``est.kernel.name``
+        is the name ``fit(kernel=...)`` takes).
     form : {'product', 'spherical'}
     d : int
     const : float
@@ -381,7 +383,7 @@ class MultivariateKernel:
         Support radius of the unit-covariance kernel (inf for the Gaussian).
     """
 
-    kernel: Kernel
+    univariate: Kernel
     form: str
     d: int
     const: float          # spherical: normalising constant of the raw profile; product: 1
@@ -391,7 +393,7 @@ class MultivariateKernel:
 
     @property
     def name(self) -> str:
-        return self.kernel.name
+        return self.univariate.name
 
     @property
     def is_compact(self) -> bool:
@@ -400,7 +402,7 @@ class MultivariateKernel:
     @property
     def is_radial(self) -> bool:
         """True when evaluated from |z| (spherical form of a non-Gaussian kernel, d > 1)."""
-        return self.form == "spherical" and self.d > 1 and self.kernel.name != "gaussian"
+        return self.form == "spherical" and self.d > 1 and self.univariate.name != "gaussian"
 
     def evaluate(self, z: np.ndarray) -> np.ndarray:
         """K(z) at whitened offsets.
@@ -415,9 +417,9 @@ class MultivariateKernel:
         """
         z = np.asarray(z, dtype=float)
         if not self.is_radial:
-            out = self.kernel.unit(z[..., 0])
+            out = self.univariate.unit(z[..., 0])
             for j in range(1, self.d):
-                out = out * self.kernel.unit(z[..., j])
+                out = out * self.univariate.unit(z[..., j])
             return out
         return self.evaluate_radial(np.einsum("...j,...j->...", z, z))
 
@@ -435,7 +437,7 @@ class MultivariateKernel:
         s = self.scale
         rs = np.sqrt(np.maximum(r2, 0.0)) * s
         # raw univariate kernel, divided by its 1-D constant, is the profile k(r)
-        prof = self.kernel(rs) / self.kernel(np.zeros(1))[0]
+        prof = self.univariate(rs) / self.univariate(np.zeros(1))[0]
         return (s ** self.d) * self.const * prof
 
     def log_evaluate_gaussian(self, r2: np.ndarray) -> np.ndarray:
@@ -468,7 +470,7 @@ class MultivariateKernel:
         InputError
             For a fourth-order kernel (it takes negative values).
         """
-        k = self.kernel
+        k = self.univariate
         if k.order != 2:
             raise InputError(
                 f"kernel {k.name!r} takes negative values and is not a probability law: "

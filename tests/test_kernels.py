@@ -102,7 +102,7 @@ def _grid(radius, d, m):
 @pytest.mark.parametrize("name,form,d", list(itertools.product(KERNEL_NAMES, FORMS, [1, 2, 3])))
 def test_integrates_to_one_with_unit_covariance(name, form, d):
     mk = get_multivariate_kernel(name, form, d)
-    radius = (mk.radius if mk.is_radial else mk.kernel.unit_radius) if mk.kernel.is_compact else 9.0
+    radius = (mk.radius if mk.is_radial else mk.univariate.unit_radius) if mk.univariate.is_compact else 9.0
     m = {1: 20001, 2: 801, 3: 161}[d]
     z, vol = _grid(radius, d, m)
     k = mk.evaluate(z)

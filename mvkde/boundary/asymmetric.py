@@ -61,7 +61,7 @@ class _Asymmetric(_Base):
         if j in self.b:
             return self._asym(j, x[:, None], X[None, :])
         h = self.h[j]
-        return self.kernel.kernel.unit((x[:, None] - X[None, :]) / h) / h
+        return self.kernel.univariate.unit((x[:, None] - X[None, :]) / h) / h
 
     # True while the kernel masses are integrated in the kernel's own coordinate
     # (unit interval for beta, offset from the bound for gamma) rather than in x

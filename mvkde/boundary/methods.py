@@ -81,7 +81,7 @@ def axis_reach(bw: BandwidthMatrix, kernel, j: int) -> float:
         return _GAUSS_REACH * math.sqrt(bw.matrix[j, j])
     if kernel.is_radial:
         return math.sqrt(bw.matrix[j, j]) * kernel.radius
-    return float(np.abs(bw.cholesky[j]).sum()) * kernel.kernel.unit_radius
+    return float(np.abs(bw.cholesky[j]).sum()) * kernel.univariate.unit_radius
 
 
 def inside_box(points, box) -> np.ndarray:
@@ -435,7 +435,7 @@ class _Factorised(_Base):
     def __init__(self, *args):
         super().__init__(*args)
         self.scales = factorised_scales(self.name, self.bw, self.kernel, self.box, self.names)
-        self.k1 = self.kernel.kernel
+        self.k1 = self.kernel.univariate
 
     def _moments(self, j, x):
         lo, hi = self.box[j]

@@ -83,7 +83,7 @@ def neighbour_fraction(data: np.ndarray, bw: BandwidthMatrix, kernel: Multivaria
     if kernel.is_radial:
         vz = unit_ball_volume(d) * kernel.radius ** d
     else:
-        vz = (2.0 * kernel.kernel.unit_radius) ** d
+        vz = (2.0 * kernel.univariate.unit_radius) ** d
     cov = np.atleast_2d(np.cov(data[:: max(1, data.shape[0] // 100_000)].T))
     sign, logdet = np.linalg.slogdet(cov)
     if sign <= 0:
@@ -122,7 +122,7 @@ def choose(requested: str, *, kind: str, n: int, m: int, d: int, kernel: Multiva
     # auto
     compact_tree = kernel.is_compact and fraction is not None and fraction < TREE_FRACTION
     if kind == "grid" and d <= binned.MAX_DIM and regular and work > DIRECT_LIMIT:
-        if kernel.kernel.smoothness != "discontinuous":
+        if kernel.univariate.smoothness != "discontinuous":
             return EngineChoice("binned", f"regular grid of {m} nodes, n={n} data, d={d}: binned FFT "
                                           f"convolution costs far less than {work:.3g} direct kernel terms")
     if work > DIRECT_LIMIT and compact_tree:
@@ -135,7 +135,7 @@ def choose(requested: str, *, kind: str, n: int, m: int, d: int, kernel: Multiva
         why.append(f"d={d} is beyond the binned engine's {binned.MAX_DIM}")
     elif kind == "grid" and not regular:
         why.append("the grid is not evenly spaced")
-    elif kind == "grid" and kernel.kernel.smoothness == "discontinuous":
+    elif kind == "grid" and kernel.univariate.smoothness == "discontinuous":
         why.append("the uniform kernel's jump makes binning errors first order")
     elif kind == "points" and not kernel.is_compact:
         why.append("Gaussian kernel at scattered points (exact sums, no truncation)")

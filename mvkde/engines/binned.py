@@ -199,7 +199,7 @@ def kernel_reach(bw: BandwidthMatrix, mk: MultivariateKernel, radius_gauss: floa
     if mk.is_radial:
         return mk.radius * np.sqrt(np.diag(bw.matrix))
     # product form: support is L times the cube |z_k| <= a
-    return mk.kernel.unit_radius * np.abs(L).sum(axis=1)
+    return mk.univariate.unit_radius * np.abs(L).sum(axis=1)
 
 
 def _max_weight(n: int, weights) -> float:
@@ -487,7 +487,7 @@ def nonsmooth_jump(mk: MultivariateKernel) -> tuple[str, float]:
     kernel); 'jump': largest jump of the value.  Product forms multiply by
     k(0)^(d-1), the largest value the other factors can take.
     """
-    k = mk.kernel
+    k = mk.univariate
     if k.smoothness == "once differentiable":
         # biweight: the second derivative jumps at the support edge
         a = mk.radius if mk.is_radial else k.unit_radius
@@ -523,9 +523,9 @@ def _region_labels(z: np.ndarray, mk: MultivariateKernel) -> np.ndarray:
     """Integer label of the smooth piece of the kernel each whitened offset lies in."""
     if mk.is_radial:
         return (np.einsum("...j,...j->...", z, z) < mk.radius ** 2).astype(np.int64)
-    a = mk.kernel.unit_radius
+    a = mk.univariate.unit_radius
     lab = np.zeros(z.shape[:-1], dtype=np.int64)
-    centre_kink = mk.kernel.name == "triangular"
+    centre_kink = mk.univariate.name == "triangular"
     for j in range(z.shape[-1]):
         piece = (np.abs(z[..., j]) < a).astype(np.int64)
         if centre_kink:
@@ -768,7 +768,7 @@ def _convolve(todo, samples, weights, bws, mk, lo, delta, margins, shape, r):
         for k, bw in enumerate(bws):
             width = float(np.sum(delta * _conditional_inverse_sd(bw)))
             bound[k] += np.maximum(shell[k], 0.0) * jump * width ** 2 / 8.0 / bw.sqrt_det
-    if mk.kernel.is_nonnegative:
+    if mk.univariate.is_nonnegative:
         # the true sum is >= 0; rounding of the FFT and the correction can dip below
         # it by less than the error bound, and setting those nodes to 0 only
         # brings them closer to the truth

@@ -56,9 +56,9 @@ def kernel_matrix(mk: MultivariateKernel, pc: np.ndarray, z: np.ndarray, z2h=Non
         for j in range(1, mk.d):
             r2 += (pc[:, None, j] - z[None, :, j]) ** 2
         return mk.evaluate_radial(r2)
-    out = mk.kernel.unit(pc[:, None, 0] - z[None, :, 0])
+    out = mk.univariate.unit(pc[:, None, 0] - z[None, :, 0])
     for j in range(1, mk.d):
-        out *= mk.kernel.unit(pc[:, None, j] - z[None, :, j])
+        out *= mk.univariate.unit(pc[:, None, j] - z[None, :, j])
     return out
 
 

@@ -40,8 +40,8 @@ def search_radius(mk: MultivariateKernel, max_weight: float, tol: float = DEFAUL
     if mk.is_radial:
         return mk.radius, 2.0
     if mk.d == 1:
-        return mk.kernel.unit_radius, 2.0
-    return mk.kernel.unit_radius, math.inf
+        return mk.univariate.unit_radius, 2.0
+    return mk.univariate.unit_radius, math.inf
 
 
 def _pair_kernel(mk: MultivariateKernel, p, z, i, j, v):

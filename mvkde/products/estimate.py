@@ -232,7 +232,7 @@ def marginal_grid(est, names, size=None, limits=None) -> xr.DataArray:
 
 def _exact_cdf_available(est) -> bool:
     return _plain(est) and (not est.kernel.is_radial) and _is_diagonal(est.H) \
-        and est.kernel.kernel.order in (2, 4) and not getattr(est, "is_directional", False)
+        and est.kernel.univariate.order in (2, 4) and not getattr(est, "is_directional", False)
 
 
 def _refuse_sphere(est, what: str) -> None:
@@ -242,7 +242,7 @@ def _refuse_sphere(est, what: str) -> None:
 
 
 def _exact_cdf(est, pts, upper: bool) -> np.ndarray:
-    k = est.kernel.kernel
+    k = est.kernel.univariate
     h = np.sqrt(np.diag(est.H))
     n = est.n
     w = np.full(n, 1.0 / n) if est.weights is None else est.weights
