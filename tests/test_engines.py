@@ -10,7 +10,7 @@ from scipy import stats
 import mvkde
 from mvkde.bandwidth import normal_scale
 from mvkde.bandwidth.matrix import BandwidthMatrix
-from mvkde.engines import (ENGINES, EngineChoice, binned, choose, evaluate_grid, evaluate_grid_many,
+from mvkde.engines import (ENGINES, EngineChoice, binned, binning, choose, evaluate_grid, evaluate_grid_many,
                            evaluate_points, exact, tree)
 from mvkde.errors import InputError
 from mvkde.kernels import KERNEL_NAMES, get_multivariate_kernel
@@ -147,7 +147,7 @@ def test_binned_streaming_chunks_do_not_change_the_result(rng, monkeypatch):
     axes = [np.linspace(-3, 3, 30)] * 2
     bw = BandwidthMatrix.from_matrix(H)
     whole, _ = binned.grid_density(axes, x, w, bw, mk)
-    monkeypatch.setattr(binned._bin, "__defaults__", (1777,))
+    monkeypatch.setattr(binning._bin, "__defaults__", (1777,))
     pieces, _ = binned.grid_density(axes, x, w, bw, mk)
     np.testing.assert_allclose(pieces, whole, rtol=1e-10, atol=1e-12 * whole.max())
 
@@ -160,7 +160,7 @@ def test_binned_term_groups_do_not_change_the_result(rng, monkeypatch):
     axes = [np.linspace(-3, 3, 12)] * 3
     bw = BandwidthMatrix.from_matrix(H)
     whole, info = binned.grid_density(axes, x, w, bw, mk)
-    monkeypatch.setattr(binned, "BOX_BUDGET", 8)
+    monkeypatch.setattr(binning, "BOX_BUDGET", 8)
     groups, info_groups = binned.grid_density(axes, x, w, bw, mk)
     np.testing.assert_allclose(groups, whole, rtol=1e-10, atol=1e-12 * whole.max())
     assert info_groups.refinement == info.refinement
