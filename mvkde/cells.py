@@ -197,6 +197,7 @@ def fit_cells(samples, *, axes, names=None, units=None, kernel="gaussian", form=
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", MvkdeWarning)  # the caller reports through the diagnostics
         estimates = _fit_all(samples, options, batch.errors, notes)
+        _boundary_notes(estimates, notes)
         _fill_grids(batch, estimates, notes)
         if products.any:
             notes.append("per-cell products are computed from each cell's estimate")
@@ -211,6 +212,17 @@ def fit_cells(samples, *, axes, names=None, units=None, kernel="gaussian", form=
                     _refuse(batch, c, exc)
     batch.path = "batched" if not notes else "batched; per cell: " + "; ".join(dict.fromkeys(notes))
     return batch
+
+
+def _boundary_notes(estimates, notes: list) -> None:
+    """Record where a boundary method other than the one asked for was used (and why), for the provenance."""
+    used: dict = {}
+    for est in estimates:
+        choice = "" if est is None else str(est.attrs.get("boundary_choice", ""))
+        if "not applicable" in choice or "reflection used" in choice:
+            used[choice] = used.get(choice, 0) + 1
+    for choice, count in used.items():
+        notes.append(f"boundary of {count} cell(s): {choice}")
 
 
 def _refuse(batch: CellBatch, c: int, exc) -> None:

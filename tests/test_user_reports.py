@@ -204,3 +204,13 @@ def test_version_is_quick_to_import():
     code = "import sys, mvkde.cli; mvkde.cli.main(['--version']); print(sorted(m for m in ('numpy', 'xarray') if m in sys.modules))"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=False)
     assert out.stdout.strip().endswith("[]"), out.stdout + out.stderr
+
+
+def test_boundary_fallback_is_recorded_for_the_provenance():
+    """Where the linear boundary kernel cannot apply, the batch says which method was used and why."""
+    rng = np.random.default_rng(9)
+    cells = [np.column_stack([rng.gamma(2, 1, 300), rng.gamma(2, 1, 300)]) for _ in range(2)]
+    cells = [np.column_stack([c[:, 0], c[:, 1] + 0.5 * c[:, 0]]) for c in cells]  # correlated: a full H couples them
+    batch = mvkde.fit_cells(cells, axes=[np.linspace(0, 12, 16)] * 2, bounds=[(0, None), (0, None)],
+                            bandwidth="normal")
+    assert "boundary of 2 cell(s): linear boundary kernel not applicable" in batch.path and "'reflect'" in batch.path
