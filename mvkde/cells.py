@@ -39,7 +39,12 @@ __all__ = ["fit_cells", "CellBatch", "CellProducts", "engine_work_bytes"]
 
 
 def engine_work_bytes() -> int:
-    """Bytes of scratch memory one evaluation task may hold (the direct engine's chunks)."""
+    """Bytes of scratch memory one evaluation task may hold (the direct engine's chunks).
+
+    Returns
+    -------
+    int
+    """
     return int(_engines.exact.CHUNK_ELEMENTS) * 8
 
 

@@ -477,7 +477,18 @@ def _ratio(num, den) -> np.ndarray:
 
 
 def kernel_roughness(kernel="gaussian", form="product", d=1) -> float:
-    """R(K) of the unit-covariance d-variate kernel (the constant of the pointwise variance)."""
+    """R(K) of the unit-covariance d-variate kernel (the constant of the pointwise variance).
+
+    Parameters
+    ----------
+    kernel : str, optional
+    form : {'product', 'spherical'}, optional
+    d : int, optional
+
+    Returns
+    -------
+    float
+    """
     return float(get_multivariate_kernel(get_kernel(kernel).name, form, d).roughness)
 
 
@@ -493,6 +504,22 @@ def compare_pairs_cells(reference_samples, other_samples, *, axes, selector="plu
     given ``H``), both samples refitted with it in one batch call, the local
     test, and at ``thresholds`` the two exceedances, their bootstrap
     replicates (``bootstrap`` > 0, H held fixed) and the probability ratio.
+
+    Parameters
+    ----------
+    reference_samples, other_samples : list of ndarray, shape (n_p, d)
+        The two samples of each pair P.
+    axes : list of ndarray
+        The shared grid.
+    selector, parametrization, H : str, str, array_like of shape (P, d, d), optional
+        Common-bandwidth selection on the pooled sample, or the given matrices.
+    thresholds : array_like of shape (m, d), optional
+    alpha, floor, bootstrap, band_level, seed
+        Local test and bootstrap settings, as for :func:`mvkde.compare`.
+    keys : list of tuple, optional
+        Per-pair keys of the bootstrap random streams (default ``(p,)``).
+    kernel, form, bounds, boundary, point_masses, periods, sphere, engine, names, units
+        Estimator settings, as for :func:`mvkde.fit`.
 
     Returns
     -------

@@ -84,6 +84,18 @@ def check_sample_rank(data: np.ndarray, weights, names) -> None:
     A constant variable, collinear variables, or fewer than d + 2 distinct
     points (d + 1 points always span a simplex whose covariance is singular
     in practice for selection: the criteria then run to H -> 0).
+
+    Parameters
+    ----------
+    data : ndarray, shape (n, d)
+    weights : ndarray, shape (n,), or None
+    names : list of str
+        Variable names used in the messages.
+
+    Raises
+    ------
+    BandwidthError
+        If a variable is constant, variables are collinear or there are fewer than d + 2 distinct points.
     """
     n, d = data.shape
     cov = weighted_covariance(data, weights) if n > 1 else np.zeros((d, d))
@@ -148,6 +160,11 @@ def select(method, data, weights=None, *, kernel="gaussian", form="product",
     binned : bool or None
         Binned FFT sums (True), exact O(n^2) sums (False) or automatic
         (exact for n <= 500 or d > 3).
+
+    Returns
+    -------
+    BandwidthResult
+        The matrix, the method and the parametrization; its warnings are also issued as MvkdeWarning.
     """
     data = np.asarray(data, dtype=float)
     if data.ndim == 1:

@@ -85,13 +85,32 @@ class Prepared:
         return len(self.z)
 
     def to_data_coordinates(self, Hz: np.ndarray, cells) -> np.ndarray:
-        """H = A H_z A' for the rows of ``Hz`` (b, d, d) belonging to ``cells`` (b,)."""
+        """H = A H_z A' for the rows of ``Hz`` (b, d, d) belonging to ``cells`` (b,).
+
+        Parameters
+        ----------
+        Hz, cells : ndarray
+
+        Returns
+        -------
+        ndarray, shape (b, d, d)
+        """
         A = self.A[cells]
         return A @ Hz @ np.swapaxes(A, 1, 2)
 
 
 def prepare(samples, weights=None) -> Prepared:
-    """Centre and sphere each sample by its weighted mean and covariance."""
+    """Centre and sphere each sample by its weighted mean and covariance.
+
+    Parameters
+    ----------
+    samples, weights : list of array_like
+        (n_c, d) samples and (n_c,) weights (normalised here); ``weights`` or an entry may be None.
+
+    Returns
+    -------
+    Prepared
+    """
     zs, ws, As, means, covs = [], [], [], [], []
     for c, x in enumerate(samples):
         x = np.asarray(x, dtype=float)
@@ -116,7 +135,16 @@ def prepare(samples, weights=None) -> Prepared:
 # ---------------------------------------------------------------------------
 
 def multi_indices(d: int, order: int) -> list[tuple[int, ...]]:
-    """All r in N^d with |r| = order."""
+    """All r in N^d with |r| = order.
+
+    Parameters
+    ----------
+    d, order : int
+
+    Returns
+    -------
+    list of tuple of int
+    """
     out = []
     for combo in itertools.combinations_with_replacement(range(d), order):
         r = [0] * d
@@ -135,6 +163,15 @@ def diag_derivative(r, d: int) -> float:
 
     ``D^r phi(0) = (2 pi)^{-d/2} prod_j (-1)^{r_j/2} (r_j - 1)!!`` for even r_j
     (zero if any r_j is odd), from ``phi^{(m)}(u) = (-1)^m He_m(u) phi(u)``.
+
+    Parameters
+    ----------
+    r : sequence of d int
+    d : int
+
+    Returns
+    -------
+    float
     """
     val = (2.0 * math.pi) ** (-0.5 * d)
     for m in r:
@@ -156,7 +193,17 @@ def _hermite_derivative(u: np.ndarray, m: int) -> np.ndarray:
 
 
 def tensor_from_values(values: dict, d: int, order: int, batch: int) -> np.ndarray:
-    """Fill a symmetric (batch, d, ..., d) tensor from values per multi-index."""
+    """Fill a symmetric (batch, d, ..., d) tensor from values per multi-index.
+
+    Parameters
+    ----------
+    values : dict of tuple of int -> ndarray, shape (batch,)
+    d, order, batch : int
+
+    Returns
+    -------
+    ndarray
+    """
     out = np.empty((batch,) + (d,) * order)
     for idx in itertools.product(range(d), repeat=order):
         r = [0] * d
@@ -381,7 +428,17 @@ class BinnedSums:
         return coef @ (self._mono2T if nf is None else self._mono2T[:, :nf])
 
     def half_exp(self, cells, S, nf=None) -> np.ndarray:
-        """exp(-w'Sw/2), (b, nf)."""
+        """exp(-w'Sw/2), (b, nf), for sphered ``S`` (b, d, d) at the first ``nf`` kept frequencies (default all).
+
+        Parameters
+        ----------
+        cells, S : ndarray
+        nf : int, optional
+
+        Returns
+        -------
+        ndarray
+        """
         # -1/2 folded into the coefficients (exact: a power of two), so the
         # quadratic form costs one pass less
         q = self._quadratic(cells, S, nf, scale=-0.5)
@@ -397,7 +454,17 @@ class BinnedSums:
         ``a`` and ``b`` are non-negative integers; the spectrum of
         ``phi_{aH+bG}`` is ``E_H^a E_G^b`` with ``E_S = exp(-w'Sw/2)``, so one
         exponential per row serves every term.  Rows are processed in chunks
-        so the working arrays stay near 16 MB.  Returns (len(terms), b).
+        so the working arrays stay near 16 MB.
+
+        Parameters
+        ----------
+        cells : array_like of int, shape (b,)
+        H, G : ndarray, shape (b, d, d)
+        terms : list of (int, int)
+
+        Returns
+        -------
+        ndarray, shape (len(terms), b)
         """
         cells = np.asarray(cells)
         out = np.empty((len(terms), len(cells)))
@@ -450,7 +517,15 @@ class BinnedSums:
     def derivative_sums(self, cells, g, order):
         """Off-diagonal sums of ``D^r phi_{g^2 I}`` for every |r| = order (even).
 
-        Returns a dict multi-index -> (b,)."""
+        Parameters
+        ----------
+        cells, g : array_like, shape (b,)
+        order : int
+
+        Returns
+        -------
+        dict of tuple of int -> ndarray, shape (b,)
+        """
         cells = np.asarray(cells)
         d = self.d
         g = np.asarray(g, dtype=float)
@@ -466,8 +541,17 @@ class BinnedSums:
         return vals
 
     def loo_sums(self, cell: int, H):
-        """``sum_{j != i} w_j phi_H(Z_i - Z_j)`` at every data point of ``cell``,
-        for a stack of matrices H (b, d, d): returns (b, n)."""
+        """``sum_{j != i} w_j phi_H(Z_i - Z_j)`` at every data point of ``cell``.
+
+        Parameters
+        ----------
+        cell : int
+        H : ndarray, shape (b, d, d)
+
+        Returns
+        -------
+        ndarray, shape (b, n)
+        """
         d = self.d
         size = self.size
         b = H.shape[0]
@@ -545,7 +629,7 @@ class ExactSums:
         return self._pairs[cell]
 
     def gauss_sums(self, cells, H, terms, G=None):
-        """All rows and terms of one cell in one matrix product per chunk of pairs."""
+        """All rows and terms of one cell per matrix product; arguments as :meth:`BinnedSums.gauss_sums`."""
         d = self.d
         cells = np.asarray(cells)
         out = np.empty((len(terms), len(cells)))
@@ -577,6 +661,7 @@ class ExactSums:
         return out
 
     def derivative_sums(self, cells, g, order):
+        """Sums over pairs of Hermite products; arguments and result as :meth:`BinnedSums.derivative_sums`."""
         d = self.d
         vals = {r: np.empty(len(cells)) for r in multi_indices(d, order)}
         for b, cell in enumerate(cells):
@@ -597,6 +682,7 @@ class ExactSums:
         return vals
 
     def loo_sums(self, cell: int, H):
+        """Leave-one-out sums, one Cholesky per matrix; arguments and result as :meth:`BinnedSums.loo_sums`."""
         z, w = self.prep.z[cell], self.prep.w[cell]
         n = z.shape[0]
         out = np.zeros((H.shape[0], n))

@@ -19,6 +19,11 @@ class BandwidthMatrix:
 
     Build it with :meth:`from_matrix` (validates), :meth:`from_cholesky`
     or :meth:`from_diagonal`.
+
+    Parameters
+    ----------
+    H, L : ndarray, shape (d, d)
+        The matrix and its lower Cholesky factor, taken as they are (not checked).
     """
 
     __slots__ = ("_H", "_L", "_log_det")
@@ -31,7 +36,26 @@ class BandwidthMatrix:
     # -- factories -------------------------------------------------------
     @classmethod
     def from_matrix(cls, H, d: int | None = None, *, argument: str = "bandwidth") -> "BandwidthMatrix":
-        """Validate ``H`` (shape, finiteness, symmetry, positive definiteness)."""
+        """Validate ``H`` (shape, finiteness, symmetry, positive definiteness).
+
+        Parameters
+        ----------
+        H : array_like, shape (d, d)
+            A scalar is accepted when ``d`` is 1.  Symmetrised within a relative 1e-10.
+        d : int, optional
+            Number of variables the matrix must match.
+        argument : str, optional
+            Name of the argument, for the messages.
+
+        Returns
+        -------
+        BandwidthMatrix
+
+        Raises
+        ------
+        BandwidthError
+            If ``H`` is not a finite, symmetric, positive definite d x d matrix.
+        """
         try:
             H = np.array(H, dtype=float)
         except (TypeError, ValueError):
@@ -64,11 +88,37 @@ class BandwidthMatrix:
 
     @classmethod
     def from_cholesky(cls, L) -> "BandwidthMatrix":
+        """From a lower Cholesky factor (its upper triangle is ignored; not validated).
+
+        Parameters
+        ----------
+        L : array_like, shape (d, d)
+
+        Returns
+        -------
+        BandwidthMatrix
+        """
         L = np.tril(np.asarray(L, dtype=float))
         return cls(L @ L.T, L)
 
     @classmethod
     def from_diagonal(cls, variances) -> "BandwidthMatrix":
+        """A diagonal matrix from per-variable kernel variances.
+
+        Parameters
+        ----------
+        variances : array_like, shape (d,)
+            Positive and finite.
+
+        Returns
+        -------
+        BandwidthMatrix
+
+        Raises
+        ------
+        BandwidthError
+            If a variance is not positive and finite.
+        """
         v = np.asarray(variances, dtype=float)
         if np.any(~np.isfinite(v)) or np.any(v <= 0):
             raise BandwidthError("bandwidth variances must be positive and finite")
@@ -104,7 +154,16 @@ class BandwidthMatrix:
 
     # -- whitening -------------------------------------------------------
     def whiten(self, x: np.ndarray) -> np.ndarray:
-        """``L^{-1} x`` applied to the rows of ``x`` (shape (..., d))."""
+        """``L^{-1} x`` applied to the rows of ``x`` (shape (..., d)).
+
+        Parameters
+        ----------
+        x : array_like, shape (..., d)
+
+        Returns
+        -------
+        ndarray, shape (..., d)
+        """
         x = np.asarray(x, dtype=float)
         flat = x.reshape(-1, self.d)
         if self.d > 8:
@@ -122,7 +181,16 @@ class BandwidthMatrix:
         return z.reshape(x.shape)
 
     def colorize(self, z: np.ndarray) -> np.ndarray:
-        """``L z`` applied to rows: maps unit-covariance draws to covariance H."""
+        """``L z`` applied to rows: maps unit-covariance draws to covariance H.
+
+        Parameters
+        ----------
+        z : array_like, shape (..., d)
+
+        Returns
+        -------
+        ndarray, shape (..., d)
+        """
         z = np.asarray(z, dtype=float)
         out = np.zeros_like(z)
         for i in range(self.d):  # L z row by row, no BLAS call for small d
@@ -131,7 +199,17 @@ class BandwidthMatrix:
         return out
 
     def scaled(self, factor: float) -> "BandwidthMatrix":
-        """``factor * H``."""
+        """``factor * H``.
+
+        Parameters
+        ----------
+        factor : float
+            Positive.
+
+        Returns
+        -------
+        BandwidthMatrix
+        """
         return BandwidthMatrix(self._H * factor, self._L * np.sqrt(factor))
 
     def __repr__(self) -> str:

@@ -25,7 +25,18 @@ from ..kernels import get_multivariate_kernel
 
 
 def effective_size(weights: np.ndarray | None, n: int) -> float:
-    """Kish's effective sample size (sum w)^2 / sum w^2 (n without weights)."""
+    """Kish's effective sample size (sum w)^2 / sum w^2 (n without weights).
+
+    Parameters
+    ----------
+    weights : ndarray, shape (n,), or None
+    n : int
+        Sample size.
+
+    Returns
+    -------
+    float
+    """
     if weights is None:
         return float(n)
     w = np.asarray(weights, dtype=float)
@@ -33,27 +44,74 @@ def effective_size(weights: np.ndarray | None, n: int) -> float:
 
 
 def weighted_covariance(data: np.ndarray, weights: np.ndarray | None) -> np.ndarray:
-    """Unbiased (reliability-weighted) covariance, as numpy.cov(aweights=...)."""
+    """Unbiased (reliability-weighted) covariance, as numpy.cov(aweights=...).
+
+    Parameters
+    ----------
+    data : ndarray, shape (n, d)
+    weights : ndarray, shape (n,), or None
+
+    Returns
+    -------
+    ndarray, shape (d, d)
+    """
     if weights is None:
         return np.atleast_2d(np.cov(data, rowvar=False))
     return np.atleast_2d(np.cov(data, rowvar=False, aweights=weights))
 
 
 def kernel_rescaling(kernel: str, form: str, d: int) -> float:
-    """Factor ``(R(K)/R(phi))^{2/(d+4)}`` taking a Gaussian-optimal H to kernel K."""
+    """Factor ``(R(K)/R(phi))^{2/(d+4)}`` taking a Gaussian-optimal H to kernel K.
+
+    Parameters
+    ----------
+    kernel : str
+        Kernel name.
+    form : {'product', 'spherical'}
+    d : int
+
+    Returns
+    -------
+    float
+    """
     rk = get_multivariate_kernel(kernel, form, d).roughness
     rg = get_multivariate_kernel("gaussian", "product", d).roughness
     return (rk / rg) ** (2.0 / (d + 4))
 
 
 def normal_scale_factor(n_eff: float, d: int) -> float:
-    """(4/(d+2))^{2/(d+4)} n^{-2/(d+4)}."""
+    """(4/(d+2))^{2/(d+4)} n^{-2/(d+4)}.
+
+    Parameters
+    ----------
+    n_eff : float
+        (Effective) sample size.
+    d : int
+
+    Returns
+    -------
+    float
+    """
     return (4.0 / (d + 2.0)) ** (2.0 / (d + 4.0)) * n_eff ** (-2.0 / (d + 4.0))
 
 
 def normal_scale(data, weights, *, kernel="gaussian", form="product", parametrization="full"):
     """Normal-scale matrix for ``kernel``; 'diagonal' keeps only the variances,
-    'full' and 'scalar' (a multiple of the sample covariance) coincide here."""
+    'full' and 'scalar' (a multiple of the sample covariance) coincide here.
+
+    Parameters
+    ----------
+    data : ndarray, shape (n, d)
+    weights : ndarray, shape (n,), or None
+        The sample size becomes Kish's effective size.
+    kernel : str, optional
+    form : {'product', 'spherical'}, optional
+    parametrization : {'full', 'diagonal', 'scalar'}, optional
+
+    Returns
+    -------
+    ndarray, shape (d, d)
+    """
     n, d = data.shape
     cov = weighted_covariance(data, weights)
     if parametrization == "diagonal":

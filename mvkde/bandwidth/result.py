@@ -39,7 +39,14 @@ class BandwidthResult:
         return self.matrix.matrix
 
     def as_attrs(self) -> dict:
-        """Flat, netCDF-friendly summary."""
+        """Flat, netCDF-friendly summary.
+
+        Returns
+        -------
+        dict
+            ``bandwidth_method``, ``_parametrization``, ``_criterion``, ``_converged`` and ``_at_edge``
+            (booleans as 0 or 1).
+        """
         return {
             "bandwidth_method": self.method,
             "bandwidth_parametrization": self.parametrization,

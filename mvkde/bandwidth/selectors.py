@@ -116,6 +116,16 @@ EXACT_MAX_N = 500
 
 
 def region_low(d: int) -> float:
+    """Lower end of the search region: smallest eigenvalue of H relative to the normal-scale matrix.
+
+    Parameters
+    ----------
+    d : int
+
+    Returns
+    -------
+    float
+    """
     return _REGION_LOW.get(d, 0.2 ** 2)
 
 
@@ -133,7 +143,16 @@ def _norm_moment(d: int, m: int) -> float:
 
 
 def samse_normal_constants(d: int, k: int):
-    """(s, t, u) of the SAMSE pilot for order-2k functionals, normal reference."""
+    """(s, t, u) of the SAMSE pilot for order-2k functionals, normal reference.
+
+    Parameters
+    ----------
+    d, k : int
+
+    Returns
+    -------
+    s, t, u : float
+    """
     s = (2 * math.pi) ** (-d) * _df(2 * k - 1) * _norm_moment(d, k)
     ew = 2.0 ** (-(k + 1)) * _norm_moment(d, k + 1)                     # E|W|^{2k+2}
     t = -0.5 * (2 * math.pi) ** (-1.5 * d) * math.pi ** (0.5 * d) * _df(2 * k - 1) * ew
@@ -142,7 +161,18 @@ def samse_normal_constants(d: int, k: int):
 
 
 def samse_q(d: int, k: int, s, t, u):
-    """q = n g^{d+2k+2} minimising the summed squared bias (see module notes)."""
+    """q = n g^{d+2k+2} minimising the summed squared bias (see module notes).
+
+    Parameters
+    ----------
+    d, k : int
+    s, t, u : float or ndarray
+        Constants as from :func:`samse_normal_constants` or estimated.
+
+    Returns
+    -------
+    float or ndarray
+    """
     a = d + 2 * k - 2
     root = np.sqrt(a * a * t * t + 8.0 * (d + 2 * k) * u * s)
     with np.errstate(divide="ignore"):
@@ -170,7 +200,17 @@ def _laplacian_tensor(vals6, d, batch):
 def plugin_pilots(prep: Prepared, sums, cells):
     """Two-stage SAMSE pilots and the estimated fourth-order tensor.
 
-    Returns ``(psi4 (b, d, d, d, d), g4 (b,), g6 (b,))`` in sphered coordinates.
+    Parameters
+    ----------
+    prep : Prepared
+    sums : BinnedSums or ExactSums
+    cells : array_like of int, shape (b,)
+
+    Returns
+    -------
+    psi4 : ndarray, shape (b, d, d, d, d)
+    g4, g6 : ndarray, shape (b,)
+        In sphered coordinates.
     """
     d = prep.d
     cells = np.asarray(cells)
@@ -204,7 +244,18 @@ def _normal_reference_g4(d, n):
 # ---------------------------------------------------------------------------
 
 class Parametrization:
-    """Map theta -> H_z (sphered coordinates) for one of full / diagonal / scalar."""
+    """Map theta -> H_z (sphered coordinates) for one of full / diagonal / scalar.
+
+    theta has one row of ``p`` numbers per matrix: the log-diagonal and the lower triangle of a Cholesky factor
+    (full), log relative variances (diagonal) or a log factor (scalar), all relative to the normal-scale matrix.
+
+    Parameters
+    ----------
+    kind : {'full', 'diagonal', 'scalar'}
+    prep : Prepared
+    low, high : float
+        Search region: eigenvalues of H relative to the normal-scale matrix.
+    """
 
     def __init__(self, kind: str, prep: Prepared, low: float, high: float):
         self.kind, self.prep, self.low, self.high = kind, prep, low, high
@@ -219,6 +270,18 @@ class Parametrization:
             self._var = np.diagonal(prep.cov, axis1=1, axis2=2)
 
     def start(self, factors, cells) -> np.ndarray:
+        """theta of ``factors`` times the normal-scale matrix, one row per cell.
+
+        Parameters
+        ----------
+        factors : array_like, shape (b,)
+            Positive multiples of the normal-scale matrix.
+        cells : array_like of int, shape (b,)
+
+        Returns
+        -------
+        ndarray, shape (b, p)
+        """
         th = np.zeros((len(cells), self.p))
         f = np.log(np.asarray(factors, dtype=float))
         if self.kind == "full":
@@ -228,6 +291,17 @@ class Parametrization:
         return th
 
     def matrices(self, cells, theta) -> np.ndarray:
+        """H_z (sphered coordinates) of each row of ``theta``.
+
+        Parameters
+        ----------
+        cells : array_like of int, shape (b,)
+        theta : ndarray, shape (b, p)
+
+        Returns
+        -------
+        ndarray, shape (b, d, d)
+        """
         d = self.d
         c = self.prep.c_ns[cells]
         if self.kind == "full":
@@ -243,7 +317,17 @@ class Parametrization:
         return (c * np.exp(theta[:, 0]))[:, None, None] * np.eye(d)[None]
 
     def data_matrices(self, cells, theta) -> np.ndarray:
-        """H in data coordinates (diagonal matrices built exactly diagonal)."""
+        """H in data coordinates (diagonal matrices built exactly diagonal).
+
+        Parameters
+        ----------
+        cells, theta
+            As for :meth:`matrices`.
+
+        Returns
+        -------
+        ndarray, shape (b, d, d)
+        """
         if self.kind == "diagonal":
             v = self.prep.c_ns[cells][:, None] * self._var[cells] * np.exp(theta)
             return np.einsum("bj,jk->bjk", v, np.eye(self.d))
@@ -252,21 +336,60 @@ class Parametrization:
         return 0.5 * (H + np.swapaxes(H, 1, 2))
 
     def relative_eigenvalues(self, cells, theta) -> np.ndarray:
+        """Eigenvalues of H relative to the normal-scale matrix (diagonal, scalar: exp(theta)).
+
+        Parameters
+        ----------
+        cells, theta
+            As for :meth:`matrices`.
+
+        Returns
+        -------
+        ndarray, shape (b, d) or (b, p)
+        """
         if self.kind == "full":
             Hz = self.matrices(cells, theta) / self.prep.c_ns[cells][:, None, None]
             return np.linalg.eigvalsh(Hz)
         return np.exp(theta)
 
     def inside(self, cells, theta) -> np.ndarray:
+        """Whether every relative eigenvalue is finite and within [low, high].
+
+        Parameters
+        ----------
+        cells, theta
+            As for :meth:`matrices`.
+
+        Returns
+        -------
+        ndarray of bool, shape (b,)
+        """
         ev = self.relative_eigenvalues(cells, theta)
         return np.all((ev >= self.low) & (ev <= self.high) & np.isfinite(ev), axis=1)
 
     def edge(self, cells, theta) -> np.ndarray:
+        """Whether some relative eigenvalue lies within 5 % of ``low`` or ``high``.
+
+        Parameters
+        ----------
+        cells, theta
+            As for :meth:`matrices`.
+
+        Returns
+        -------
+        ndarray of bool, shape (b,)
+        """
         ev = self.relative_eigenvalues(cells, theta)
         return np.any((ev <= self.low * 1.05) | (ev >= self.high / 1.05), axis=1)
 
     def spread(self) -> np.ndarray:
-        """Largest eigenvalue of H_z at relative size 1 (for grid padding)."""
+        """Largest eigenvalue of H_z at relative size 1 (for grid padding).
+
+        Returns
+        -------
+        ndarray, shape (cells,)
+            Ones unless the parametrization is diagonal.
+        """
         if self.kind != "diagonal":
             return np.ones(self.prep.cells)
         M = np.einsum("cij,cj,ckj->cik", self._Ainv, self._var, self._Ainv)
@@ -331,8 +454,21 @@ _CRITERION_FUNCTIONS = {"lscv": _lscv, "scv": _scv, "plugin": _amise, "mlcv": _m
 def run_selector(method: str, prep: Prepared, parametrization: str, *, binned=None, starts=None):
     """Select Gaussian-kernel bandwidth matrices for every cell of ``prep``.
 
-    Returns a list of dicts with keys ``H`` (data coordinates), ``criterion``
-    (in data coordinates), ``converged``, ``at_edge``, ``details``.
+    Parameters
+    ----------
+    method : {'lscv', 'scv', 'plugin', 'mlcv'}
+    prep : Prepared
+    parametrization : {'full', 'diagonal', 'scalar'}
+    binned : bool, optional
+        Binned FFT sums or exact sums; by default binned for d <= 3 and more than ``EXACT_MAX_N`` data.
+    starts : sequence of float, optional
+        Starting multiples of the normal-scale matrix (default ``STARTS[method]``).
+
+    Returns
+    -------
+    list of dict
+        One per cell, with keys ``H`` (data coordinates), ``criterion`` (in data coordinates),
+        ``converged``, ``at_edge``, ``details``.
 
     Long because it is the one driver of every criterion for a block of cells:
     starts, the vectorised Newton search, keeping the best start per cell and

@@ -72,7 +72,17 @@ def _psi(sums, prep, cell, g, order):
 def sheather_jones(prep: Prepared, *, binned=None):
     """Solve-the-equation bandwidth for every (univariate) cell of ``prep``.
 
-    Returns a list of dicts like :func:`run_selector` (H in data units).
+    Parameters
+    ----------
+    prep : Prepared
+        Cells of one variable.
+    binned : bool, optional
+        Binned or exact pair sums; binned by default when a cell has more than 500 data.
+
+    Returns
+    -------
+    list of dict
+        One per cell, like :func:`run_selector` (H in data units).
     """
     C = prep.cells
     n_max = max(len(z) for z in prep.z)
@@ -143,7 +153,22 @@ def _fixed_point_map(t, n, k2, a2, order=7):
 
 
 def improved_sheather_jones(prep: Prepared, x_list, *, grid_size=2 ** 14):
-    """Diffusion bandwidth of Botev et al. (2010) for each univariate sample."""
+    """Diffusion bandwidth of Botev et al. (2010) for each univariate sample.
+
+    Parameters
+    ----------
+    prep : Prepared
+        The cells' weights, effective sizes and normal-scale fallbacks.
+    x_list : list of array_like
+        The samples in data units, one per cell.
+    grid_size : int, optional
+        Number of bins of the discrete cosine transform.
+
+    Returns
+    -------
+    list of dict
+        One per cell, like :func:`run_selector` (H in data units).
+    """
     out = []
     for c, x in enumerate(x_list):
         x = np.asarray(x, dtype=float).ravel()

@@ -60,7 +60,19 @@ __all__ = [
 
 
 def validate_method(method, bounds) -> str:
-    """The method name, with ``None`` resolved to the default for these bounds."""
+    """The method name, with ``None`` resolved to the default for these bounds.
+
+    Parameters
+    ----------
+    method : str or None
+        A name in ``BOUNDARY_METHODS``.
+    bounds : list of (float, float)
+
+    Returns
+    -------
+    str
+        'none' when ``method`` is None and nothing is bounded.
+    """
     if method is None:
         if not has_bounds(bounds):
             return "none"
@@ -70,7 +82,20 @@ def validate_method(method, bounds) -> str:
 
 
 def check_method(method: str, bounds, data, names) -> None:
-    """Refuse combinations a method cannot honour (before any bandwidth is chosen)."""
+    """Refuse combinations a method cannot honour (before any bandwidth is chosen).
+
+    Parameters
+    ----------
+    method : str
+    bounds : list of (float, float)
+    data : ndarray, shape (n, d)
+    names : list of str
+
+    Raises
+    ------
+    InputError
+        Beta kernels with a one-sided bound, gamma kernels with two, or data on a bound under 'transform'.
+    """
     B = bounded_axes(bounds)
     if method == "beta":
         one = [names[j] for j in B if not (math.isfinite(bounds[j][0]) and math.isfinite(bounds[j][1]))]
@@ -98,14 +123,47 @@ def check_method(method: str, bounds, data, names) -> None:
 
 
 def selection_data(method: str, data, bounds):
-    """The data a bandwidth selector sees: transformed for ``"transform"``."""
+    """The data a bandwidth selector sees: transformed for ``"transform"``.
+
+    Parameters
+    ----------
+    method : str
+    data : ndarray, shape (n, d)
+    bounds : list of (float, float)
+
+    Returns
+    -------
+    ndarray, shape (n, d)
+    """
     if method == "transform":
         return forward_transform(data, bounds)
     return data
 
 
 def build_model(method: str, data, weights, bw, kernel, bounds, engine, names, mask=None):
-    """The fitted boundary model (see :mod:`mvkde.boundary.methods`)."""
+    """The fitted boundary model (see :mod:`mvkde.boundary.methods`).
+
+    Parameters
+    ----------
+    method : str
+        A key of ``METHODS``; ignored when ``mask`` is given.
+    data : ndarray, shape (n, d)
+        In data units (transformed here for 'transform').
+    weights : ndarray, shape (n,), or None
+    bw : BandwidthMatrix
+        For 'transform', in the transformed space.
+    kernel : MultivariateKernel
+    bounds : list of (float, float)
+    engine : {'auto', 'exact', 'binned', 'tree'}
+    names : list of str
+    mask : tuple of (ndarray of bool, list of ndarray), optional
+        As returned by :func:`parse_mask`: a renormalisation to the mask is built instead.
+
+    Returns
+    -------
+    model
+        A boundary model with the interface of ``methods._Base``.
+    """
     if mask is not None:
         values, axes = mask
         return MaskRenormalization(data, weights, bw, kernel, bounds, engine, names, values, axes)

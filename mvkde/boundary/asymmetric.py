@@ -199,6 +199,18 @@ class GammaKernel(_Asymmetric):
 
 
 def modified_gamma_shape(s, b):
-    """rho_b(s) of Chen (2000): s/b for s >= 2b, (s/(2b))^2 + 1 below."""
+    """rho_b(s) of Chen (2000): s/b for s >= 2b, (s/(2b))^2 + 1 below.
+
+    Parameters
+    ----------
+    s : array_like
+        Distances from the bound.
+    b : float
+        Smoothing parameter.
+
+    Returns
+    -------
+    ndarray
+    """
     s = np.asarray(s, dtype=float)
     return np.where(s >= 2.0 * b, s / b, (s / (2.0 * b)) ** 2 + 1.0)

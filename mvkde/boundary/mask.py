@@ -24,7 +24,24 @@ from .methods import _Base, _rejection
 
 
 def parse_mask(mask, names):
-    """(boolean array ordered like ``names``, list of axes) from a DataArray."""
+    """(boolean array ordered like ``names``, list of axes) from a DataArray.
+
+    Parameters
+    ----------
+    mask : xarray.DataArray
+        Booleans (or 0/1), one dimension per variable named after it, with evenly spaced coordinates.
+    names : list of str
+
+    Returns
+    -------
+    values : ndarray of bool
+    axes : list of ndarray
+
+    Raises
+    ------
+    InputError
+        If the mask is not of that form or has no True cell.
+    """
     if not isinstance(mask, xr.DataArray):
         raise InputError(
             "mask must be an xarray.DataArray of booleans with one dimension per variable "
@@ -57,7 +74,18 @@ def parse_mask(mask, names):
 
 
 def cell_index(points, axes):
-    """Index of the nearest grid node per axis, -1 where a point lies outside the grid."""
+    """Index of the nearest grid node per axis, -1 where a point lies outside the grid.
+
+    Parameters
+    ----------
+    points : ndarray, shape (m, d)
+    axes : list of ndarray
+        Evenly spaced axes.
+
+    Returns
+    -------
+    list of ndarray of int, shape (m,)
+    """
     idx = []
     for j, ax in enumerate(axes):
         step = ax[1] - ax[0]
@@ -68,6 +96,18 @@ def cell_index(points, axes):
 
 
 def in_mask(points, mask, axes) -> np.ndarray:
+    """Whether each point's nearest mask node is True (False outside the mask's grid).
+
+    Parameters
+    ----------
+    points : ndarray, shape (m, d)
+    mask : ndarray of bool
+    axes : list of ndarray
+
+    Returns
+    -------
+    ndarray of bool, shape (m,)
+    """
     idx = cell_index(points, axes)
     ok = np.logical_and.reduce([k >= 0 for k in idx])
     out = np.zeros(points.shape[0], dtype=bool)
@@ -77,6 +117,21 @@ def in_mask(points, mask, axes) -> np.ndarray:
 
 
 class MaskRenormalization(_Base):
+    """Pointwise renormalisation to a support given as a mask of grid cells.
+
+    ``f(x) = f_hat(x) / a0(x)`` inside the mask, zero outside, with ``a0(x)`` the kernel's mass over the mask's
+    cells (a kernel sum over the cell centres) and divided by the total mass.  The interface is that of
+    ``methods._Base``.
+
+    Parameters
+    ----------
+    data, weights, bw, kernel, box, engine, names
+        As for ``methods._Base``.
+    mask : ndarray of bool
+    axes : list of ndarray
+        The mask's grid, from :func:`parse_mask`.
+    """
+
     name = "mask"
     sample_note = ("rejection from the uncorrected estimate restricted to the mask, acceptance "
                    "min(a0)/a0(x) with min over the mask's nodes")
@@ -101,9 +156,20 @@ class MaskRenormalization(_Base):
         return v * self.centres.shape[0] * self.volume
 
     def inside(self, pts):
+        """Whether each point lies in the mask (:func:`in_mask`).
+
+        Parameters
+        ----------
+        pts : ndarray, shape (m, d)
+
+        Returns
+        -------
+        ndarray of bool, shape (m,)
+        """
         return in_mask(pts, self.mask, self.axes)
 
     def density(self, pts, log=False):
+        """Renormalised estimate inside the mask, zero outside; as ``methods._Base.density``."""
         out = np.zeros(pts.shape[0])
         ok = self.inside(pts)
         choice = None
@@ -116,6 +182,7 @@ class MaskRenormalization(_Base):
         return out, choice
 
     def grid(self, axes):
+        """Renormalised estimate on the grid, zero outside the mask; as ``methods._Base.grid``."""
         f, choice = self._grid(axes, self.data, self.w, self.bw)
         same = len(axes) == len(self.axes) and all(
             a.shape == b.shape and np.allclose(a, b) for a, b in zip(axes, self.axes))
@@ -128,10 +195,21 @@ class MaskRenormalization(_Base):
         return out, choice
 
     def grid_pieces(self, axes):
+        """None: the model is evaluated by :meth:`grid` on its own.
+
+        Parameters
+        ----------
+        axes : list of ndarray
+
+        Returns
+        -------
+        None
+        """
         # the edge correction is a convolution of the mask: evaluated per model
         return None
 
     def sample(self, n, rng):
+        """Rejection from the plain estimate, acceptance min(a0)/a0(x) in the mask; as ``methods._Base.sample``."""
         lowest = float(self.a0_mask[self.mask].min())
 
         def accept(y):

@@ -76,7 +76,18 @@ def _panels(a: float, b: float, panels: int):
 
 
 def axis_reach(bw: BandwidthMatrix, kernel, j: int) -> float:
-    """How far (in data units) the scaled kernel reaches along axis ``j``."""
+    """How far (in data units) the scaled kernel reaches along axis ``j``.
+
+    Parameters
+    ----------
+    bw : BandwidthMatrix
+    kernel : MultivariateKernel
+    j : int
+
+    Returns
+    -------
+    float
+    """
     if not kernel.is_compact:
         return _GAUSS_REACH * math.sqrt(bw.matrix[j, j])
     if kernel.is_radial:
@@ -85,6 +96,18 @@ def axis_reach(bw: BandwidthMatrix, kernel, j: int) -> float:
 
 
 def inside_box(points, box) -> np.ndarray:
+    """Whether each point lies in the closed box.
+
+    Parameters
+    ----------
+    points : ndarray, shape (m, d)
+    box : list of (float, float)
+        ``(lo, hi)`` per variable, infinite where unbounded.
+
+    Returns
+    -------
+    ndarray of bool, shape (m,)
+    """
     ok = np.ones(points.shape[0], dtype=bool)
     for j, (lo, hi) in enumerate(box):
         ok &= (points[:, j] >= lo) & (points[:, j] <= hi)
@@ -92,6 +115,16 @@ def inside_box(points, box) -> np.ndarray:
 
 
 def bounded_axes(box) -> list[int]:
+    """Indices of the variables with a finite bound.
+
+    Parameters
+    ----------
+    box : list of (float, float)
+
+    Returns
+    -------
+    list of int
+    """
     return [j for j, (lo, hi) in enumerate(box) if math.isfinite(lo) or math.isfinite(hi)]
 
 
@@ -104,6 +137,25 @@ def factorised_scales(method: str, bw: BandwidthMatrix, kernel, box, names) -> d
     the Cholesky row of each bounded variable has one non-zero entry (the variable
     is the first one, or H does not couple it with the variables before it).
     Renormalisation and the linear boundary kernel need it; reflection does not.
+
+    Parameters
+    ----------
+    method : str
+        Boundary method name, for the messages.
+    bw : BandwidthMatrix
+    kernel : MultivariateKernel
+    box : list of (float, float)
+    names : list of str
+
+    Returns
+    -------
+    dict of int -> float
+        Bounded axis -> scale of the kernel's marginal along it.
+
+    Raises
+    ------
+    InputError
+        If the marginals do not factorise (spherical kernel, or H couples a bounded variable).
     """
     B = bounded_axes(box)
     H, L = bw.matrix, bw.cholesky
@@ -134,6 +186,26 @@ def factorised_scales(method: str, bw: BandwidthMatrix, kernel, box, names) -> d
 
 
 class _Base:
+    """The interface every boundary model shares; the uncorrected estimate.
+
+    Parameters
+    ----------
+    data : ndarray, shape (n, d)
+    weights : ndarray, shape (n,), or None
+        None gives every datum weight 1/n.
+    bw : BandwidthMatrix
+    kernel : MultivariateKernel
+    box : list of (float, float)
+        ``(lo, hi)`` per variable, infinite where unbounded.
+    engine : {'auto', 'exact', 'binned', 'tree'}
+    names : list of str
+
+    Attributes
+    ----------
+    attrs : dict
+        Numbers worth recording in the outputs (at least ``boundary_sampling``).
+    """
+
     name = "none"
     sample_note = "smoothed bootstrap; draws outside the support are redrawn (rejection)"
 
@@ -165,6 +237,19 @@ class _Base:
         return v * total, choice
 
     def density(self, pts, log=False):
+        """Density (or log density) at points inside the support.
+
+        Parameters
+        ----------
+        pts : ndarray, shape (m, d)
+        log : bool, optional
+
+        Returns
+        -------
+        values : ndarray, shape (m,)
+        choice : EngineChoice or None
+            None when no kernel sum carried weight.
+        """
         return self._points(pts, self.data, self.w, self.bw, log)
 
     def grid_pieces(self, axes):
@@ -176,10 +261,33 @@ class _Base:
         batch door evaluates the pieces of many cells in one call of
         :func:`mvkde.engines.evaluate_grid_many`; :meth:`grid` does the same
         for one model, so both give the same numbers on the same lattice.
+        A piece may carry its own list of axes as a fourth entry.
+
+        Parameters
+        ----------
+        axes : list of ndarray
+
+        Returns
+        -------
+        pieces : list of tuple
+        combine : callable
+            List of the pieces' grids -> ndarray of the model's grid.
         """
         return [(self.data, self.w, self.bw)], _first
 
     def grid(self, axes):
+        """Density on the tensor grid ``axes``, through :meth:`grid_pieces`.
+
+        Parameters
+        ----------
+        axes : list of ndarray
+            d increasing 1-D arrays.
+
+        Returns
+        -------
+        values : ndarray, shape (len(axes[0]), ..., len(axes[d-1]))
+        choice : EngineChoice or None
+        """
         pieces, combine = self.grid_pieces(axes)
         (values,), (choice,) = evaluate_pieces(axes, [pieces], self.kernel, self.engine)
         return combine(values), choice
@@ -191,6 +299,22 @@ class _Base:
         return self.data[idx] + self.bw.colorize(self.kernel.sample(n, rng))
 
     def sample(self, n, rng):
+        """Draws that respect the bounds (here: the smoothed bootstrap, redrawn outside the support).
+
+        Parameters
+        ----------
+        n : int
+        rng : numpy.random.Generator
+
+        Returns
+        -------
+        ndarray, shape (n, d)
+
+        Raises
+        ------
+        InputError
+            If too few draws land inside the support.
+        """
         return _rejection(lambda m: self._bootstrap(m, rng), lambda y: inside_box(y, self.box), n,
                           "the uncorrected estimate has almost no mass inside the bounds")
 
@@ -228,6 +352,19 @@ def evaluate_pieces(axes, models, kernel, engine):
     multiplied by the piece's total weight, zeros for a piece without
     weight), and per model the engine choice of its first piece evaluated
     (None when no piece carried weight).
+
+    Parameters
+    ----------
+    axes : list of ndarray
+        The grid of pieces without their own axes.
+    models : list of list of tuple
+    kernel : MultivariateKernel
+    engine : {'auto', 'exact', 'binned', 'tree'}
+
+    Returns
+    -------
+    grids : list of list of ndarray
+    choices : list of (EngineChoice or None)
     """
     groups: dict = {}   # pieces on the same grid go through one engine call
     out = []
@@ -344,6 +481,7 @@ class Reflection(_Base):
         return out
 
     def density(self, pts, log=False):
+        """Sum over the image data sets; arguments and returns as ``_Base.density``."""
         vals, choice = [], None
         for bw, data, w in self.groups:
             v, c = self._points(pts, data, w, bw, log)
@@ -354,6 +492,7 @@ class Reflection(_Base):
         return np.sum(vals, axis=0), choice
 
     def grid_pieces(self, axes):
+        """One piece on an extended grid when nodes mirror onto nodes, else one per image set; as ``_Base``."""
         mirrored = self._mirrored_grid(axes)
         if mirrored is not None:
             return mirrored
@@ -401,6 +540,7 @@ class Reflection(_Base):
         return [(self.data, self.w, self.bw, ext_axes)], combine
 
     def sample(self, n, rng):
+        """Smoothed bootstrap folded into the box (:func:`fold_into_box`); as ``_Base.sample``."""
         return fold_into_box(self._bootstrap(n, rng), self.box)
 
 
@@ -410,7 +550,18 @@ def _summed(values):
 
 def fold_into_box(y, box):
     """Fold draws back into the box by reflection at each bound: the reflection
-    estimate's own sampling (Silverman 1986, Sec. 2.10)."""
+    estimate's own sampling (Silverman 1986, Sec. 2.10).
+
+    Parameters
+    ----------
+    y : array_like, shape (n, d)
+    box : list of (float, float)
+
+    Returns
+    -------
+    ndarray, shape (n, d)
+        A copy; ``y`` is not changed.
+    """
     y = np.array(y, dtype=float, copy=True)
     for j, (lo, hi) in enumerate(box):
         col = y[:, j]
@@ -443,7 +594,16 @@ class _Factorised(_Base):
         return cut_moments(self.k1, (x - lo) / h, (x - hi) / h)
 
     def mass_inside(self, x) -> np.ndarray:
-        """``a0(x) = int_support K_H(x - y) dy`` (a product of 1-D cut masses)."""
+        """``a0(x) = int_support K_H(x - y) dy`` (a product of 1-D cut masses).
+
+        Parameters
+        ----------
+        x : ndarray, shape (m, d)
+
+        Returns
+        -------
+        ndarray, shape (m,)
+        """
         out = np.ones(x.shape[0])
         for j in self.scales:
             out *= self._moments(j, x[:, j])[0]
@@ -539,12 +699,15 @@ class KernelRenormalization(_Factorised):
         self.w_corrected = self.w / self.a0_data
 
     def density(self, pts, log=False):
+        """The engine with weights ``w_i / a0(X_i)``; arguments and returns as ``_Base.density``."""
         return self._points(pts, self.data, self.w_corrected, self.bw, log)
 
     def grid_pieces(self, axes):
+        """One piece with weights ``w_i / a0(X_i)``; as ``_Base.grid_pieces``."""
         return [(self.data, self.w_corrected, self.bw)], _first
 
     def sample(self, n, rng):
+        """Each kernel draw redrawn until inside the support; as ``_Base.sample``."""
         idx = rng.choice(self.data.shape[0], size=n, p=self.w)
         out = np.empty((n, self.d))
         todo = np.arange(n)
@@ -581,6 +744,7 @@ class PointwiseRenormalization(_Factorised):
         self.attrs["boundary_mass_before_normalisation"] = self.constant
 
     def density(self, pts, log=False):
+        """Plain estimate divided by ``a0(x)`` and the total mass; as ``_Base.density``."""
         v, choice = self._points(pts, self.data, self.w, self.bw)
         v = v / (self.mass_inside(pts) * self.constant)
         if log:
@@ -589,6 +753,7 @@ class PointwiseRenormalization(_Factorised):
         return v, choice
 
     def grid_pieces(self, axes):
+        """One plain piece, divided by ``a0`` per axis and the total mass; as ``_Base.grid_pieces``."""
         divisors = []
         for j in self.scales:
             shape = [1] * self.d
@@ -604,6 +769,7 @@ class PointwiseRenormalization(_Factorised):
         return [(self.data, self.w, self.bw)], combine
 
     def sample(self, n, rng):
+        """Rejection from the uncorrected estimate with acceptance min(a0)/a0(x); as ``_Base.sample``."""
         lowest = 1.0
         for j in self.scales:
             lo, hi = self.box[j]
@@ -679,6 +845,7 @@ class LinearBoundaryKernel(_Factorised):
                 yield subset, w
 
     def density(self, pts, log=False):
+        """Sum of the 2^k weighted engine calls (may be negative; log is -inf there); as ``_Base.density``."""
         out, choice = np.zeros(pts.shape[0]), None
         coef = {j: self._coefficients(j, pts[:, j]) for j in self.scales}
         for subset, w in self._terms():
@@ -694,6 +861,7 @@ class LinearBoundaryKernel(_Factorised):
         return out, choice
 
     def grid_pieces(self, axes):
+        """One piece per term ``w_i prod_{j in S} t_ij``; as ``_Base.grid_pieces``."""
         coef = {j: self._coefficients(j, axes[j]) for j in self.scales}
         terms = list(self._terms())
 
@@ -710,6 +878,7 @@ class LinearBoundaryKernel(_Factorised):
         return [(self.data, w, self.bw) for _, w in terms], combine
 
     def sample(self, n, rng):
+        """Rejection from the reflection estimate (approximate, see ``sample_note``); as ``_Base.sample``."""
         return _envelope_sample(self, n, rng)
 
 
@@ -759,6 +928,17 @@ class Transformation(_Base):
 
     @staticmethod
     def forward(x, box):
+        """The transform g (:func:`forward_transform`).
+
+        Parameters
+        ----------
+        x : ndarray, shape (m, d)
+        box : list of (float, float)
+
+        Returns
+        -------
+        ndarray, shape (m, d)
+        """
         return forward_transform(x, box)
 
     def _log_jacobian(self, x):
@@ -776,6 +956,7 @@ class Transformation(_Base):
         return out
 
     def density(self, pts, log=False):
+        """Transformed-space estimate times the Jacobian (zero at the bounds); as ``_Base.density``."""
         y = forward_transform(pts, self.box)
         finite = np.all(np.isfinite(y), axis=1)
         out = np.full(pts.shape[0], -np.inf)
@@ -787,19 +968,42 @@ class Transformation(_Base):
         return (out if log else np.exp(out)), choice
 
     def grid(self, axes):
+        """:meth:`density` at every node (the grid is not regular in the transformed space); as ``_Base.grid``."""
         mesh = np.meshgrid(*axes, indexing="ij")
         pts = np.column_stack([g.ravel() for g in mesh])
         v, choice = self.density(pts)
         return v.reshape(mesh[0].shape), choice
 
     def grid_pieces(self, axes):
+        """None: this model has no grid pieces (see :meth:`grid`).
+
+        Parameters
+        ----------
+        axes : list of ndarray
+
+        Returns
+        -------
+        None
+        """
         return None
 
     def sample(self, n, rng):
+        """Smoothed bootstrap in the transformed space, mapped back; as ``_Base.sample``."""
         return inverse_transform(self._bootstrap(n, rng), self.box)
 
 
 def transform_kinds(box):
+    """Name of the transform of each variable.
+
+    Parameters
+    ----------
+    box : list of (float, float)
+
+    Returns
+    -------
+    list of str
+        'logit', 'log(x - lo)', 'log(hi - x)' or 'identity'.
+    """
     out = []
     for lo, hi in box:
         if math.isfinite(lo) and math.isfinite(hi):
@@ -814,6 +1018,17 @@ def transform_kinds(box):
 
 
 def forward_transform(x, box):
+    """Map ``x`` to the unbounded space (logit or log per bounded variable; inf or nan at and past the bounds).
+
+    Parameters
+    ----------
+    x : ndarray, shape (m, d)
+    box : list of (float, float)
+
+    Returns
+    -------
+    ndarray, shape (m, d)
+    """
     y = np.array(x, dtype=float, copy=True)
     with np.errstate(divide="ignore", invalid="ignore"):
         for j, (lo, hi) in enumerate(box):
@@ -828,6 +1043,17 @@ def forward_transform(x, box):
 
 
 def inverse_transform(y, box):
+    """Map transformed values back into the box (inverse of :func:`forward_transform`).
+
+    Parameters
+    ----------
+    y : ndarray, shape (m, d)
+    box : list of (float, float)
+
+    Returns
+    -------
+    ndarray, shape (m, d)
+    """
     x = np.array(y, dtype=float, copy=True)
     for j, (lo, hi) in enumerate(box):
         if math.isfinite(lo) and math.isfinite(hi):

@@ -56,7 +56,24 @@ def _raw_table(name: str, l: int):
 
 
 def raw_partial_moment(kernel: Kernel, l: int, p) -> np.ndarray:
-    """``int_{-r}^{p} u^l K(u) du`` on the kernel's standard support."""
+    """``int_{-r}^{p} u^l K(u) du`` on the kernel's standard support.
+
+    Parameters
+    ----------
+    kernel : Kernel
+        Gaussian, or a compact second-order kernel.
+    l : {0, 1, 2}
+    p : array_like
+
+    Returns
+    -------
+    ndarray
+
+    Raises
+    ------
+    ValueError
+        For a kernel without partial moments.
+    """
     p = np.asarray(p, dtype=float)
     if kernel.name == "gaussian":
         if l == 0:
@@ -77,7 +94,18 @@ def raw_partial_moment(kernel: Kernel, l: int, p) -> np.ndarray:
 
 
 def partial_moment(kernel: Kernel, l: int, p) -> np.ndarray:
-    """``M_l(p) = int_{-inf}^{p} u^l K_unit(u) du`` for the unit-variance kernel."""
+    """``M_l(p) = int_{-inf}^{p} u^l K_unit(u) du`` for the unit-variance kernel.
+
+    Parameters
+    ----------
+    kernel : Kernel
+    l : {0, 1, 2}
+    p : array_like
+
+    Returns
+    -------
+    ndarray
+    """
     s = kernel.scale
     return raw_partial_moment(kernel, l, s * np.asarray(p, dtype=float)) / s ** l
 
@@ -87,6 +115,15 @@ def cut_moments(kernel: Kernel, p_lo, p_hi):
 
     With ``u = (x - y)/h`` and ``y`` in ``[lo, hi]``: ``p_lo = (x - lo)/h``
     (``+inf`` for an open side) and ``p_hi = (x - hi)/h`` (``-inf``).
+
+    Parameters
+    ----------
+    kernel : Kernel
+    p_lo, p_hi : ndarray
+
+    Returns
+    -------
+    a0, a1, a2 : ndarray
     """
     out = []
     for l in range(3):

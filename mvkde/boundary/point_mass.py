@@ -22,7 +22,16 @@ __all__ = ["PointMassPart", "declare", "split", "Mixture", "EmptyModel", "no_ban
 
 
 class PointMassPart:
-    """The fitted point mass of one variable: its rows, probability and the others' density on it."""
+    """The fitted point mass of one variable: its rows, probability and the others' density on it.
+
+    Parameters
+    ----------
+    declaration : PointMass
+        From :func:`declare`.
+    rows : ndarray of bool, shape (n,)
+        The rows at the point mass.
+    probability : float
+    """
 
     def __init__(self, declaration: Declaration, rows: np.ndarray, probability: float):
         self.declaration = declaration
@@ -36,13 +45,37 @@ class PointMassPart:
         self.problem = ""
 
     def as_attrs(self) -> dict:
+        """The point mass as estimate attributes.
+
+        Returns
+        -------
+        dict
+            ``point_mass_variable``, ``_threshold``, ``_bound``, ``_probability`` and ``_count``.
+        """
         return {"point_mass_variable": self.name, "point_mass_threshold": float(self.threshold),
                 "point_mass_bound": float(self.bound), "point_mass_probability": float(self.probability),
                 "point_mass_count": self.count}
 
 
 def declare(point_masses, box, names) -> Declaration | None:
-    """Check ``point_masses`` (one entry per variable, None or a threshold) against the bounds."""
+    """Check ``point_masses`` (one entry per variable, None or a threshold) against the bounds.
+
+    Parameters
+    ----------
+    point_masses : sequence or None
+    box : list of (float, float)
+    names : list of str
+
+    Returns
+    -------
+    PointMass or None
+        None when no variable carries a point mass.
+
+    Raises
+    ------
+    InputError
+        Wrong length, more than one point mass, no finite lower bound or a threshold outside [lo, hi).
+    """
     if point_masses is None:
         return None
     try:
@@ -73,7 +106,20 @@ def declare(point_masses, box, names) -> Declaration | None:
 
 
 def split(declaration: Declaration | None, values, weights) -> PointMassPart | None:
-    """The point-mass rows of a sample and their probability (share of the weight)."""
+    """The point-mass rows of a sample and their probability (share of the weight).
+
+    Parameters
+    ----------
+    declaration : PointMass or None
+    values : ndarray, shape (n, d)
+    weights : ndarray, shape (n,), or None
+        Summing to one.
+
+    Returns
+    -------
+    PointMassPart or None
+        None when ``declaration`` is None.
+    """
     if declaration is None:
         return None
     rows = values[:, declaration.index] <= declaration.threshold
@@ -82,13 +128,24 @@ def split(declaration: Declaration | None, values, weights) -> PointMassPart | N
 
 
 class Mixture:
-    """(1 - p) x one estimate + p x another, on the same variables: a marginal that drops a point mass."""
+    """(1 - p) x one estimate + p x another, on the same variables: a marginal that drops a point mass.
+
+    Has the interface of the boundary models (``methods._Base``) without ``grid_pieces``.
+
+    Parameters
+    ----------
+    continuous, on_mass : estimate
+        Fitted estimates; ``on_mass`` may be None.
+    p : float
+        Weight of ``on_mass``.
+    """
 
     def __init__(self, continuous, on_mass, p: float):
         self.parts = [(1.0 - p, continuous)] + ([(p, on_mass)] if on_mass is not None and p > 0 else [])
         self.attrs = {"boundary": continuous.boundary, "mixture_weights": ", ".join(f"{w:.6g}" for w, _ in self.parts)}
 
     def density(self, pts, log=False):
+        """Weighted sum of the parts' pdfs; as ``methods._Base.density`` (the choice is None)."""
         values = sum(w * est.pdf(pts) for w, est in self.parts)
         if log:
             with np.errstate(divide="ignore"):
@@ -96,10 +153,12 @@ class Mixture:
         return values, None
 
     def grid(self, axes):
+        """Weighted sum of the parts' grids over the axes' limits; as ``methods._Base.grid`` (choice None)."""
         limits = [(a[0], a[-1]) for a in axes]
         return sum(w * est.grid([len(a) for a in axes], limits).values for w, est in self.parts), None
 
     def sample(self, n, rng):
+        """Multinomial counts per part, drawn from each and shuffled; as ``methods._Base.sample``."""
         counts = rng.multinomial(n, [w for w, _ in self.parts])
         draws = [est.sample(k, rng) for (_, est), k in zip(self.parts, counts) if k]
         out = np.concatenate(draws) if draws else np.empty((0, self.parts[0][1].d))
@@ -107,13 +166,30 @@ class Mixture:
 
 
 def no_bandwidth(d: int) -> BandwidthResult:
-    """The bandwidth of an empty continuous part (every value at the point mass)."""
+    """The bandwidth of an empty continuous part (every value at the point mass).
+
+    Parameters
+    ----------
+    d : int
+
+    Returns
+    -------
+    BandwidthResult
+        A matrix of NaN.
+    """
     nan = np.full((d, d), np.nan)
     return BandwidthResult(BandwidthMatrix(nan, nan), "none: every value is at the point mass", "full")
 
 
 class EmptyModel:
-    """The continuous part when every value lies at the point mass: zero density."""
+    """The continuous part when every value lies at the point mass: zero density.
+
+    Has the interface of the boundary models (``methods._Base``) without ``grid_pieces``.
+
+    Parameters
+    ----------
+    d : int
+    """
 
     attrs = {"boundary": "none", "continuous_part": "empty: every value is at the point mass"}
 
@@ -121,12 +197,15 @@ class EmptyModel:
         self.d = d
 
     def density(self, pts, log=False):
+        """Zeros (-inf for log); as ``methods._Base.density`` (the choice is None)."""
         return np.full(pts.shape[0], -np.inf if log else 0.0), None
 
     def grid(self, axes):
+        """Zeros; as ``methods._Base.grid`` (the choice is None)."""
         return np.zeros([len(a) for a in axes]), None
 
     def sample(self, n, rng):
+        """An empty (0, d) array; any ``n`` > 0 raises InputError; as ``methods._Base.sample``."""
         if n:
             raise InputError("the continuous part is empty (every value is at the point mass): nothing to draw")
         return np.empty((0, self.d))

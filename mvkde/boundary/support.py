@@ -13,6 +13,21 @@ def parse_bounds(bounds, d: int, names) -> list[tuple[float, float]]:
 
     ``bounds`` is None, or a sequence of d entries each None or (lo, hi) with
     None (or +-inf) for an open side.
+
+    Parameters
+    ----------
+    bounds : sequence or None
+    d : int
+    names : list of str
+
+    Returns
+    -------
+    list of (float, float)
+
+    Raises
+    ------
+    InputError
+        Wrong length, an entry that is not a pair, or lo >= hi.
     """
     if bounds is None:
         return [(-math.inf, math.inf)] * d
@@ -41,7 +56,19 @@ def parse_bounds(bounds, d: int, names) -> list[tuple[float, float]]:
 
 def check_inside(data: np.ndarray, bounds, names) -> None:
     """Refuse data outside declared bounds, naming the variable, the count and the worst value
-    (the one farthest from its bound)."""
+    (the one farthest from its bound).
+
+    Parameters
+    ----------
+    data : ndarray, shape (n, d)
+    bounds : list of (float, float)
+    names : list of str
+
+    Raises
+    ------
+    InputError
+        If a value lies outside its bounds.
+    """
     for j, (lo, hi) in enumerate(bounds):
         col = data[:, j]
         below = col < lo
@@ -58,7 +85,17 @@ def check_inside(data: np.ndarray, bounds, names) -> None:
 
 
 def outside_rows(data: np.ndarray, bounds) -> np.ndarray:
-    """Boolean (n,): rows with a value outside its variable's bounds."""
+    """Boolean (n,): rows with a value outside its variable's bounds.
+
+    Parameters
+    ----------
+    data : ndarray, shape (n, d)
+    bounds : list of (float, float)
+
+    Returns
+    -------
+    ndarray of bool, shape (n,)
+    """
     out = np.zeros(data.shape[0], dtype=bool)
     for j, (lo, hi) in enumerate(bounds):
         out |= (data[:, j] < lo) | (data[:, j] > hi)
@@ -66,4 +103,14 @@ def outside_rows(data: np.ndarray, bounds) -> np.ndarray:
 
 
 def has_bounds(bounds) -> bool:
+    """Whether some variable has a finite bound.
+
+    Parameters
+    ----------
+    bounds : list of (float, float)
+
+    Returns
+    -------
+    bool
+    """
     return any(math.isfinite(lo) or math.isfinite(hi) for lo, hi in bounds)

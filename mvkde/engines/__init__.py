@@ -56,11 +56,29 @@ __all__ = ["ENGINES", "EngineChoice", "choose", "evaluate_grid", "evaluate_grid_
 
 @dataclass(frozen=True)
 class EngineChoice:
+    """The engine picked for an evaluation and why.
+
+    Parameters
+    ----------
+    engine : {'exact', 'binned', 'tree'}
+    reason : str
+        One sentence saying why this engine was used.
+    details : dict, optional
+        Further facts (e.g. the binned engine's refinement and error estimate); not compared.
+    """
+
     engine: str
     reason: str
     details: dict = field(default_factory=dict, compare=False)
 
     def as_attrs(self) -> dict:
+        """The choice as estimate attributes.
+
+        Returns
+        -------
+        dict
+            ``engine``, ``engine_reason`` and ``engine_<key>`` for each entry of ``details``.
+        """
         out = {"engine": self.engine, "engine_reason": self.reason}
         for key, value in self.details.items():
             out[f"engine_{key}"] = value
@@ -68,6 +86,23 @@ class EngineChoice:
 
 
 def validate_engine(name) -> str:
+    """Check an engine name.
+
+    Parameters
+    ----------
+    name : str
+        One of :data:`ENGINES`.
+
+    Returns
+    -------
+    str
+        ``name``, checked.
+
+    Raises
+    ------
+    InputError
+        If ``name`` is not one of :data:`ENGINES`.
+    """
     return check_choice("engine", name, ENGINES)
 
 
@@ -76,6 +111,18 @@ def neighbour_fraction(data: np.ndarray, bw: BandwidthMatrix, kernel: Multivaria
 
     Support volume |H|^{1/2} V_z over the volume of a normal law with the
     data's covariance, (2 pi e)^{d/2} |S|^{1/2} (its entropy volume).
+
+    Parameters
+    ----------
+    data : ndarray, shape (n, d)
+        The sample (at most about 100 000 rows of it are used for the covariance).
+    bw : BandwidthMatrix
+    kernel : MultivariateKernel
+
+    Returns
+    -------
+    float
+        The share, at most 1; 1 for non-compact kernels or a singular data covariance.
     """
     d = kernel.d
     if not kernel.is_compact:
@@ -96,8 +143,27 @@ def choose(requested: str, *, kind: str, n: int, m: int, d: int, kernel: Multiva
            regular: bool = True, fraction: float | None = None) -> EngineChoice:
     """Pick an engine for ``m`` evaluation nodes (``kind`` is 'grid' or 'points').
 
-    ``regular``: the grid axes are evenly spaced; ``fraction``: estimated share
-    of the data within one kernel support (compact kernels), for the tree.
+    Parameters
+    ----------
+    requested : {'auto', 'exact', 'binned', 'tree'}
+        The engine asked for; anything but ``'auto'`` is checked and kept.
+    kind : {'grid', 'points'}
+    n, m, d : int
+        Number of data, of evaluation nodes and of variables.
+    kernel : MultivariateKernel
+    regular : bool, optional
+        The grid axes are evenly spaced.
+    fraction : float, optional
+        Estimated share of the data within one kernel support (compact kernels), for the tree.
+
+    Returns
+    -------
+    EngineChoice
+
+    Raises
+    ------
+    InputError
+        If ``'binned'`` is requested for points, for d above ``binned.MAX_DIM`` or for an uneven grid.
     """
     requested = validate_engine(requested)
     work = n * m
@@ -157,8 +223,25 @@ def _fraction(data, bw, kernel, work):
 def evaluate_points(points, data, weights, bw, kernel, engine="auto", *, log=False, tol=None):
     """Density (or log density) at ``points`` (m, d).
 
-    ``tol``: truncation tolerance of the tree engine's Gaussian kernel
-    (relative to the peak density; default 1e-3).
+    Parameters
+    ----------
+    points : ndarray, shape (m, d)
+    data : ndarray, shape (n, d)
+    weights : ndarray, shape (n,), or None
+    bw : BandwidthMatrix or ndarray, shape (d, d)
+    kernel : MultivariateKernel
+    engine : {'auto', 'exact', 'tree'}, optional
+        ``'binned'`` is refused at scattered points.
+    log : bool, optional
+        Return the log density.
+    tol : float, optional
+        Truncation tolerance of the tree engine's Gaussian kernel
+        (relative to the peak density; default 1e-3).
+
+    Returns
+    -------
+    values : ndarray, shape (m,)
+    choice : EngineChoice
     """
     bw = _as_bw(bw, data.shape[1])
     n, d = data.shape
@@ -192,8 +275,25 @@ def _binned_choice(choice: EngineChoice, info: binned.BinnedInfo) -> EngineChoic
 def evaluate_grid(axes, data, weights, bw, kernel, engine="auto", *, tol=None):
     """Density on the tensor grid ``axes`` (a list of d increasing 1-D arrays).
 
-    ``tol``: binned engine's target max binning error relative to the peak
-    (default 1e-3).
+    Parameters
+    ----------
+    axes : list of ndarray
+    data : ndarray, shape (n, d)
+    weights : ndarray, shape (n,), or None
+    bw : BandwidthMatrix or ndarray, shape (d, d)
+    kernel : MultivariateKernel
+    engine : {'auto', 'exact', 'binned', 'tree'}, optional
+    tol : float, optional
+        Binned engine's target max binning error relative to the peak (default 1e-3).
+
+    Returns
+    -------
+    values : ndarray, shape (len(axes[0]), ..., len(axes[d-1]))
+    choice : EngineChoice
+
+    See Also
+    --------
+    evaluate_grid_many : the same for many cells at once.
     """
     values, choices = evaluate_grid_many(axes, [data], [weights], [bw], kernel, engine, tol=tol)
     return values[0], choices[0]

@@ -139,6 +139,12 @@ class BinnedInfo:
     met: bool                    # error_estimate <= tolerance
 
     def describe(self) -> str:
+        """One sentence on the refinement, the error estimate and any dropped weight.
+
+        Returns
+        -------
+        str
+        """
         r = "x".join(map(str, self.refinement))
         lat = "x".join(map(str, self.lattice))
         text = (f"refinement {r} (lattice {lat}), estimated binning error "
@@ -151,7 +157,18 @@ class BinnedInfo:
 
 
 def regular_spacing(axes) -> np.ndarray | None:
-    """Spacing of each axis if every axis is regular with >= 2 nodes, else None."""
+    """Spacing of each axis if every axis is regular with >= 2 nodes, else None.
+
+    Parameters
+    ----------
+    axes : list of array_like
+        The 1-D grid axes; an axis is regular when its steps differ from the mean step by at most
+        1e-9 x its span.
+
+    Returns
+    -------
+    ndarray, shape (d,), or None
+    """
     out = []
     for a in axes:
         a = np.asarray(a, dtype=float)
@@ -185,13 +202,38 @@ _INV_SD_CACHE: dict = {}
 
 
 def gaussian_reach_radius(max_weight: float, tol: float) -> float:
-    """Whitened radius R beyond which dropped Gaussian terms cost <= tol/100 x peak."""
+    """Whitened radius R beyond which dropped Gaussian terms cost <= tol/100 x peak.
+
+    Parameters
+    ----------
+    max_weight : float
+        Largest weight of a datum (weights summing to one).
+    tol : float
+        Tolerance relative to the peak density.
+
+    Returns
+    -------
+    float
+        R = sqrt(2 log(1 / (max_weight tol / 100))), at least sqrt(2).
+    """
     eps = tol / 100.0
     return math.sqrt(2.0 * math.log(max(1.0 / (max_weight * eps), math.e)))
 
 
 def kernel_reach(bw: BandwidthMatrix, mk: MultivariateKernel, radius_gauss: float) -> np.ndarray:
-    """Half-width along each axis of the region where K_H(x) can be non-zero."""
+    """Half-width along each axis of the region where K_H(x) can be non-zero.
+
+    Parameters
+    ----------
+    bw : BandwidthMatrix
+    mk : MultivariateKernel
+    radius_gauss : float
+        Whitened truncation radius used for the Gaussian kernel (:func:`gaussian_reach_radius`).
+
+    Returns
+    -------
+    ndarray, shape (d,)
+    """
     L = bw.cholesky
     if not mk.is_compact:
         return radius_gauss * np.sqrt(np.diag(bw.matrix))
@@ -266,6 +308,16 @@ def nonsmooth_jump(mk: MultivariateKernel) -> tuple[str, float]:
     distance) across the support edge (and across 0 for the triangular
     kernel); 'jump': largest jump of the value.  Product forms multiply by
     k(0)^(d-1), the largest value the other factors can take.
+
+    Parameters
+    ----------
+    mk : MultivariateKernel
+
+    Returns
+    -------
+    kind : {'smooth', 'curvature', 'kink', 'jump'}
+    size : float
+        The jump (0 for 'smooth').
     """
     k = mk.univariate
     if k.smoothness == "once differentiable":
@@ -339,7 +391,19 @@ def _shell_spectra(bws, mk, nfft, delta, margins):
 # ---------------------------------------------------------------------------
 
 def starting_refinement(axes, bws) -> np.ndarray:
-    """Smallest r_j with bins at most RESOLVE conditional standard deviations wide."""
+    """Smallest r_j with bins at most RESOLVE conditional standard deviations wide.
+
+    Parameters
+    ----------
+    axes : list of ndarray
+        Regular grid axes.
+    bws : list of BandwidthMatrix
+        The refinement suits all of them.
+
+    Returns
+    -------
+    ndarray of int, shape (d,)
+    """
     delta_out = regular_spacing(axes)
     r = np.ones(len(axes), dtype=np.int64)
     for bw in bws:
@@ -349,7 +413,30 @@ def starting_refinement(axes, bws) -> np.ndarray:
 
 
 def lattice_for(axes, r, bws, mk, max_w, tol):
-    """Bin widths, margins (bins) and lattice shape for refinement ``r``."""
+    """Bin widths, margins (bins) and lattice shape for refinement ``r``.
+
+    Parameters
+    ----------
+    axes : list of ndarray
+        Regular grid axes.
+    r : ndarray of int, shape (d,)
+        Refinement per axis.
+    bws : list of BandwidthMatrix
+    mk : MultivariateKernel
+    max_w : float
+        Largest weight of a datum.
+    tol : float
+        Tolerance relative to the peak (sets the Gaussian kernel's reach).
+
+    Returns
+    -------
+    delta : ndarray, shape (d,)
+        Bin widths.
+    margins : ndarray of int, shape (d,)
+        Bins added beyond the output grid on each side.
+    shape : tuple of int
+        Lattice shape.
+    """
     delta_out = regular_spacing(axes)
     m = np.array([len(a) for a in axes])
     delta = delta_out / r
@@ -373,6 +460,22 @@ def data_window(axes, samples, bws, mk, max_w, tol) -> list:
     as 0 and the lattice covers only the window, which for a cell on a wide
     shared grid is often a fraction of the grid.  Every datum within reach of
     the grid is within reach of the window, so no extra datum is dropped.
+
+    Parameters
+    ----------
+    axes : list of ndarray
+        Regular grid axes.
+    samples : list of ndarray, shape (n_c, d)
+    bws : list of BandwidthMatrix
+    mk : MultivariateKernel
+    max_w : float
+        Largest weight of a datum.
+    tol : float
+
+    Returns
+    -------
+    list of slice
+        One per axis, at least two nodes long.
     """
     radius = gaussian_reach_radius(max_w, tol)
     reach = np.max([kernel_reach(bw, mk, radius) for bw in bws], axis=0)
@@ -564,6 +667,30 @@ def _convolve(todo, samples, weights, bws, mk, lo, delta, margins, shape, r):
 
 def grid_density(axes, data, weights, bw: BandwidthMatrix, mk: MultivariateKernel, tol=DEFAULT_TOL,
                  max_lattice=MAX_LATTICE):
-    """Binned density of one sample on a regular grid: (values, BinnedInfo)."""
+    """Binned density of one sample on a regular grid: (values, BinnedInfo).
+
+    Parameters
+    ----------
+    axes : list of ndarray
+        Regular grid axes (>= 2 nodes each).
+    data : ndarray, shape (n, d)
+    weights : ndarray, shape (n,), or None
+        Weights summing to one.
+    bw : BandwidthMatrix
+    mk : MultivariateKernel
+    tol : float, optional
+        Target max |binning error| relative to the peak density.
+    max_lattice : int, optional
+        Largest number of lattice nodes.
+
+    Returns
+    -------
+    values : ndarray, shape (len(axes[0]), ..., len(axes[d-1]))
+    info : BinnedInfo
+
+    See Also
+    --------
+    grid_density_many
+    """
     values, infos = grid_density_many(axes, [data], [weights], [bw], mk, tol, max_lattice)
     return values[0], infos[0]

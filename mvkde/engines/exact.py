@@ -40,6 +40,20 @@ def kernel_matrix(mk: MultivariateKernel, pc: np.ndarray, z: np.ndarray, z2h=Non
     """Kernel values K(p_a - x_i) of whitened points against whitened data, shape (m, n).
 
     The unit-covariance kernel, not divided by |H|^{1/2}.
+
+    Parameters
+    ----------
+    mk : MultivariateKernel
+    pc : ndarray, shape (m, d)
+        Whitened points.
+    z : ndarray, shape (n, d)
+        Whitened data.
+    z2h : ndarray, shape (n,), optional
+        ``|z_i|^2 / 2``, computed when not given (used by the Gaussian kernel only).
+
+    Returns
+    -------
+    ndarray, shape (m, n)
     """
     if mk.name == "gaussian":
         if z2h is None:
@@ -64,7 +78,23 @@ def kernel_matrix(mk: MultivariateKernel, pc: np.ndarray, z: np.ndarray, z2h=Non
 
 def density(points, data, weights, bw: BandwidthMatrix, mk: MultivariateKernel,
             chunk_elements: int = CHUNK_ELEMENTS) -> np.ndarray:
-    """f(x) = sum_i w_i K_H(x - X_i) with weights summing to one."""
+    """f(x) = sum_i w_i K_H(x - X_i) with weights summing to one.
+
+    Parameters
+    ----------
+    points : array_like, shape (m, d)
+    data : ndarray, shape (n, d)
+    weights : ndarray, shape (n,), or None
+        None gives every datum weight 1/n.
+    bw : BandwidthMatrix
+    mk : MultivariateKernel
+    chunk_elements : int, optional
+        Largest number of kernel values held at once.
+
+    Returns
+    -------
+    ndarray, shape (m,)
+    """
     n = data.shape[0]
     w = np.full(n, 1.0 / n) if weights is None else weights
     p, z = _prepare(points, data, bw)
@@ -78,7 +108,19 @@ def density(points, data, weights, bw: BandwidthMatrix, mk: MultivariateKernel,
 
 def log_density(points, data, weights, bw: BandwidthMatrix, mk: MultivariateKernel,
                 chunk_elements: int = CHUNK_ELEMENTS) -> np.ndarray:
-    """log f(x); for the Gaussian kernel a log-sum-exp, finite far into the tails."""
+    """log f(x); for the Gaussian kernel a log-sum-exp, finite far into the tails.
+
+    Other kernels take the log of :func:`density` (-inf where it is zero).
+
+    Parameters
+    ----------
+    points, data, weights, bw, mk, chunk_elements
+        As for :func:`density`.
+
+    Returns
+    -------
+    ndarray, shape (m,)
+    """
     if mk.name != "gaussian":
         with np.errstate(divide="ignore"):
             return np.log(np.maximum(density(points, data, weights, bw, mk, chunk_elements), 0.0))

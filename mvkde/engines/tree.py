@@ -34,7 +34,22 @@ __all__ = ["density", "search_radius", "DEFAULT_TOL"]
 
 
 def search_radius(mk: MultivariateKernel, max_weight: float, tol: float = DEFAULT_TOL):
-    """(radius, Minkowski p) of the whitened neighbourhood that carries the kernel."""
+    """(radius, Minkowski p) of the whitened neighbourhood that carries the kernel.
+
+    Parameters
+    ----------
+    mk : MultivariateKernel
+    max_weight : float
+        Largest weight of a datum (sets the Gaussian truncation radius).
+    tol : float, optional
+        Gaussian truncation tolerance relative to the peak density.
+
+    Returns
+    -------
+    radius : float
+    p : float
+        2 (Euclidean ball) or inf (Chebyshev cube, product kernels with d > 1).
+    """
     if not mk.is_compact:
         return math.sqrt(2.0 * math.log(max(1.0 / (max_weight * tol), math.e))), 2.0
     if mk.is_radial:
@@ -54,7 +69,23 @@ def _pair_kernel(mk: MultivariateKernel, p, z, i, j, v):
 
 def density(points, data, weights, bw: BandwidthMatrix, mk: MultivariateKernel,
             tol: float = DEFAULT_TOL) -> np.ndarray:
-    """f(x) = sum_i w_i K_H(x - X_i) over the neighbours of each point."""
+    """f(x) = sum_i w_i K_H(x - X_i) over the neighbours of each point.
+
+    Parameters
+    ----------
+    points : array_like, shape (m, d)
+    data : ndarray, shape (n, d)
+    weights : array_like, shape (n,), or None
+        None gives every datum weight 1/n.
+    bw : BandwidthMatrix
+    mk : MultivariateKernel
+    tol : float, optional
+        Gaussian truncation tolerance relative to the peak density.
+
+    Returns
+    -------
+    ndarray, shape (m,)
+    """
     n = data.shape[0]
     w = np.full(n, 1.0 / n) if weights is None else np.asarray(weights, dtype=float)
     centre = data.mean(axis=0)

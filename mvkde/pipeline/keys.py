@@ -23,7 +23,13 @@ SEASONS = ("DJF", "MAM", "JJA", "SON")  # meteorological seasons (common practic
 # ---------------------------------------------------------------------------
 
 def estimator_choices() -> dict[str, tuple[str, ...]]:
-    """Option names the library accepts, read from its registries (one source of truth)."""
+    """Option names the library accepts, read from its registries (one source of truth).
+
+    Returns
+    -------
+    dict of str -> tuple of str
+        Keys ``kernel``, ``form``, ``bandwidth``, ``parametrization``, ``boundary``, ``engine``.
+    """
     return {
         "kernel": tuple(kernels.KERNEL_NAMES) + tuple(kernels.HIGHER_ORDER_NAMES),
         "form": tuple(kernels.FORMS),

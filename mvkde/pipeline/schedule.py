@@ -110,12 +110,29 @@ class Scheduler:
         return False
 
     def describe(self) -> str:
+        """The scheduler's name and worker count, for the log.
+
+        Returns
+        -------
+        str
+        """
         if self.client is not None:
             n = len(self.client.scheduler_info().get("workers", {}))
             return f"{self.name} ({n} workers)"
         return f"{self.name} ({self.workers or 'all'} workers)" if self.name != "synchronous" else self.name
 
     def compute(self, *collections):
+        """Compute dask collections on this scheduler.
+
+        Parameters
+        ----------
+        *collections : dask collections
+
+        Returns
+        -------
+        list or tuple
+            The computed results, in order (a list from a distributed client).
+        """
         import dask
 
         if self.client is not None:
@@ -126,7 +143,14 @@ class Scheduler:
         return dask.compute(*collections, **kw)
 
     def run_blocks(self, tasks: list, on_result) -> None:
-        """Compute delayed ``tasks``; call ``on_result(index, result)`` as each one finishes."""
+        """Compute delayed ``tasks``; call ``on_result(index, result)`` as each one finishes.
+
+        Parameters
+        ----------
+        tasks : list of dask.delayed.Delayed
+        on_result : callable
+            Called with the task's index in ``tasks`` and its result.
+        """
         import dask
         from dask.callbacks import Callback
 
@@ -163,6 +187,18 @@ def block_tasks(plan: Plan, settings: CellSettings, skip=(), token: str | None =
     ``mvkde run`` gathers them with :func:`execute`; :func:`mvkde.densities`
     assembles them into the dask arrays of a lazy Dataset.  Keys end in
     ``token`` (default: unique to the call).
+
+    Parameters
+    ----------
+    plan : Plan
+    settings : CellSettings
+    skip : collection of int, optional
+        Block indices left out.
+    token : str, optional
+
+    Returns
+    -------
+    list of dask.delayed.Delayed
     """
     import uuid
 
@@ -203,8 +239,21 @@ def execute(plan: Plan, settings: CellSettings, scheduler: Scheduler, progress: 
 
     With a resume store (:class:`~mvkde.pipeline.resume.BlockStore`), blocks it
     already holds are read back instead of computed, and each computed block is
-    saved to it as soon as it arrives.  Returns ``{"arrays": ..., "failures":
-    ..., "engines": ..., "paths": ..., "resumed_blocks": ...}``.
+    saved to it as soon as it arrives.
+
+    Parameters
+    ----------
+    plan : Plan
+    settings : CellSettings
+    scheduler : Scheduler
+    progress : Progress, optional
+        Updated once per block.
+    store : BlockStore, optional
+
+    Returns
+    -------
+    dict
+        ``{"arrays": ..., "failures": ..., "engines": ..., "paths": ..., "resumed_blocks": ...}``.
     """
     ncell_shape = plan.cell_shape
     arrays: dict = {}

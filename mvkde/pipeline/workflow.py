@@ -199,18 +199,48 @@ class Workflow:
         return self.spec["input"]["variables"]
 
     def variable(self, name) -> dict:
+        """The ``[variables.NAME]`` settings of one variable.
+
+        Parameters
+        ----------
+        name : str
+
+        Returns
+        -------
+        dict
+        """
         return self.spec["variables"][name]
 
     def grid_size(self) -> list[int]:
+        """Grid nodes per variable (one given size applies to every variable).
+
+        Returns
+        -------
+        list of int
+        """
         size = self.spec["grid"]["size"]
         return size * len(self.variables) if len(size) == 1 else list(size)
 
     def input_paths(self) -> list[str]:
-        """Input paths resolved: the current folder first, then the workflow's folder."""
+        """Input paths resolved: the current folder first, then the workflow's folder.
+
+        Returns
+        -------
+        list of str
+        """
         return self.resolve_paths(self.spec["input"]["path"] or [])
 
     def resolve_paths(self, paths) -> list[str]:
-        """Paths (or globs) resolved: the current folder first, then the workflow's folder."""
+        """Paths (or globs) resolved: the current folder first, then the workflow's folder.
+
+        Parameters
+        ----------
+        paths : iterable of str
+
+        Returns
+        -------
+        list of str
+        """
         out = []
         for p in paths:
             q = Path(os.path.expanduser(p))
@@ -222,7 +252,12 @@ class Workflow:
         return out
 
     def to_json(self) -> dict:
-        """The resolved specification in plain JSON types (inf written as strings)."""
+        """The resolved specification in plain JSON types (inf written as strings).
+
+        Returns
+        -------
+        dict
+        """
         return _jsonable(self.spec)
 
 
@@ -243,7 +278,23 @@ def _jsonable(obj):
 
 
 def load(path, overrides=()) -> Workflow:
-    """Read, override and validate a workflow file."""
+    """Read, override and validate a workflow file.
+
+    Parameters
+    ----------
+    path : str or Path
+    overrides : sequence of str, optional
+        ``key.path=value`` items (see :func:`apply_override`).
+
+    Returns
+    -------
+    Workflow
+
+    Raises
+    ------
+    ConfigError
+        If the file cannot be read or the workflow is not valid.
+    """
     path = Path(path)
     try:
         text = path.read_text()
@@ -260,7 +311,18 @@ def load(path, overrides=()) -> Workflow:
 
 
 def loads(text: str, source=None, overrides=()) -> Workflow:
-    """Validate a workflow given as TOML text (``source`` names it in messages)."""
+    """Validate a workflow given as TOML text (``source`` names it in messages).
+
+    Parameters
+    ----------
+    text : str
+    source : str or Path, optional
+    overrides : sequence of str, optional
+
+    Returns
+    -------
+    Workflow
+    """
     name = str(source) if source else "<workflow>"
     try:
         raw = tomllib.loads(text)
@@ -273,7 +335,18 @@ def loads(text: str, source=None, overrides=()) -> Workflow:
 
 
 def from_arguments(raw: dict, name: str) -> Workflow:
-    """Validate a workflow given as a dict in the TOML layout (built from a function's arguments)."""
+    """Validate a workflow given as a dict in the TOML layout (built from a function's arguments).
+
+    Parameters
+    ----------
+    raw : dict
+    name : str
+        Names the workflow in messages.
+
+    Returns
+    -------
+    Workflow
+    """
     return Workflow(_validate(raw, name), None, [], name=name)
 
 
@@ -282,7 +355,21 @@ def _override_key(item: str) -> str:
 
 
 def apply_override(raw: dict, item: str, source: str = "<workflow>") -> None:
-    """Apply one ``key.path=value`` (value in TOML syntax; bare words are strings)."""
+    """Apply one ``key.path=value`` (value in TOML syntax; bare words are strings).
+
+    Parameters
+    ----------
+    raw : dict
+        Changed in place.
+    item : str
+    source : str, optional
+        Names the workflow in messages.
+
+    Raises
+    ------
+    ConfigError
+        If ``item`` is not of that form or its path runs through a value.
+    """
     if "=" not in item:
         raise ConfigError(f"--set {item!r}: expected key.path=value, e.g. compute.workers=4")
     key, text = (s.strip() for s in item.split("=", 1))
@@ -492,7 +579,12 @@ def _cross_checks(spec: dict, source: str) -> None:
 # ---------------------------------------------------------------------------
 
 def key_reference() -> str:
-    """Markdown table of every key, default and meaning (docs/workflow_keys.md is made from it)."""
+    """Markdown table of every key, default and meaning (docs/workflow_keys.md is made from it).
+
+    Returns
+    -------
+    str
+    """
     lines = ["| key | default | meaning |", "|---|---|---|"]
 
     def fmt(v):
