@@ -199,7 +199,7 @@ def memory_case(smoke: bool):
         res = study(gb, Path(tmp), *((4, 5) if smoke else (LAT, LON)))
     # the figure's one home is results.md (this row); memory.md explains it without repeating it
     return [Row(f"{res['file_bytes'] / 1e9:.3g} GB netCDF, {res['cells']} cells x {res['steps']:,} steps, CLI run",
-                res["seconds"], target="peak RSS < 3 GB",
+                res["seconds"], target="peak RSS < 3 GB", met=res["peak_rss"] < 3e9,
                 notes=f"peak RSS {res['peak_rss'] / 1e9:.2f} GB; input size / peak RSS = "
                       f"{res['file_bytes'] / res['peak_rss']:.2f}")]
 
