@@ -193,6 +193,43 @@ def from_matrix(H, spec: DirectionalSpec, names, d, parametrization) -> Smoothin
     return Smoothing(kappas, ks, lin, "given", notes)
 
 
+def _joint_cv(method, theta, units, lin_values, weights, spec, parametrization):
+    """Joint cross-validation of the concentrations and the linear H, and how it was done.
+
+    One circular and one linear variable (no sphere): the binned 2-D lattice
+    criterion (:func:`mvkde.directional.fast_cv.mixed_cv`, every point used);
+    any other combination: exact pair sums
+    (:func:`mvkde.directional.cv.cross_validate`, subsampled above 2,000).
+
+    Parameters
+    ----------
+    method : {'mlcv', 'lscv'}
+    theta : ndarray, shape (n, c)
+        Angles in radians.
+    units : ndarray, shape (n, 3), or None
+    lin_values : ndarray, shape (n, q)
+    weights : ndarray, shape (n,), or None
+    spec : DirectionalSpec
+    parametrization : str
+
+    Returns
+    -------
+    r : mvkde.directional.cv.CVResult
+    label : str
+        The note recorded for the directional variables.
+    """
+    q = len(spec.linear)
+    if len(spec.circular) == 1 and spec.sphere is None and q == 1:
+        r = _fast_cv.mixed_cv(method, theta[:, 0], lin_values[:, 0], weights)
+        how = " (binned on a 2-D lattice, FFT)"
+    else:
+        r = _cv.cross_validate(method, theta=theta, units=units, lin=lin_values if q else None, weights=weights,
+                                parametrization=parametrization)
+        how = "" if r.n_used >= theta.shape[0] else f" on a seeded subsample of {r.n_used}"
+    label = "joint likelihood cross-validation" if method == "mlcv" else "joint least-squares cross-validation"
+    return r, label + how
+
+
 def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form, parametrization, names,
            lin_values) -> Smoothing:
     """Concentrations and the linear bandwidth for selector ``method``.
@@ -207,7 +244,9 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
     alone with KD-tree neighbours.  Linear block: that selector on the linear
     variables alone.
     ``"mlcv"`` / ``"lscv"``: one circular variable alone -- binned FFT
-    cross-validation on the periodic lattice; locations alone by ``"mlcv"`` --
+    cross-validation on the periodic lattice; one circular and one linear
+    variable -- joint binned FFT cross-validation on a 2-D lattice
+    (:func:`mvkde.directional.fast_cv.mixed_cv`); locations alone by ``"mlcv"`` --
     the KD-tree likelihood CV; otherwise joint cross-validation of every
     concentration and the linear (Gaussian) H by exact pair sums, transferred to
     another linear kernel by the canonical rescaling.
@@ -248,14 +287,10 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
         for j in spec.sphere:
             notes[names[j]] = "likelihood cross-validation (KD-tree neighbours)"
     elif method in ("mlcv", "lscv"):
-        r = _cv.cross_validate(method, theta=theta, units=units, lin=lin_values if q else None, weights=weights,
-                                parametrization=parametrization)
+        r, label = _joint_cv(method, theta, units, lin_values, weights, spec, parametrization)
         kappas = {j: float(k) for j, k in zip(spec.circular, r.kappas)}
         ks = r.kappa_sphere
         crit, converged, at_edge = r.criterion, r.converged, r.at_edge
-        label = "joint likelihood cross-validation" if method == "mlcv" else "joint least-squares cross-validation"
-        if r.n_used < values.shape[0]:
-            label += f" on a seeded subsample of {r.n_used}"
         for j in spec.directional:
             notes[names[j]] = label
         if q:
