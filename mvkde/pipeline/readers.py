@@ -10,6 +10,7 @@ from __future__ import annotations
 import glob
 import hashlib
 import os
+import warnings
 from pathlib import Path
 
 import xarray as xr
@@ -118,9 +119,12 @@ def open_gridded(files, chunks=None) -> xr.Dataset:
 def _open(files, chunks, decode_times: bool) -> xr.Dataset:
     if len(files) == 1:
         return xr.open_dataset(files[0], chunks=chunks, engine="netcdf4", decode_times=decode_times)
-    return xr.open_mfdataset([str(f) for f in files], chunks={} if chunks is None else chunks, engine="netcdf4",
-                             combine="by_coords", data_vars="minimal", coords="minimal", compat="override",
-                             parallel=False, decode_times=decode_times)
+    with warnings.catch_warnings():
+        # blocks of whole cell columns that cut across the files' own chunks: intended (one read per block)
+        warnings.filterwarnings("ignore", message=".*separate the stored chunks.*")
+        return xr.open_mfdataset([str(f) for f in files], chunks={} if chunks is None else chunks, engine="netcdf4",
+                                 combine="by_coords", data_vars="minimal", coords="minimal", compat="override",
+                                 parallel=False, decode_times=decode_times)
 
 
 def check_units_agree(files, names) -> None:
