@@ -13,10 +13,14 @@ import logging
 
 import numpy as np
 
-from ..errors import ConfigError
+from ..errors import ConfigError, MvkdeError
 from ..progress import Progress
 from .blocks import BlockResult, CellSettings, process_block
 from .inputs import Plan
+
+
+#: times a block whose task failed on a dask.distributed cluster (not with an MvkdeError) is submitted again
+RETRIES = 2
 
 
 def _worker_environ() -> dict:
@@ -159,8 +163,22 @@ class Scheduler:
 
             futures = self.client.compute(tasks)
             index = {f.key: i for i, f in enumerate(futures)}
-            for fut in as_completed(futures):
-                on_result(index[fut.key], fut.result())
+            retries = dict.fromkeys(index, 0)
+            pending = as_completed(futures)
+            for fut in pending:
+                try:
+                    result = fut.result()
+                except MvkdeError:
+                    raise
+                except Exception:
+                    # a block whose inputs were lost with a worker (distributed can then report a missing
+                    # key): block results are deterministic, so the block is submitted again, twice at most
+                    if retries[fut.key] >= RETRIES:
+                        raise
+                    retries[fut.key] += 1
+                    pending.add(self.client.compute(tasks[index[fut.key]]))
+                    continue
+                on_result(index[fut.key], result)
                 fut.release()
             return
         keys = {t.key: i for i, t in enumerate(tasks)}
