@@ -235,7 +235,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="out", help="output folder (default: out)")
     p.set_defaults(func=cmd_demo)
 
-    p = sub.add_parser("run", help="run a workflow file: densities per cell written to netCDF",
+    p = sub.add_parser("run", help="run a workflow file: densities per cell written to netCDF (or Zarr)",
                        description="Run a TOML workflow: read the inputs, estimate one joint density per "
                                    "cell (and season or group), write a labelled netCDF file with provenance.")
     p.add_argument("workflow", metavar="WORKFLOW", help="the workflow file (.toml)")
