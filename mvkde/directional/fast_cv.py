@@ -37,8 +37,8 @@ from .selectors import (TWO_PI, _linear_bins, _normalised, bessel_ratio, effecti
 # ---------------------------------------------------------------------------
 
 @dataclass
-class CircularCVResult:
-    """Concentration chosen by binned cross-validation on the circle.
+class ConcentrationChoice:
+    """A concentration chosen by cross-validation (on the circle's lattice or the sphere's KD-tree).
 
     Parameters
     ----------
@@ -201,7 +201,7 @@ def circular_cv(criterion, theta, weights=None, *, oversampling=16.0, search=7.0
 
     Returns
     -------
-    CircularCVResult
+    ConcentrationChoice
     """
     theta = np.asarray(theta, dtype=float).ravel()
     w = _normalised(weights, theta.size)
@@ -211,7 +211,7 @@ def circular_cv(criterion, theta, weights=None, *, oversampling=16.0, search=7.0
     hi = min(math.log(nu0) + search, 2.0 * math.log(2 ** 18 / (oversampling * TWO_PI)))
     crit = lat.lscv if criterion == "lscv" else lat.mlcv
     x, fx, ok, at_edge, evals = _bracket_then_brent(lambda v: crit(math.exp(v)), math.log(nu0), lo, hi)
-    return CircularCVResult(math.exp(x), fx, ok, at_edge, evals)
+    return ConcentrationChoice(math.exp(x), fx, ok, at_edge, evals)
 
 
 # ---------------------------------------------------------------------------
@@ -423,22 +423,6 @@ def mixed_cv(criterion, theta, lin, weights=None, *, os_angle=12.0, os_lin=12.0)
 SPHERE_CUTOFF = 1e-12
 
 
-@dataclass
-class SphereCVResult:
-    """Concentration chosen by likelihood cross-validation on the sphere.
-
-    Parameters
-    ----------
-    kappa, criterion : float
-        The concentration and the negative log-likelihood criterion there.
-    converged, at_edge : bool
-    evaluations : int
-    """
-    kappa: float
-    criterion: float
-    converged: bool
-    at_edge: bool
-    evaluations: int
 
 
 class _SphereNeighbours:
@@ -532,7 +516,7 @@ def sphere_likelihood_cv(units, weights=None, *, search=7.0, max_n=SPHERE_MAX_N,
 
     Returns
     -------
-    SphereCVResult
+    ConcentrationChoice
     """
     units = np.asarray(units, dtype=float)
     n = units.shape[0]
@@ -543,7 +527,7 @@ def sphere_likelihood_cv(units, weights=None, *, search=7.0, max_n=SPHERE_MAX_N,
         r = sphere_likelihood_cv(units[idx], None, search=search, max_n=max_n, seed=seed)
         n_eff = float(n) if weights is None else effective_size(_normalised(weights, n))
         scale = (max(n_eff, max_n) / max_n) ** (1.0 / 3.0)
-        return SphereCVResult(r.kappa * scale, r.criterion, r.converged, r.at_edge, r.evaluations)
+        return ConcentrationChoice(r.kappa * scale, r.criterion, r.converged, r.at_edge, r.evaluations)
     w = _normalised(weights, units.shape[0])
     nb = _SphereNeighbours(units, w)
     chord2 = np.maximum(2.0 * (1.0 - nb.nn_dot), 1e-12)
@@ -551,4 +535,4 @@ def sphere_likelihood_cv(units, weights=None, *, search=7.0, max_n=SPHERE_MAX_N,
     lo, hi = start - search, start + search
     x, fx, ok, at_edge, evals = _bracket_then_brent(lambda v: -nb.loglik(math.exp(v)), start, lo, hi,
                                                     xatol=1e-2)
-    return SphereCVResult(math.exp(x), fx, ok, at_edge, evals)
+    return ConcentrationChoice(math.exp(x), fx, ok, at_edge, evals)
