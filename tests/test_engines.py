@@ -3,6 +3,8 @@ the automatic choice and its refusals, and the batched per-cell path."""
 
 from __future__ import annotations
 
+import itertools
+
 import numpy as np
 import pytest
 from scipy import stats
@@ -140,30 +142,70 @@ def test_binned_rounded_data(rng):
     assert np.abs(values - ref).max() <= 1e-3 * ref.max()
 
 
-def test_binned_streaming_chunks_do_not_change_the_result(rng, monkeypatch):
-    x, w = _sample(rng, 5000, 2, True)
-    mk = get_multivariate_kernel("gaussian", "product", 2)
-    H = _normal_H(x, "gaussian", "product")
-    axes = [np.linspace(-3, 3, 30)] * 2
-    bw = BandwidthMatrix.from_matrix(H)
-    whole, _ = binned.grid_density(axes, x, w, bw, mk)
-    monkeypatch.setattr(binning._bin, "__defaults__", (1777,))
-    pieces, _ = binned.grid_density(axes, x, w, bw, mk)
-    np.testing.assert_allclose(pieces, whole, rtol=1e-10, atol=1e-12 * whole.max())
+def _reference_bin(pieces, origin, delta, lattice, nfft, cells, terms):
+    """Linear binning written out datum by datum (the definition the compiled loop implements)."""
+    d = len(lattice)
+    outs = [np.zeros((cells,) + tuple(nfft)) for _ in range(1 + max(t[2] for t in terms))]
+    dropped = np.zeros(cells)
+    for c, x, w in pieces:
+        for xi, wi in zip(x, w):
+            v = (xi - origin) / delta
+            if not np.all((v >= 0) & (v < np.array(lattice) - 1 + 1.0)):
+                dropped[c] += wi
+                continue
+            k = np.floor(v).astype(int)
+            t = v - k
+            last = k == np.array(lattice) - 1
+            k[last] -= 1
+            t[last] = 1.0
+            u = t * (1 - t)
+            for (kind, coef, j, kk), taps, target, *how in terms:
+                f = {binning.ONE: 1.0, binning.U: u[j], binning.U_SKEW: u[j] * (1 - 2 * t[j]),
+                     binning.U_SQUARED: u[j] ** 2, binning.U_CROSS: u[j] * u[kk], binning.WEIGHT: wi}[kind]
+                if how and how[0] == "nearest":
+                    spots = [(tuple(k + (t >= 0.5)), 1.0)]
+                else:
+                    spots = [(tuple(k + np.array(bits)), np.prod([tj if b else 1 - tj for tj, b in zip(t, bits)]))
+                             for bits in itertools.product((0, 1), repeat=d)]
+                for node, share in spots:
+                    for shifts, tc in (taps or [({}, 1.0)]):
+                        p = np.array(node) - np.array([shifts.get(a + 1, 0) for a in range(d)])
+                        if np.all((p >= 0) & (p < np.array(nfft))):
+                            outs[target][(c,) + tuple(p)] += tc * coef * f * wi * share
+    return outs, dropped
 
 
-def test_binned_term_groups_do_not_change_the_result(rng, monkeypatch):
-    # a tiny BOX_BUDGET makes _bin hold one term's bins at a time (re-reading the rows)
-    x, w = _sample(rng, 3000, 3, True)
-    mk = get_multivariate_kernel("biweight", "product", 3)
-    H = _normal_H(x, "biweight", "product")
-    axes = [np.linspace(-3, 3, 12)] * 3
-    bw = BandwidthMatrix.from_matrix(H)
-    whole, info = binned.grid_density(axes, x, w, bw, mk)
-    monkeypatch.setattr(binning, "BOX_BUDGET", 8)
-    groups, info_groups = binned.grid_density(axes, x, w, bw, mk)
-    np.testing.assert_allclose(groups, whole, rtol=1e-10, atol=1e-12 * whole.max())
-    assert info_groups.refinement == info.refinement
+@pytest.mark.parametrize("d", [1, 2, 3])
+def test_compiled_binning_equals_the_definition(rng, d):
+    # every factor kind, tent and nearest terms, stencils cut at the array's edge, rows on the
+    # last node, outside the lattice and NaN: the compiled loop equals the datum-by-datum sum
+    lattice = [9, 7, 6][:d]
+    nfft = [11, 8, 6][:d]
+    origin = np.full(d, -0.3)
+    delta = np.array([0.4, 0.5, 0.6][:d])
+    pieces = []
+    for c in range(3):
+        x = rng.uniform(-0.5, 4.0, size=(60, d))
+        x[0] = origin + delta * (np.array(lattice) - 1)     # on the last node
+        x[1, 0] = np.nan
+        x[2] = origin                                        # on the first node
+        w = rng.uniform(size=60)
+        pieces.append((c, x, w / w.sum()))
+    terms = [(binning.factor(binning.ONE), None, 0)]
+    for j in range(d):
+        terms.append((binning.factor(binning.U, 0.5, j), binning._taps(j + 1, 2, -1.0), 0))
+        terms.append((binning.factor(binning.U_SKEW, 1 / 6, j), binning._taps(j + 1, 3), 1, "nearest"))
+        terms.append((binning.factor(binning.U_SQUARED, -0.375, j), binning._taps(j + 1, 4), 1, "nearest"))
+    for j, k in itertools.combinations(range(d), 2):
+        terms.append((binning.factor(binning.U_CROSS, -0.25, j, k), binning._cross_taps(j + 1, k + 1, 1.0), 1,
+                      "nearest"))
+    terms.append((binning.factor(binning.WEIGHT), None, 2))
+    outs, dropped = binning._bin(pieces, origin, delta, lattice, nfft, 3, terms)
+    ref, ref_dropped = _reference_bin(pieces, origin, delta, lattice, nfft, 3, terms)
+    for a, b in zip(outs, ref):
+        np.testing.assert_allclose(a, b, rtol=0, atol=1e-15)
+    np.testing.assert_allclose(dropped, ref_dropped, rtol=1e-14)
+    assert np.all(dropped > 0)
 
 
 def test_gaussian_drop_radius_bound():

@@ -254,11 +254,6 @@ def _frequency_table(size: int, d: int) -> _FrequencyTable:
     return table
 
 
-#: rows binned per step: 256 KB temporaries, which the allocator recycles
-#: (larger ones are mapped and page-faulted afresh at every step)
-_CHUNK = 1 << 15
-
-
 def _bin_cells(zs, ws, lo, delta, bins, size):
     """Linear binning of every cell onto its own ``size^d`` grid (``bins`` nodes used
     per axis), and the sums behind the binned self pairs.
@@ -270,48 +265,22 @@ def _bin_cells(zs, ws, lo, delta, bins, size):
     on the others: the autocorrelation of each point's tent weights at an offset
     whose non-zero components are the axes in ``s``.
 
-    Memory-bound: per cell and chunk of rows, the flat index of each point's lower
-    corner is computed once and each corner is one unbuffered ``np.add.at`` into
-    the cell's row of the grid (no C x size^d temporary per corner, as a
-    ``bincount`` over all cells made).
+    One compiled loop over every cell's rows (:mod:`mvkde.engines.compiled`),
+    run without the GIL.
     """
+    from ..engines.compiled import bin_cells_tent
+
     C = len(zs)
     d = lo.shape[1]
-    ntot = size ** d
-    cell_bins = np.broadcast_to(np.asarray(bins, dtype=np.int64), (C,))   # bins may differ per cell
-    grid = np.zeros((C, ntot))
+    grid = np.zeros((C, size ** d))
     self_sums = np.zeros((C, 1 << d))
-    strides = [size ** (d - 1 - j) for j in range(d)]
-    corners = list(itertools.product((0, 1), repeat=d))
-    offsets = [sum(strides[j] for j in range(d) if bits[j]) for bits in corners]
-    for c in range(C):
-        z, w, row = zs[c], ws[c], grid[c]
-        for a in range(0, z.shape[0], _CHUNK):
-            zc, wc = z[a:a + _CHUNK], w[a:a + _CHUNK]
-            base, lower, upper, diag, cross = None, [], [], [], []
-            for j in range(d):
-                u = (zc[:, j] - lo[c, j]) / delta[c, j]
-                i0 = np.clip(np.floor(u).astype(np.int64), 0, int(cell_bins[c]) - 2)
-                f = np.clip(u - i0, 0.0, 1.0)
-                base = i0 * strides[j] if base is None else base + i0 * strides[j]
-                g = 1.0 - f
-                lower.append(g)
-                upper.append(f)
-                fg = f * g
-                cross.append(fg)
-                diag.append(g * g + f * f)
-            for off, bits in zip(offsets, corners):
-                p = upper[0] if bits[0] else lower[0]
-                for j in range(1, d):
-                    p = p * (upper[j] if bits[j] else lower[j])
-                # the grid is padded beyond the bins: base + off stays in the row
-                np.add.at(row[off:], base, wc * p)
-            w2 = wc * wc
-            for pattern, bits in enumerate(corners):
-                p = cross[0] if bits[0] else diag[0]
-                for j in range(1, d):
-                    p = p * (cross[j] if bits[j] else diag[j])
-                self_sums[c, pattern] += float(np.dot(w2, p))
+    cell_bins = np.ascontiguousarray(np.broadcast_to(np.asarray(bins, dtype=np.int64), (C,)))
+    starts = np.concatenate([[0], np.cumsum([z.shape[0] for z in zs])]).astype(np.int64)
+    if starts[-1]:
+        z = np.ascontiguousarray(np.concatenate(zs), dtype=float).reshape(-1, d)
+        w = np.ascontiguousarray(np.concatenate(ws), dtype=float)
+        bin_cells_tent(z, w, starts, np.ascontiguousarray(lo, dtype=float),
+                       np.ascontiguousarray(delta, dtype=float), cell_bins, int(size), grid, self_sums)
     return grid, self_sums
 
 

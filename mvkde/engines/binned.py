@@ -113,11 +113,11 @@ from scipy import fft as sfft
 
 from ..bandwidth.matrix import BandwidthMatrix
 from ..kernels import MultivariateKernel
-from .binning import _bin, _cross_taps, _taps
+from .binning import ONE, U, U_CROSS, U_SKEW, U_SQUARED, WEIGHT, _bin, _cross_taps, _taps, factor
 
 MAX_DIM = 4
 DEFAULT_TOL = 1e-3
-RESOLVE = 1.0            # start: bins at most one conditional kernel standard deviation wide
+RESOLVE = 0.5            # start: bins at most half a conditional kernel standard deviation wide
 ALIAS_FREE = 0.4         # closed-form Gaussian spectrum when bins are at most this wide
 SAFETY = 2.0             # margin on the estimated higher-order error terms
 MAX_LATTICE = 6_000_000  # nodes per cell of the internal lattice (48 MB per array)
@@ -597,25 +597,22 @@ def _convolve(todo, samples, weights, bws, mk, lo, delta, margins, shape, r):
     # binned weights convolved with K equals the weights convolved with the
     # difference of K, so each sum needs one transform.
     correct = kind != "jump"
-    terms = [(None, None, 0)]
+    terms = [(factor(ONE), None, 0)]
     e2_target = 0 if correct else 1
     rest = 1 if correct else 2
     for j in range(d):
-        terms.append((lambda f, w, j=j: 0.5 * f.u(j), _taps(j + 1, 2, -1.0 if correct else 1.0),
-                      e2_target))
+        terms.append((factor(U, 0.5, j), _taps(j + 1, 2, -1.0 if correct else 1.0), e2_target))
     if correct:
         for j in range(d):
-            terms.append((lambda f, w, j=j: f.u(j) * (1.0 - 2.0 * f.t[j]) / 6.0, _taps(j + 1, 3), rest,
-                          "nearest"))
+            terms.append((factor(U_SKEW, 1.0 / 6.0, j), _taps(j + 1, 3), rest, "nearest"))
         # fourth order after the correction: -(3/8) u_j^2 D^4_j - (1/4) u_j u_k D^2_j D^2_k
         for j in range(d):
-            terms.append((lambda f, w, j=j: -0.375 * f.u(j) ** 2, _taps(j + 1, 4), rest, "nearest"))
+            terms.append((factor(U_SQUARED, -0.375, j), _taps(j + 1, 4), rest, "nearest"))
         for j, k in itertools.combinations(range(d), 2):
-            terms.append((lambda f, w, j=j, k=k: -0.25 * f.u(j) * f.u(k), _cross_taps(j + 1, k + 1, 1.0),
-                          rest, "nearest"))
+            terms.append((factor(U_CROSS, -0.25, j, k), _cross_taps(j + 1, k + 1, 1.0), rest, "nearest"))
     weighted = any(weights[c] is not None for c in todo)
     if kind in ("kink", "jump") and weighted:
-        terms.append((lambda f, w: w, None, rest if not correct else rest + 1))
+        terms.append((factor(WEIGHT), None, rest if not correct else rest + 1))
     outs, dropped = _bin(pieces, origin, delta, shape, nfft, cells, terms)
     counts = outs[0]
     sq = outs[-1] if (kind in ("kink", "jump") and weighted) else None
