@@ -345,8 +345,6 @@ class BinnedSums:
         keep = table.order[:nkeep]
         kappa, mult, tent = table.kappa[:nkeep], table.mult[:nkeep], table.tent[:nkeep]
         self._k2 = table.k2[:nkeep]
-        power = spec.reshape(C, -1)[:, keep]
-        power = power.real ** 2 + power.imag ** 2
 
         # -- spectrum of the binned self pairs: sum_i w_i^2 autocorrelation of
         # each point's tent weights, supported on offsets {-1, 0, 1}^d.  Its value
@@ -357,7 +355,6 @@ class BinnedSums:
             for j in range(d):
                 if bits[j]:
                     self_basis[pattern] *= table.two_cos[:nkeep, j]
-        self_spec = self_sums @ self_basis
         self.kappa = kappa
         self.mult = mult
         # off-diagonal spectrum, with the 1/(grid volume) of Parseval folded in
@@ -367,7 +364,11 @@ class BinnedSums:
         # for each of the two points.  Dividing it out removes the O(delta^2)
         # binning bias of every off-diagonal sum (the self pairs were already
         # removed exactly).
-        self.pt = (power - self_spec) * (mult / ntot / tent) / np.prod(delta, axis=1)[:, None]
+        from ..engines.compiled import off_diagonal_power
+
+        self.pt = np.empty((C, nkeep))
+        off_diagonal_power(spec.reshape(C, -1), keep.astype(np.int64), self_sums, self_basis, mult / ntot / tent,
+                           1.0 / np.prod(delta, axis=1), self.pt)
         self.nfreq = nkeep
         self._pairs = [(j, k) for j in range(d) for k in range(j, d)]
         self._mono2 = np.stack([kappa[:, j] * kappa[:, k] for j, k in self._pairs], axis=1)

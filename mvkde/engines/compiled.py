@@ -256,3 +256,22 @@ def bin_cells_tent(z, w, starts, lo, delta, bins, size, grid, self_sums):
                         cross *= (1.0 - f) * (1.0 - f) + f * f
                 grid[c, flat] += cw
                 self_sums[c, corner] += cross
+
+
+@numba.njit(nogil=True, cache=True)
+def off_diagonal_power(spec, keep, self_sums, self_basis, scale, inv_volume, out):
+    """out[c, k] = (|spec[c, keep[k]]|^2 - sum_p self_sums[c, p] self_basis[p, k]) scale[k] inv_volume[c].
+
+    The binned power spectrum of each cell at the kept frequencies, less the
+    spectrum of the self pairs, scaled (see
+    :class:`mvkde.bandwidth.functionals.BinnedSums`): one pass, no (cells x
+    frequencies) temporaries.
+    """
+    npat = self_sums.shape[1]
+    for c in range(spec.shape[0]):
+        for k in range(keep.shape[0]):
+            z = spec[c, keep[k]]
+            own = 0.0
+            for p in range(npat):
+                own += self_sums[c, p] * self_basis[p, k]
+            out[c, k] = (z.real * z.real + z.imag * z.imag - own) * scale[k] * inv_volume[c]
