@@ -118,7 +118,10 @@ from .binning import ONE, U, U_CROSS, U_SKEW, U_SQUARED, WEIGHT, _bin, _cross_ta
 MAX_DIM = 4
 DEFAULT_TOL = 1e-3
 RESOLVE = 0.5            # start: bins at most half a conditional kernel standard deviation wide
-ALIAS_FREE = 0.4         # closed-form Gaussian spectrum when bins are at most this wide
+# closed-form Gaussian spectrum when bins are at most this many conditional sds wide: the
+# aliases it leaves out are below sum_j 2 exp(-pi^2 / (2 * 0.6^2)) = 4.5e-6 x peak in 2-D
+# (1/200 of the default tolerance), and the sampled kernel's own transform is saved
+ALIAS_FREE = 0.6
 SAFETY = 2.0             # margin on the estimated higher-order error terms
 MAX_LATTICE = 6_000_000  # nodes per cell of the internal lattice (48 MB per array)
 MAX_ROUNDS = 4           # refinement rounds before giving up (and saying so)
@@ -271,7 +274,7 @@ def _spectra(bws, mk, nfft, delta, margins, closed_form=False):
 
     ``closed_form``: Gaussian spectrum exp(-w'Hw/2)/prod(D) instead of the
     transform of the sampled kernel (allowed when every bin is at most
-    ALIAS_FREE conditional standard deviations wide: aliasing < 4e-14).
+    ALIAS_FREE conditional standard deviations wide; see there).
     """
     d = len(nfft)
     axes = tuple(range(1, d + 1))
