@@ -281,9 +281,6 @@ def _fit_all(samples, options: dict, errors: list, notes: list) -> list:
         for requests in _groups(todo).values():
             for c, answer in zip(requests, _select_round([todo[c] for c in requests])):
                 advance(c, "throw" if isinstance(answer, BaseException) else "send", answer)
-    if any(est is not None and est.is_directional for est in estimates):
-        notes.append("circular or spherical variables: bandwidths chosen and densities summed with "
-                     "von Mises (-Fisher) kernels cell by cell (not kernel sums the binned engine can batch)")
     return estimates
 
 
@@ -335,7 +332,7 @@ def _select_round(requests) -> list:
 # ---------------------------------------------------------------------------
 
 _PER_CELL_MODELS = {
-    "DirectionalModel": None,  # noted by _fit_all
+    # DirectionalModel: its own per_cell_reason (sphere, transformed linear block)
     "Transformation": "boundary='transform' is evaluated point by point in the transformed space, cell by cell",
     "BetaKernel": "beta kernels are not convolutions: summed directly, cell by cell",
     "GammaKernel": "gamma kernels are not convolutions: summed directly, cell by cell",
@@ -347,7 +344,7 @@ def _model_pieces(model, axes, notes: list):
     pieces = getattr(model, "grid_pieces", None)
     pieces = pieces(axes) if pieces is not None else None
     if pieces is None:
-        why = _PER_CELL_MODELS.get(type(model).__name__)
+        why = getattr(model, "per_cell_reason", None) or _PER_CELL_MODELS.get(type(model).__name__)
         if why:
             notes.append(why)
     return pieces
