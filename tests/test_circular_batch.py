@@ -233,3 +233,8 @@ def test_engine_exact_gives_the_direct_sums(rng):
     est = mvkde.fit(x, **options)
     assert batch.engine == ["exact"] and batch.path == "batched"
     assert _rel(batch.density[0], _direct(est, axes)) < 1e-12
+
+
+def test_a_periodic_axis_coupled_with_a_linear_one_is_refused():
+    with pytest.raises(mvkde.errors.InputError, match="periodic axis 0"):
+        periodic.PeriodicBandwidth.from_matrix(np.array([[4.0, 0.5], [0.5, 1.0]]), [360.0, None])

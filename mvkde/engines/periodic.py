@@ -66,6 +66,7 @@ from scipy import fft as sfft
 from scipy import special
 
 from ..bandwidth.matrix import BandwidthMatrix
+from ..errors import InputError
 from ..kernels import MultivariateKernel, get_multivariate_kernel
 from . import binned as _binned
 from .binning import ONE, U, U_CROSS, U_SKEW, U_SQUARED, _bin, _cross_taps, _taps, factor
@@ -139,6 +140,11 @@ class PeriodicBandwidth:
             return H
         H = np.asarray(H.matrix if isinstance(H, BandwidthMatrix) else H, dtype=float)
         lin = [j for j, p in enumerate(periods) if p is None]
+        for j, p in enumerate(periods):
+            if p is not None and (np.any(np.delete(H[j], j) != 0) or np.any(np.delete(H[:, j], j) != 0)
+                                  or not H[j, j] > 0):
+                raise InputError(f"bandwidth of periodic axis {j}: its row and column must be zero off the "
+                                 "diagonal and its diagonal entry a positive equivalent variance (P/2pi)^2/kappa")
         kappas = tuple(None if p is None else (p / (2.0 * math.pi)) ** 2 / H[j, j] for j, p in enumerate(periods))
         bw = BandwidthMatrix.from_matrix(H[np.ix_(lin, lin)], len(lin)) if lin else None
         return cls(bw, kappas, tuple(periods))
