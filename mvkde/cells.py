@@ -16,9 +16,14 @@ reflection, renormalisation, the linear boundary kernel) hands its grid over
 as kernel-sum pieces that the whole block evaluates in one
 :func:`mvkde.engines.evaluate_grid_many` call (one binning, one batched FFT);
 the other variables on a point mass are a second, (d-1)-dimensional batch.
-Models that are not kernel sums on a regular lattice (von Mises kernels of
-circular variables, the transformation, beta and gamma kernels, masks) are
-evaluated cell by cell, and ``CellBatch.path`` says which and why.
+Circular variables are batched too: their von Mises kernels times the linear
+block's kernel (reflected or not) are kernel sums with periodic axes
+(``DirectionalModel.grid_pieces``), which the binned engine convolves
+circularly along those axes (:mod:`mvkde.engines.periodic`); their
+concentrations are still chosen cell by cell (:func:`mvkde.directional.model.choose`).
+Models that are not kernel sums on a regular lattice (spherical locations,
+the transformation, beta and gamma kernels, masks) are evaluated cell by
+cell, and ``CellBatch.path`` says which and why.
 """
 
 from __future__ import annotations
@@ -182,9 +187,11 @@ def fit_cells(samples, *, axes, names=None, units=None, kernel="gaussian", form=
     data; ``grid_pieces``), all pieces of the block go through one
     :func:`mvkde.engines.evaluate_grid_many` call (one binning and one
     batched FFT), and each cell's pieces are combined as its single estimate
-    combines them.  Models that are not kernel sums on the binned engine
-    (directional kernels, transformation, beta/gamma kernels, masks) are
-    evaluated cell by cell; ``CellBatch.path`` says which and why.
+    combines them; circular variables give pieces with periodic axes (von
+    Mises kernels, circular FFT convolution).  Models that are not kernel
+    sums on the binned engine (spherical locations, transformation,
+    beta/gamma kernels, masks) are evaluated cell by cell; ``CellBatch.path``
+    says which and why.
     """
     products = products or CellProducts()
     axes = [np.asarray(a, dtype=float) for a in axes]
@@ -281,9 +288,6 @@ def _fit_all(samples, options: dict, errors: list, notes: list) -> list:
         for requests in _groups(todo).values():
             for c, answer in zip(requests, _select_round([todo[c] for c in requests])):
                 advance(c, "throw" if isinstance(answer, BaseException) else "send", answer)
-    if any(est is not None and est.is_directional for est in estimates):
-        notes.append("circular or spherical variables: bandwidths chosen and densities summed with "
-                     "von Mises (-Fisher) kernels cell by cell (not kernel sums the binned engine can batch)")
     return estimates
 
 
@@ -335,7 +339,7 @@ def _select_round(requests) -> list:
 # ---------------------------------------------------------------------------
 
 _PER_CELL_MODELS = {
-    "DirectionalModel": None,  # noted by _fit_all
+    # DirectionalModel: its own per_cell_reason (sphere, transformed linear block)
     "Transformation": "boundary='transform' is evaluated point by point in the transformed space, cell by cell",
     "BetaKernel": "beta kernels are not convolutions: summed directly, cell by cell",
     "GammaKernel": "gamma kernels are not convolutions: summed directly, cell by cell",
@@ -347,7 +351,7 @@ def _model_pieces(model, axes, notes: list):
     pieces = getattr(model, "grid_pieces", None)
     pieces = pieces(axes) if pieces is not None else None
     if pieces is None:
-        why = _PER_CELL_MODELS.get(type(model).__name__)
+        why = getattr(model, "per_cell_reason", None) or _PER_CELL_MODELS.get(type(model).__name__)
         if why:
             notes.append(why)
     return pieces

@@ -216,7 +216,7 @@ def fit_steps(data, *, kernel="gaussian", form="product", bandwidth="plugin", pa
         method, result, model = "none", _point_mass.no_bandwidth(d), _point_mass.EmptyModel(d)
     elif spec is not None:
         model, result, method, concentrations, attrs = _directional.fit_model(
-            cont_values, cont_w, names, spec, mk, bandwidth, parametrization, cont_box, boundary)
+            cont_values, cont_w, names, spec, mk, bandwidth, parametrization, cont_box, boundary, engine)
     else:
         method, result, model, note = yield from _fit_linear(cont_values, cont_w, cont_box, mask_spec, names,
                                                              mk, options)

@@ -346,7 +346,9 @@ def evaluate_pieces(axes, models, kernel, engine):
     """Grids of the pieces of many models (see ``_Base.grid_pieces``) in one engine call.
 
     ``models`` is a list (one entry per model) of lists of ``(data, weights,
-    bandwidth)``.  Returns, per model, the list of its pieces' grids (each
+    bandwidth)``; the bandwidth is a BandwidthMatrix, or a
+    :class:`mvkde.engines.periodic.PeriodicBandwidth` for kernel sums with
+    periodic axes (von Mises kernels on circular variables).  Returns, per model, the list of its pieces' grids (each
     A piece may carry its own grid as a fourth entry (a list of axes); pieces
     on the same grid share one engine call.  Values are
     multiplied by the piece's total weight, zeros for a piece without
@@ -377,7 +379,8 @@ def evaluate_pieces(axes, models, kernel, engine):
             if total <= 0 or data.shape[0] == 0:
                 out[m][k] = np.zeros(tuple(len(a) for a in piece_axes))
                 continue
-            key = tuple((float(a[0]), float(a[-1]), len(a)) for a in piece_axes)
+            # pieces with periodic axes (engines.periodic.PeriodicBandwidth) go in calls of their own
+            key = (tuple((float(a[0]), float(a[-1]), len(a)) for a in piece_axes), getattr(bw, "periods", None))
             group = groups.setdefault(key, (piece_axes, []))
             group[1].append((m, k, data, wn, bw, total))
     model_choices = [None] * len(models)

@@ -14,12 +14,20 @@ for P = 360); the spherical factor is per km^2 of the Earth's surface (R the
 mean radius).  Boundary correction acts on the linear block only (the
 directional factors have no boundary): reflection, transformation or none.
 
-Evaluation is by chunked direct sums: ``(m_chunk, n)`` matrices of the log
-directional kernels and of the linear kernel (through
-:func:`mvkde.engines.exact.kernel_matrix` on whitened coordinates).  On a grid
-the estimate factorises as ``D diag(w) B'``, D the directional kernels at the
-directional nodes and B the linear kernels at the linear nodes, so a grid is
-one matrix product per pair of chunks.
+At points, evaluation is by chunked direct sums: ``(m_chunk, n)`` matrices
+of the log directional kernels and of the linear kernel (through
+:func:`mvkde.engines.exact.kernel_matrix` on whitened coordinates).  On a grid,
+circular variables with a linear block corrected by ``"none"`` or
+``"reflect"`` are kernel sums with periodic axes: ``DirectionalModel.grid_pieces``
+(:mod:`mvkde.directional.pieces`) hands them to the engines like the boundary
+methods do, and :mod:`mvkde.engines.periodic` evaluates them by binned FFT
+convolution (circular along the periodic axes, error held below 1e-3 x peak)
+or by exact sums (``engine="exact"``, small problems), so ``fit`` and the batch
+door (:func:`mvkde.cells.fit_cells`) share the numbers.  A spherical location
+or a transformed linear block stays on the direct grid sums
+(``DirectionalModel.direct_grid``): the estimate factorises as
+``D diag(w) B'``, D the directional kernels at the directional nodes and B the
+linear kernels at the linear nodes, one matrix product per pair of chunks.
 
 Long because the choice of the smoothing, the model (evaluation, grids and
 sampling over both blocks) and its fit live together, each public function
@@ -48,12 +56,13 @@ from scipy import special
 from . import cv as _cv
 from . import fast_cv as _fast_cv
 from . import kernels as _dir
+from . import pieces as _pieces
 from . import selectors as _sel
 from .spec import DirectionalSpec
 from ..bandwidth import SELECTORS, BandwidthMatrix, BandwidthResult, kernel_rescaling, select
 from ..boundary import BOUNDARY_METHODS, check_method, has_bounds
-from ..boundary.methods import axis_reach, fold_into_box, forward_transform, inverse_transform
-from ..engines import EngineChoice
+from ..boundary.methods import axis_reach, evaluate_pieces, fold_into_box, forward_transform, inverse_transform
+from ..engines import EngineChoice, validate_engine
 from ..engines.exact import CHUNK_ELEMENTS, kernel_matrix
 from ..errors import InputError, check_choice
 from ..kernels import get_multivariate_kernel
@@ -350,10 +359,12 @@ class DirectionalModel:
     method : {'none', 'reflect', 'transform'}
         Boundary method of the linear block.
     names : list of str
+    engine : {'auto', 'exact', 'binned', 'tree'}
+        Grid engine of :meth:`grid` (points are always summed directly).
     """
 
     def __init__(self, data, weights, spec: DirectionalSpec, sm: Smoothing, kernel_name, form, box, method,
-                 names):
+                 names, engine="auto"):
         self.data = data
         n = data.shape[0]
         self.n = n
@@ -364,6 +375,8 @@ class DirectionalModel:
         self.box = box
         self.name = method
         self.names = names
+        self.engine = validate_engine(engine)
+        self.kernel = get_multivariate_kernel(kernel_name, form, len(spec.periods))
         self.theta = _angles(data, spec)
         self.cos_t, self.sin_t = np.cos(self.theta), np.sin(self.theta)
         self.kap = np.array([sm.kappas[j] for j in spec.circular])
@@ -389,9 +402,8 @@ class DirectionalModel:
             kinds.append("von Mises-Fisher (sphere: " + ", ".join(names[j] for j in spec.sphere) + ")")
         if self.q:
             kinds.append(f"{form} {kernel_name} (linear: " + ", ".join(names[j] for j in lin) + ")")
-        self.choice = EngineChoice(
-            "exact", "direct sums of the product kernel " + " x ".join(kinds)
-            + "; directional axes are periodic, which the binned engines do not handle")
+        self.choice = EngineChoice("exact", "direct sums of the product kernel " + " x ".join(kinds))
+        self.per_cell_reason = _pieces.per_cell_reason(self)
         self.attrs = {"boundary_sampling": self._sample_note(), "directional_kernel": " x ".join(kinds)}
         if method == "reflect":
             self.attrs["reflected_copies"] = int(sum(g[1].shape[0] for g in self.groups) - n)
@@ -536,8 +548,43 @@ class DirectionalModel:
             out[~inside] = -np.inf if log else 0.0
         return out, self.choice
 
+    def grid_pieces(self, axes):
+        """The grid as kernel sums with periodic axes, or None (see :mod:`mvkde.directional.pieces`).
+
+        Parameters
+        ----------
+        axes : list of ndarray
+
+        Returns
+        -------
+        tuple or None
+            ``(pieces, combine)`` as ``mvkde.boundary.methods._Base.grid_pieces``; None for a
+            spherical location or a transformed linear block (``per_cell_reason`` says so).
+        """
+        return _pieces.grid_pieces(self, axes)
+
     def grid(self, axes):
-        """Density on the grid ``axes``: one matrix product D diag(w) B' per pair of chunks.
+        """Density on the grid ``axes``: through :meth:`grid_pieces` and the engines when it offers
+        pieces (as the batch door evaluates it), else :meth:`direct_grid`.
+
+        Parameters
+        ----------
+        axes : list of ndarray
+
+        Returns
+        -------
+        values : ndarray
+            Shape (len(axes[0]), ..., len(axes[-1])).
+        choice : mvkde.engines.EngineChoice
+        """
+        pieces = self.grid_pieces(axes)
+        if pieces is None:
+            return self.direct_grid(axes)
+        (values,), (choice,) = evaluate_pieces(axes, [pieces[0]], self.kernel, self.engine)
+        return pieces[1](values), choice or self.choice
+
+    def direct_grid(self, axes):
+        """Density on the grid ``axes`` by exact sums: one matrix product D diag(w) B' per pair of chunks.
 
         Parameters
         ----------
@@ -674,7 +721,8 @@ def _fold(y, box):
 # fit
 # ---------------------------------------------------------------------------
 
-def fit_model(values, w, names, spec: DirectionalSpec, mk, bandwidth, parametrization, box, boundary):
+def fit_model(values, w, names, spec: DirectionalSpec, mk, bandwidth, parametrization, box, boundary,
+              engine="auto"):
     """The directional smoothing and model of :func:`mvkde.fit` (data already wrapped and checked).
 
     Parameters
@@ -690,6 +738,8 @@ def fit_model(values, w, names, spec: DirectionalSpec, mk, bandwidth, parametriz
     parametrization : str
     box : list of (float, float)
     boundary : str or None
+    engine : str
+        Grid engine of the model.
 
     Returns
     -------
@@ -727,7 +777,7 @@ def fit_model(values, w, names, spec: DirectionalSpec, mk, bandwidth, parametriz
                              converged=sm.converged and (sm.lin is None or sm.lin.converged),
                              at_edge=sm.at_edge or (sm.lin is not None and sm.lin.at_edge),
                              warnings=[] if sm.lin is None else list(sm.lin.warnings), details=details)
-    model = DirectionalModel(values, w, spec, sm, mk.name, mk.form, box, method, names)
+    model = DirectionalModel(values, w, spec, sm, mk.name, mk.form, box, method, names, engine)
     conc = {names[j]: float(k) for j, k in sm.kappas.items()}
     if spec.sphere is not None:
         for j in spec.sphere:

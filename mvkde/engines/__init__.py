@@ -39,7 +39,7 @@ import numpy as np
 from ..bandwidth.matrix import BandwidthMatrix
 from ..errors import InputError, MvkdeWarning, check_choice
 from ..kernels import MultivariateKernel, unit_ball_volume
-from . import binned, exact, tree
+from . import binned, exact, periodic, tree
 
 ENGINES = ("auto", "exact", "binned", "tree")
 
@@ -51,7 +51,7 @@ FALLBACK_LIMIT = 500_000_000
 TREE_FRACTION = 0.2
 
 __all__ = ["ENGINES", "EngineChoice", "choose", "evaluate_grid", "evaluate_grid_many",
-           "evaluate_points", "exact", "binned", "tree", "validate_engine"]
+           "evaluate_points", "exact", "binned", "periodic", "tree", "validate_engine"]
 
 
 @dataclass(frozen=True)
@@ -299,7 +299,7 @@ def evaluate_grid(axes, data, weights, bw, kernel, engine="auto", *, tol=None):
     return values[0], choices[0]
 
 
-def evaluate_grid_many(axes, samples, weights, bws, kernel, engine="auto", *, tol=None):
+def evaluate_grid_many(axes, samples, weights, bws, kernel, engine="auto", *, tol=None, periods=None):
     """Densities of many cells on one shared grid.
 
     Parameters
@@ -313,6 +313,10 @@ def evaluate_grid_many(axes, samples, weights, bws, kernel, engine="auto", *, to
     tol : float, optional
         Binned engine's target max binning error relative to each cell's
         peak (default 1e-3).
+    periods : list of (float or None), optional
+        Per axis: the period of a circular axis (von Mises kernel; its diagonal entry in H is the
+        equivalent variance (P / 2 pi)^2 / kappa), None for a linear axis.  A
+        :class:`periodic.PeriodicBandwidth` per cell carries the periods itself.
 
     Returns
     -------
@@ -329,22 +333,15 @@ def evaluate_grid_many(axes, samples, weights, bws, kernel, engine="auto", *, to
     recomputed with direct sums; under ``engine="binned"`` it is kept and an
     MvkdeWarning says by how much the estimate exceeds the tolerance.
     """
-    axes = [np.asarray(a, dtype=float) for a in axes]
+    axes, samples, weights = _checked_cells(axes, samples, weights, bws)
     d = len(axes)
     cells = len(samples)
-    samples = [np.asarray(x, dtype=float) for x in samples]
-    if weights is None:
-        weights = [None] * cells
-    if len(weights) != cells or len(bws) != cells:
-        raise InputError(f"evaluate_grid_many: {cells} samples but {len(weights)} weights and "
-                         f"{len(bws)} bandwidths; give one of each per cell")
-    for c, x in enumerate(samples):
-        if x.ndim != 2 or x.shape[1] != d:
-            raise InputError(f"sample of cell {c} has shape {x.shape}; expected (n, {d}) for a "
-                             f"{d}-dimensional grid")
-    weights = [None if w is None else np.asarray(w, dtype=float) / np.sum(w) for w in weights]
-    bws = [_as_bw(b, d) for b in bws]
     tol = binned.DEFAULT_TOL if tol is None else float(tol)
+    if periods is not None and any(p is not None for p in periods):
+        bws = [periodic.PeriodicBandwidth.from_matrix(b, periods) for b in bws]
+    if bws and isinstance(bws[0], periodic.PeriodicBandwidth):
+        return _periodic_grid_many(axes, samples, weights, bws, kernel, validate_engine(engine), tol)
+    bws = [_as_bw(b, d) for b in bws]
     shape = tuple(len(a) for a in axes)
     m = math.prod(shape)
     regular = binned.regular_spacing(axes) is not None
@@ -398,8 +395,82 @@ def evaluate_grid_many(axes, samples, weights, bws, kernel, engine="auto", *, to
     return values, choices
 
 
+def _checked_cells(axes, samples, weights, bws):
+    """Axes, samples and normalised weights of evaluate_grid_many, checked."""
+    axes = [np.asarray(a, dtype=float) for a in axes]
+    d = len(axes)
+    cells = len(samples)
+    samples = [np.asarray(x, dtype=float) for x in samples]
+    if weights is None:
+        weights = [None] * cells
+    if len(weights) != cells or len(bws) != cells:
+        raise InputError(f"evaluate_grid_many: {cells} samples but {len(weights)} weights and "
+                         f"{len(bws)} bandwidths; give one of each per cell")
+    for c, x in enumerate(samples):
+        if x.ndim != 2 or x.shape[1] != d:
+            raise InputError(f"sample of cell {c} has shape {x.shape}; expected (n, {d}) for a "
+                             f"{d}-dimensional grid")
+    return axes, samples, [None if w is None else np.asarray(w, dtype=float) / np.sum(w) for w in weights]
+
+
 def _direct_grid(engine, axes, data, weights, bw, kernel, shape):
     pts = _mesh_points(axes)
     if engine == "tree":
         return tree.density(pts, data, weights, bw, kernel).reshape(shape)
     return exact.density(pts, data, weights, bw, kernel).reshape(shape)
+
+
+def _periodic_grid_many(axes, samples, weights, pbws, kernel, engine, tol):
+    """evaluate_grid_many for product kernels with periodic axes (:mod:`periodic`).
+
+    ``auto``: binned when n x m is above DIRECT_LIMIT and the grid and kernel allow it
+    (:func:`periodic.binnable`), else exact sums; ``binned``: binned when allowed, else exact
+    sums and the reason; ``tree``: exact sums (the tree does not wrap).  Under ``auto`` a cell
+    whose binned error estimate stays above ``tol`` gets exact sums when they cost at most
+    FALLBACK_LIMIT terms, as in :func:`evaluate_grid_many`.
+    """
+    shape = tuple(len(a) for a in axes)
+    m = math.prod(shape)
+    values = np.empty((len(samples),) + shape)
+    choices: list = [None] * len(samples)
+    why_not = periodic.binnable(axes, pbws[0], kernel)
+    batch = []
+    for c, x in enumerate(samples):
+        n = x.shape[0]
+        if engine in ("auto", "binned") and not why_not and (engine == "binned" or n * m > DIRECT_LIMIT):
+            how = "requested by the caller" if engine == "binned" else (
+                f"regular grid of {m} nodes, n={n} data: binned FFT convolution (von Mises kernels, "
+                f"periodic on the circular axes) costs far less than {n * m:.3g} direct kernel terms")
+            batch.append((c, EngineChoice("binned", how)))
+            continue
+        if engine == "exact":
+            why = "requested by the caller"
+        elif engine in ("auto", "binned") and why_not:
+            why = f"direct sums: {why_not}"
+        elif engine == "tree":
+            why = "direct sums: the tree engine does not handle periodic axes"
+        else:
+            why = f"direct sums: n x m = {n * m} kernel terms is small"
+        choices[c] = EngineChoice("exact", f"{why} (von Mises kernels on the circular axes)")
+        values[c] = periodic.direct_grid(axes, x, weights[c], pbws[c], kernel)
+    if batch:
+        idx = [c for c, _ in batch]
+        limit = binned.MAX_LATTICE
+        if engine == "auto":
+            limit = int(min(limit, max(1 << 16, min(samples[c].shape[0] for c in idx) * m // 5)))
+        vals, infos = periodic.grid_density_many(axes, [samples[c] for c in idx], [weights[c] for c in idx],
+                                                 [pbws[c] for c in idx], kernel, tol, max_lattice=limit)
+        for (c, choice), v, info in zip(batch, vals, infos):
+            if not info.met and engine == "auto" and samples[c].shape[0] * m <= FALLBACK_LIMIT:
+                choices[c] = EngineChoice("exact", f"binned error estimate {info.error_estimate:.2g} x peak "
+                                                   f"stayed above the tolerance {tol:g}: exact sums of the "
+                                                   "von Mises product kernel instead")
+                values[c] = periodic.direct_grid(axes, samples[c], weights[c], pbws[c], kernel)
+                continue
+            if not info.met:
+                warnings.warn(f"binned engine: estimated binning error {info.error_estimate:.2g} x peak "
+                              f"exceeds the tolerance {tol:g} (lattice size limit reached); use "
+                              "engine='exact' for an exact grid, or a coarser tolerance", MvkdeWarning, stacklevel=3)
+            values[c] = v
+            choices[c] = _binned_choice(choice, info)
+    return values, choices
