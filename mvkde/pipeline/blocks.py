@@ -15,7 +15,6 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..cells import CellProducts, fit_cells
-from ..compare_cells import compare_pairs_cells
 from ..errors import ConfigError, InputError, MvkdeError
 from ..estimator import fit
 from ..products.grid import node_weights
@@ -473,6 +472,8 @@ def _compare_block(result: BlockResult, samples, where, errors, settings: CellSe
         arrays["point_mass_probability_change"] = np.full((ncell, S), np.nan)
     if not places:
         return
+    from ..compare_cells import compare_pairs_cells  # here: scipy.stats and friends, about 0.2 s to import
+
     kw = settings.fit_kwargs()
     bandwidth = kw.pop("bandwidth")
     given = None if isinstance(bandwidth, str) else np.repeat(np.asarray(bandwidth, float)[None], len(places), 0)
