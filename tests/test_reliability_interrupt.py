@@ -42,13 +42,15 @@ def slow_block(*args, **kwargs):
     return inner(*args, **kwargs)
 g.process_block = slow_block
 if os.environ.get("MVKDE_TEST_HOLD_AFTER_WRITE"):
-    write = xr.Dataset.to_netcdf
-    def held(self, *args, **kwargs):
-        out = write(self, *args, **kwargs)
+    # the netCDF writer behind write_netcdf_atomic (xarray's to_netcdf, or its netCDF4 store directly)
+    import mvkde.pipeline.output as o
+    write = o._to_netcdf
+    def held(*args, **kwargs):
+        out = write(*args, **kwargs)
         print("TEMPORARY OUTPUT COMPLETE", file=sys.stderr, flush=True)
         time.sleep(600)
         return out
-    xr.Dataset.to_netcdf = held
+    o._to_netcdf = held
 from mvkde.cli import main
 sys.exit(main(sys.argv[1:]))
 """

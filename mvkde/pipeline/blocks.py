@@ -15,7 +15,6 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..cells import CellProducts, fit_cells
-from ..compare_cells import compare_pairs_cells
 from ..errors import ConfigError, InputError, MvkdeError
 from ..estimator import fit
 from ..products.grid import node_weights
@@ -316,29 +315,43 @@ class BlockResult:
     paths: set = field(default_factory=set)
 
 
-def _cell_samples(vals, codes, c, S, settings, first_cell, arrays, members=None):
-    """The usable samples of cell ``c`` per split, with counts and flags filled in.
+def _block_samples(vals, codes, S, settings, first_cell, arrays, members=None):
+    """The usable samples of every cell of the block per split, with counts and flags filled in.
 
+    Yields ``(cell, split, samples)``, cell by cell and the splits of a cell in order.
     Split ``s`` is label combination ``s // n_season`` and season ``s % n_season``; ``members``
     (label combinations, cells, samples) says which samples carry each label (a sample in two
-    overlapping windows is in both).
+    overlapping windows is in both).  The missing values and the usable samples are counted
+    for the whole block at once; a cell whose samples are all usable is copied whole.
     """
-    finite = np.isfinite(vals[c]).all(axis=1)
-    for s in range(S):
+    ncell, n = vals.shape[:2]
+    finite = np.isfinite(vals[..., 0])
+    for j in range(1, vals.shape[2]):
+        finite &= np.isfinite(vals[..., j])
+
+    def member_of(s, c=slice(None)):
         member = codes[c] == (s % settings.n_season)
         if members is not None:
             member = member & members[s // settings.n_season, c]
-        x = vals[c][member & finite]
-        arrays["n_missing"][c, s] = int((member & ~finite).sum())
-        if settings.max_samples is not None and len(x) > settings.max_samples:
-            rng = np.random.default_rng([settings.seed, first_cell + c, s])
-            x = x[np.sort(rng.choice(len(x), settings.max_samples, replace=False))]
-            arrays["flags"][c, s] |= FLAGS["subsampled"]
-        arrays["n_samples"][c, s] = len(x)
-        if len(x) < settings.min_samples:
-            arrays["flags"][c, s] |= FLAGS["too_few_samples"]
-            continue
-        yield s, x
+        return member
+
+    usable = np.empty((ncell, S), dtype=np.int64)
+    for s in range(S):
+        member = member_of(s)
+        arrays["n_missing"][:, s] = (member & ~finite).sum(axis=1)
+        usable[:, s] = (member & finite).sum(axis=1)
+    for c in range(ncell):
+        for s in range(S):
+            x = vals[c].copy() if usable[c, s] == n else vals[c][member_of(s, c) & finite[c]]
+            if settings.max_samples is not None and len(x) > settings.max_samples:
+                rng = np.random.default_rng([settings.seed, first_cell + c, s])
+                x = x[np.sort(rng.choice(len(x), settings.max_samples, replace=False))]
+                arrays["flags"][c, s] |= FLAGS["subsampled"]
+            arrays["n_samples"][c, s] = len(x)
+            if len(x) < settings.min_samples:
+                arrays["flags"][c, s] |= FLAGS["too_few_samples"]
+                continue
+            yield c, s, x
 
 
 def _empty_arrays(ncell: int, S: int, settings: CellSettings) -> dict:
@@ -409,10 +422,9 @@ def process_block(values, codes, first_cell: int, tile_shape: tuple, settings: C
         members = np.stack([np.broadcast_to(m, values.shape[:-1]).reshape(ncell, -1) for m in members])
     arrays = _empty_arrays(ncell, S, settings)
     todo, where = [], []
-    for c in range(ncell):
-        for s, x in _cell_samples(vals, codes, c, S, settings, first_cell, arrays, members):
-            todo.append(x)
-            where.append((c, s))
+    for c, s, x in _block_samples(vals, codes, S, settings, first_cell, arrays, members):
+        todo.append(x)
+        where.append((c, s))
 
     batch = fit_cells(todo, axes=settings.axes, products=settings.products,
                       keys=[(first_cell + c, s) for c, s in where], **settings.fit_kwargs())
@@ -460,6 +472,8 @@ def _compare_block(result: BlockResult, samples, where, errors, settings: CellSe
         arrays["point_mass_probability_change"] = np.full((ncell, S), np.nan)
     if not places:
         return
+    from ..compare_cells import compare_pairs_cells  # here: scipy.stats and friends, about 0.2 s to import
+
     kw = settings.fit_kwargs()
     bandwidth = kw.pop("bandwidth")
     given = None if isinstance(bandwidth, str) else np.repeat(np.asarray(bandwidth, float)[None], len(places), 0)
@@ -512,6 +526,7 @@ def _store_batch(result: BlockResult, batch, where, settings: CellSettings, firs
     other = [k for k in range(d) if k != j]
     other_weights = node_weights([settings.axes[k] for k in other]) if (j is not None and d > 1) else None
     ncell, S = arrays["flags"].shape
+    spacings = _linear_spacings(settings)
     for k, (c, s) in enumerate(where):
         for name, value in batch.products.items():
             if name not in arrays:
@@ -530,7 +545,7 @@ def _store_batch(result: BlockResult, batch, where, settings: CellSettings, firs
             arrays["flags"][c, s] |= FLAGS["bandwidth_not_converged"]
         if batch.at_edge[k]:
             arrays["flags"][c, s] |= FLAGS["bandwidth_at_edge"]
-        if _too_coarse(batch.H[k], settings):
+        if _too_coarse(batch.H[k], spacings):
             arrays["flags"][c, s] |= FLAGS["grid_too_coarse_for_the_bandwidth"]
         mass = float(np.sum(batch.density[k] * weights))
         if j is not None:
@@ -546,14 +561,21 @@ def _store_batch(result: BlockResult, batch, where, settings: CellSettings, firs
             arrays["flags"][c, s] |= FLAGS["grid_mass_off_by_more_than_1_percent"]
 
 
-def _too_coarse(H, settings: CellSettings) -> bool:
-    """True when the node spacing of a linear variable exceeds ``COARSE_SPACING`` kernel standard deviations."""
+def _linear_spacings(settings: CellSettings) -> list:
+    """(index, node spacing) of every linear (not circular, not spherical) variable with two nodes or more."""
     directional = set(settings.sphere or ()) | {v for v, p in zip(settings.names, settings.periods or ())
                                                 if p is not None}
-    for j, (name, axis) in enumerate(zip(settings.names, settings.axes)):
-        if name in directional or len(axis) < 2 or not np.isfinite(H[j, j]):
-            continue
-        if axis[1] - axis[0] > COARSE_SPACING * np.sqrt(H[j, j]):
+    return [(j, axis[1] - axis[0]) for j, (name, axis) in enumerate(zip(settings.names, settings.axes))
+            if name not in directional and len(axis) >= 2]
+
+
+def _too_coarse(H, spacings) -> bool:
+    """True when the node spacing of a linear variable exceeds ``COARSE_SPACING`` kernel standard deviations.
+
+    ``spacings`` is :func:`_linear_spacings` of the run's settings.
+    """
+    for j, spacing in spacings:
+        if np.isfinite(H[j, j]) and spacing > COARSE_SPACING * np.sqrt(H[j, j]):
             return True
     return False
 

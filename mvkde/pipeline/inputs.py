@@ -352,12 +352,12 @@ def plan_from_dataset(wf: Workflow, ds: xr.Dataset, *, files=(), origin: str = "
     # chunk so that one block reads exactly its own hyperslab, all samples at once
     chunks = {d: t for d, t in zip(cell_dims, tile)}
     chunks.update({d: -1 for d in sample_dims})
-    with warnings.catch_warnings():
+    with warnings.catch_warnings(), _io.rechunk_by_tasks():
         # blocks of whole cell columns cut across a file chunked along time: intended
         warnings.filterwarnings("ignore", message=".*separate the stored chunks.*")
         ds = ds.chunk(chunks)
-    arr = ds.to_dataarray("variable").transpose(*cell_dims, *sample_dims, "variable")
-    arr = arr.chunk({"variable": -1})
+        arr = ds.to_dataarray("variable").transpose(*cell_dims, *sample_dims, "variable")
+        arr = arr.chunk({"variable": -1})
 
     if tname in sample_dims and inp["split_by"]:
         months = _months_of(ds[tname].values)

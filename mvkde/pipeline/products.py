@@ -21,7 +21,6 @@ from __future__ import annotations
 import numpy as np
 import xarray as xr
 
-from ..comparison import COMPARE_CAUTION
 from ..products import grid as _grid
 from ..products import speed_class_edges
 from ..products.return_periods import RETURN_PERIOD_CAUTION
@@ -358,6 +357,8 @@ def add_comparison(ds: xr.Dataset, plan, settings, results: dict, squeeze, lead:
     lead : list of str
         The cell dims then the split dims.
     """
+    from ..comparison import COMPARE_CAUTION  # here: the comparison imports scipy.stats (about 0.2 s)
+
     cmp_ = settings.compare
     names = list(settings.names)
     dim = plan.label_dims[cmp_.axis]

@@ -59,7 +59,42 @@ def describe_inputs(files) -> list[dict]:
     return out
 
 
-def record(workflow, files, *, command_line=None, extra=None, now=None) -> dict:
+class InputsInBackground:
+    """:func:`describe_inputs` computed in a daemon thread (hashlib and file reads release the GIL).
+
+    A run starts it before its blocks and takes :meth:`result` when writing,
+    so the inputs are hashed while the cells are computed.
+    """
+
+    def __init__(self, files):
+        import threading
+
+        self._files = list(files)
+        self._out = None
+        self._error = None
+        self._thread = threading.Thread(target=self._work, name="mvkde-hash-inputs", daemon=True)
+        self._thread.start()
+
+    def _work(self):
+        try:
+            self._out = describe_inputs(self._files)
+        except BaseException as exc:  # re-raised in the caller's thread by result()
+            self._error = exc
+
+    def result(self) -> list[dict]:
+        """The :func:`describe_inputs` list, once the thread is done.
+
+        Returns
+        -------
+        list of dict
+        """
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        return self._out
+
+
+def record(workflow, files, *, command_line=None, extra=None, now=None, inputs=None) -> dict:
     """The provenance dict of a run of ``workflow`` over ``files``.
 
     Parameters
@@ -74,6 +109,8 @@ def record(workflow, files, *, command_line=None, extra=None, now=None) -> dict:
         More entries, added last.
     now : datetime.datetime, optional
         The creation time (UTC); the current time when None.
+    inputs : list of dict, optional
+        :func:`describe_inputs` of ``files`` when already computed (:class:`InputsInBackground`).
 
     Returns
     -------
@@ -94,7 +131,7 @@ def record(workflow, files, *, command_line=None, extra=None, now=None) -> dict:
         "overrides": list(workflow.overrides),
         "workflow": workflow.to_json(),
         "seed": workflow["estimator"]["seed"],
-        "inputs": describe_inputs(files),
+        "inputs": describe_inputs(files) if inputs is None else inputs,
     }
     if extra:
         rec.update(extra)

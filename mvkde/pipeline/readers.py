@@ -283,3 +283,22 @@ def read_points(path, names, source=None) -> "np.ndarray":
     if not np.all(np.isfinite(pts)) or len(pts) == 0:
         raise InputError(f"{where}products.points: {p} needs at least one row and finite numbers only")
     return pts
+
+
+def rechunk_by_tasks():
+    """A context in which dask rechunks by its "tasks" method, without importing dask.distributed.
+
+    Left to choose, dask imports dask.distributed (about 0.3 s) to ask whether
+    a client is running, and picks "p2p" only when one is; with distributed
+    not imported no client can be running, so the choice is "tasks" and is
+    set here directly.  With distributed imported, or a method configured,
+    dask chooses as usual.
+    """
+    import contextlib
+    import sys
+
+    import dask
+
+    if "distributed" in sys.modules or dask.config.get("array.rechunk.method", None):
+        return contextlib.nullcontext()
+    return dask.config.set({"array.rechunk.method": "tasks"})

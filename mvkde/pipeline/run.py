@@ -284,8 +284,9 @@ def run_and_write(path, overrides=(), *, overwrite=False, command_line=None, out
         except ImportError:
             raise ConfigError(f"{wf.source}: output.resume = true needs the zarr package: "
                               "pip install 'mvkde[zarr]' (or set output.resume = false)") from None
+    hashing = _prov.InputsInBackground(plan.files)  # the inputs' SHA-256, while the cells are computed
     ds, plan, settings, summary = run(wf, progress_stream=progress_stream, plan=plan, store_path=store_path)
-    rec = _prov.record(wf, plan.files, command_line=command_line, extra={
+    rec = _prov.record(wf, plan.files, command_line=command_line, inputs=hashing.result(), extra={
         "scheduler": summary["scheduler"], "engines": summary["engines"], "batch": summary["paths"],
         "grid_limits": {v: [float(a[0]), float(a[-1])] for v, a in zip(plan.names, settings.axes)}})
     ds.attrs.update(global_attributes(wf, settings, plan.names, rec))

@@ -141,10 +141,21 @@ class Scheduler:
 
         if self.client is not None:
             return self.client.compute(list(collections), sync=True)
-        kw = {"scheduler": self.name}
+        return dask.compute(*collections, **self._local_kwargs())
+
+    def _local_kwargs(self) -> dict:
+        """``dask.compute`` keywords of an embedded scheduler: its get function, and the worker count.
+
+        The get function itself, not its name: given a name, dask imports
+        dask.distributed (about 0.3 s) to look for a running client, and then
+        uses the same embedded scheduler anyway.
+        """
+        from dask.base import named_schedulers
+
+        kw = {"scheduler": named_schedulers.get(self.name, self.name)}
         if self.workers and self.name != "synchronous":
             kw["num_workers"] = self.workers
-        return dask.compute(*collections, **kw)
+        return kw
 
     def run_blocks(self, tasks: list, on_result) -> None:
         """Compute delayed ``tasks``; call ``on_result(index, result)`` as each one finishes.
@@ -188,18 +199,16 @@ class Scheduler:
                 if key in keys:
                     on_result(keys[key], result)
 
-        kw = {"scheduler": self.name}
-        if self.workers and self.name != "synchronous":
-            kw["num_workers"] = self.workers
         with _Done():
-            dask.compute(*tasks, **kw)
+            dask.compute(*tasks, **self._local_kwargs())
 
 
 # ---------------------------------------------------------------------------
 # the blocks of a run
 # ---------------------------------------------------------------------------
 
-def block_tasks(plan: Plan, settings: CellSettings, skip=(), token: str | None = None) -> list:
+def block_tasks(plan: Plan, settings: CellSettings, skip=(), token: str | None = None, *,
+                local: bool = False) -> list:
     """One delayed :func:`process_block` per block of cells (except the blocks in ``skip``).
 
     ``mvkde run`` gathers them with :func:`execute`; :func:`mvkde.densities`
@@ -213,6 +222,10 @@ def block_tasks(plan: Plan, settings: CellSettings, skip=(), token: str | None =
     skip : collection of int, optional
         Block indices left out.
     token : str, optional
+    local : bool, optional
+        The tasks run on an embedded (threads, processes, synchronous) scheduler: a block
+        that is exactly one chunk of the input is handed to its task as that chunk's delayed
+        value (see :func:`_chunks_as_delayed`).
 
     Returns
     -------
@@ -227,10 +240,12 @@ def block_tasks(plan: Plan, settings: CellSettings, skip=(), token: str | None =
     tasks = []
     data = plan.values.data
     nd = len(plan.cell_dims)
-    for b, tile in enumerate(plan.tiles()):
+    tiles = list(plan.tiles())
+    chunks = _chunks_as_delayed(data, tiles, nd) if local else None
+    for b, tile in enumerate(tiles):
         if b in skip:
             continue
-        block = data[tile] if tile else data
+        block = chunks[b] if chunks is not None else data[tile] if tile else data
         codes, members = plan.codes, plan.members
         if nd:
             # codes (and label members) carry the cell dims only for tables (one row layout per group)
@@ -243,6 +258,32 @@ def block_tasks(plan: Plan, settings: CellSettings, skip=(), token: str | None =
         tasks.append(dask.delayed(process_block, pure=True)(
             block, codes, first, tile_shape, settings, members, dask_key_name=f"mvkde-block-{b}-{token}"))
     return tasks
+
+
+def _chunks_as_delayed(data, tiles, nd: int):
+    """One delayed chunk of ``data`` per tile, when every tile is exactly one chunk; else None.
+
+    A dask array handed to ``dask.delayed`` is wrapped so that its keys are not
+    reused across computations, and building that wrapper imports
+    dask.distributed (about 0.3 s) even on an embedded scheduler; the chunks'
+    own delayed values (``Array.to_delayed``) carry the same data without it.
+    """
+    import dask.array as da
+
+    if not isinstance(data, da.Array) or any(len(c) != 1 for c in data.chunks[nd:]):
+        return None
+    edges = [np.cumsum((0,) + tuple(c)) for c in data.chunks[:nd]]
+    index = []
+    for tile in tiles:
+        where = []
+        for k, t in enumerate(tile):
+            i = int(np.searchsorted(edges[k], t.start))
+            if i + 1 >= len(edges[k]) or edges[k][i] != t.start or edges[k][i + 1] != t.stop:
+                return None
+            where.append(i)
+        index.append(tuple(where) + (0,) * (data.ndim - nd))
+    delayed = data.to_delayed()
+    return [delayed[i] for i in index]
 
 
 def _first_cell(tile, shape) -> int:
@@ -304,6 +345,6 @@ def execute(plan: Plan, settings: CellSettings, scheduler: Scheduler, progress: 
         assemble(i, res)
 
     if todo:
-        scheduler.run_blocks(block_tasks(plan, settings, skip=done), on_result)
+        scheduler.run_blocks(block_tasks(plan, settings, skip=done, local=scheduler.client is None), on_result)
     return {"arrays": arrays, "failures": sorted(failures), "engines": sorted(engines), "paths": sorted(paths),
             "resumed_blocks": len(done)}
