@@ -40,7 +40,18 @@ from .errors import MvkdeError, MvkdeWarning
 from .boundary import methods as _methods
 from .estimator import fit_steps
 
-__all__ = ["fit_cells", "CellBatch", "CellProducts", "engine_work_bytes"]
+__all__ = ["fit_cells", "CellBatch", "CellProducts", "engine_work_bytes", "warm_up"]
+
+
+def warm_up() -> None:
+    """Load the compiled binning loops now (numba and its cached machine code, about 0.8 s).
+
+    A scheduler calls this before it forks worker processes, so that each
+    worker starts with them loaded instead of loading them itself.
+    """
+    from .engines.compiled import warm
+
+    warm()
 
 
 def engine_work_bytes() -> int:

@@ -275,3 +275,16 @@ def off_diagonal_power(spec, keep, self_sums, self_basis, scale, inv_volume, out
             for p in range(npat):
                 own += self_sums[c, p] * self_basis[p, k]
             out[c, k] = (z.real * z.real + z.imag * z.imag - own) * scale[k] * inv_volume[c]
+
+
+def warm() -> None:
+    """Load (or compile) every loop here for the argument types the library passes."""
+    f8, i8 = np.float64, np.int64
+    x = np.zeros((1, 2))
+    one, two = np.zeros(1, i8), np.array([0, 1], i8)
+    bin_terms(x, np.zeros(1), two, one, np.zeros(2), np.ones(2), np.ones(2, i8), one, np.ones(1), one, one, one,
+              one, two, np.zeros((1, 2), i8), np.ones(1), np.zeros((1, 1, 16)), np.full(2, 4, i8), np.zeros(1))
+    bin_cells_tent(x, np.zeros(1), two, np.zeros((1, 2)), np.ones((1, 2)), np.full(1, 4, i8), 4,
+                   np.zeros((1, 16)), np.zeros((1, 4)))
+    off_diagonal_power(np.zeros((1, 4), np.complex128), one, np.zeros((1, 4)), np.zeros((4, 1)), np.ones(1),
+                       np.ones(1), np.zeros((1, 1)))

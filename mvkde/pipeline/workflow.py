@@ -100,9 +100,9 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                    "each side and cut at the bounds"),
     },
     "compute": {
-        "scheduler": Key("threads", _scheduler, "threads (embedded local scheduler), processes, "
-                                                "local-cluster, synchronous, or the address of a running "
-                                                "dask.distributed scheduler"),
+        "scheduler": Key("processes", _scheduler, "processes (embedded local scheduler; forked worker "
+                                                  "processes), threads, local-cluster, synchronous, or the "
+                                                  "address of a running dask.distributed scheduler"),
         "workers": Key(None, _int(lo=1, optional=True), "threads, processes or local-cluster workers "
                                                         "(default: the number of cores)"),
         "block_size": Key("auto", _block_size, "cells per dask task (memory per task grows with it); "
