@@ -20,7 +20,12 @@ Circular variables are batched too: their von Mises kernels times the linear
 block's kernel (reflected or not) are kernel sums with periodic axes
 (``DirectionalModel.grid_pieces``), which the binned engine convolves
 circularly along those axes (:mod:`mvkde.engines.periodic`); their
-concentrations are still chosen cell by cell (:func:`mvkde.directional.model.choose`).
+smoothing goes through the same rounds: the von Mises mixture plug-in
+concentrations of a round (one EM for the block,
+:func:`mvkde.directional.selectors.mixture_plugin_concentrations`) and the
+linear block's bandwidth (``select_many``); cross-validated concentrations
+(alone, or jointly with the linear block) and the sphere's concentration are
+chosen cell by cell and ``CellBatch.path`` says so.
 Models that are not kernel sums on a regular lattice (spherical locations,
 the transformation, beta and gamma kernels, masks) are evaluated cell by
 cell, and ``CellBatch.path`` says which and why.
@@ -39,6 +44,7 @@ from . import products as _products
 from .errors import MvkdeError, MvkdeWarning
 from .boundary import methods as _methods
 from .estimator import fit_steps
+from .steps import ConcentrationRequest
 
 __all__ = ["fit_cells", "CellBatch", "CellProducts", "engine_work_bytes", "warm_up"]
 
@@ -222,6 +228,7 @@ def fit_cells(samples, *, axes, names=None, units=None, kernel="gaussian", form=
         estimates = _fit_all(samples, options, batch.errors, notes)
         _boundary_notes(estimates, notes)
         _fill_grids(batch, estimates, notes)
+        _selection_notes(estimates, notes)
         if products.any:
             notes.append("per-cell products are computed from each cell's estimate")
             limits = [(a[0], a[-1]) for a in axes]
@@ -246,6 +253,23 @@ def _boundary_notes(estimates, notes: list) -> None:
             used[choice] = used.get(choice, 0) + 1
     for choice, count in used.items():
         notes.append(f"boundary of {count} cell(s): {choice}")
+
+
+def _selection_notes(estimates, notes: list) -> None:
+    """Record the smoothing choices made cell by cell, for the provenance: cross-validated
+    concentrations (alone or jointly with the linear block) and the sphere's concentration.
+    The mixture plug-in concentrations and the linear block's separable selections are
+    answered for the whole block (``_select_round``); the closed-form rules cost O(n) per cell."""
+    for est in estimates:
+        attrs = {} if est is None else est.attrs
+        for key, value in attrs.items():
+            value = str(value)
+            if key.startswith("concentration_method_") and "cross-validation" in value:
+                if "joint" in value:
+                    notes.append(f"smoothing by {value}: the criterion couples the concentrations and the "
+                                 "linear block, so it is minimised cell by cell")
+                else:
+                    notes.append(f"concentration by {value}, cell by cell")
 
 
 def _refuse(batch: CellBatch, c: int, exc) -> None:
@@ -306,13 +330,19 @@ def _groups(requests: dict) -> dict:
     """Requests that one select_many call can answer, grouped."""
     out: dict = {}
     for c, r in requests.items():
+        if isinstance(r, ConcentrationRequest):
+            out.setdefault(("concentration",), []).append(c)
+            continue
         key = (r.method, r.data.shape[1], r.kernel, r.form, r.parametrization, r.weights is None)
         out.setdefault(key, []).append(c)
     return out
 
 
 def _select_round(requests) -> list:
-    """One BandwidthResult (or the error select would raise) per request, chosen together."""
+    """One BandwidthResult (or the error select would raise) per request, chosen together;
+    concentration requests: ``(nu, mixture)`` per request, the EM of all run together."""
+    if isinstance(requests[0], ConcentrationRequest):
+        return ConcentrationRequest.answer_many(requests)
     answers: list = [None] * len(requests)
     good = []
     for k, r in enumerate(requests):

@@ -19,7 +19,6 @@ a point mass), and splitting them would make an import circle.  The steps of
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -36,6 +35,7 @@ from .bandwidth import BandwidthMatrix, BandwidthResult, PARAMETRIZATIONS, selec
 from .errors import InputError, MvkdeError, check_choice
 from .kernels import FORMS, get_kernel, get_multivariate_kernel
 from . import sample as _sample
+from .steps import ConcentrationRequest, SelectionRequest
 from .support import Support
 from .units import density_units
 
@@ -149,27 +149,18 @@ def fit(data, *, kernel="gaussian", form="product", bandwidth="plugin", parametr
                                point_masses=point_masses, mask=mask, outside=outside, sphere=sphere))
 
 
-@dataclass
-class SelectionRequest:
-    """A bandwidth selection :func:`fit_steps` needs: the arguments of :func:`mvkde.bandwidth.select`."""
-
-    method: str
-    data: np.ndarray
-    weights: np.ndarray | None
-    kernel: str
-    form: str
-    parametrization: str
-    names: list
-
-
 def run_steps(steps) -> "DensityEstimate":
-    """Drive :func:`fit_steps` for one sample, answering each selection with ``select``."""
+    """Drive :func:`fit_steps` for one sample, answering each request alone (a block of one)."""
     try:
         request = next(steps)
         while True:
             try:
-                result = select(request.method, request.data, request.weights, kernel=request.kernel,
-                                form=request.form, parametrization=request.parametrization, names=request.names)
+                if isinstance(request, ConcentrationRequest):
+                    result = ConcentrationRequest.answer_many([request])[0]
+                else:
+                    result = select(request.method, request.data, request.weights, kernel=request.kernel,
+                                    form=request.form, parametrization=request.parametrization,
+                                    names=request.names)
             except MvkdeError as err:
                 request = steps.throw(err)
                 continue
@@ -181,9 +172,11 @@ def run_steps(steps) -> "DensityEstimate":
 def fit_steps(data, *, kernel="gaussian", form="product", bandwidth="plugin", parametrization="full",
               bounds=None, boundary=None, weights=None, periods=None, engine="auto",
               names=None, units=None, point_masses=None, mask=None, outside="error", sphere=None):
-    """:func:`fit` as a generator: yields a :class:`SelectionRequest` for each bandwidth it must
-    choose (the continuous part, then the other variables on a point mass), is sent the
-    :class:`BandwidthResult` (or thrown the selector's error), and returns the estimate.
+    """:func:`fit` as a generator: yields a :class:`~mvkde.steps.SelectionRequest` for each bandwidth
+    it must choose (the continuous part or the linear block of a directional estimate, then the
+    other variables on a point mass) and a :class:`~mvkde.steps.ConcentrationRequest` for each
+    circular variable's mixture plug-in concentration, is sent the answer (or thrown the
+    selector's error), and returns the estimate.
 
     :func:`fit` answers with :func:`mvkde.bandwidth.select`; the batch door
     (:mod:`mvkde.cells`) advances many cells together and answers a round of
@@ -215,7 +208,7 @@ def fit_steps(data, *, kernel="gaussian", form="product", bandwidth="plugin", pa
     if cont_values.shape[0] == 0:
         method, result, model = "none", _point_mass.no_bandwidth(d), _point_mass.EmptyModel(d)
     elif spec is not None:
-        model, result, method, concentrations, attrs = _directional.fit_model(
+        model, result, method, concentrations, attrs = yield from _directional.fit_model(
             cont_values, cont_w, names, spec, mk, bandwidth, parametrization, cont_box, boundary, engine)
     else:
         method, result, model, note = yield from _fit_linear(cont_values, cont_w, cont_box, mask_spec, names,

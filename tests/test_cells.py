@@ -165,3 +165,36 @@ def test_reflection_read_at_mirrored_nodes_equals_the_reflected_sum(rng):
     for engine, tol in (("exact", 1e-12), ("binned", DEFAULT_TOL)):
         batch = fit_cells([x], axes=axes, engine=engine, **options)
         assert np.abs(batch.density[0] - want).max() <= tol * want.max(), engine
+
+
+def test_circular_cells_with_the_default_plugin_equal_fit(rng):
+    # the mixture plug-in concentrations and the speed bandwidths are answered for the block
+    axes = [np.linspace(0.0, 360.0, 36), np.linspace(0.0, 14.0, 30)]
+    samples = []
+    for n, mean, kappa in [(300, 90.0, 2.0), (900, 250.0, 0.7), (500, 10.0, 6.0)]:
+        direction = np.mod(rng.vonmises(np.deg2rad(mean), kappa, n) * 180 / np.pi, 360.0)
+        if n == 900:      # a second peak
+            direction[::2] = np.mod(direction[::2] + 140.0, 360.0)
+        speed = 2.0 * np.sqrt(-np.log(rng.uniform(size=n)))
+        samples.append(np.column_stack([direction, speed]))
+    options = dict(periods=[360.0, None], bounds=[None, (0, None)], boundary="reflect")
+    batch = fit_cells(samples, axes=axes, **options)
+    assert batch.path == "batched"
+    for c, x in enumerate(samples):
+        est = mvkde.fit(x, **options)
+        np.testing.assert_allclose(batch.H[c], est.H, rtol=1e-10)
+        kappa = est.concentrations["x0"]
+        assert 1.0 / batch.H[c][0, 0] * (360.0 / (2 * np.pi)) ** 2 == pytest.approx(kappa, rel=1e-10)
+        grid = est.grid([36, 30], limits=[(0.0, 360.0), (0.0, 14.0)]).values
+        np.testing.assert_allclose(batch.density[c], grid, rtol=0, atol=1e-10 * grid.max())
+    alone = fit_cells(samples[1:2], axes=axes, **options)
+    np.testing.assert_allclose(alone.H[0], batch.H[1], rtol=1e-12)
+
+
+def test_joint_cross_validation_stays_per_cell_and_says_so(rng):
+    direction = np.mod(rng.vonmises(1.0, 2.0, 200) * 180 / np.pi, 360.0)
+    x = np.column_stack([direction, rng.gamma(2.0, 2.0, 200)])
+    options = dict(periods=[360.0, None], bounds=[None, (0, None)], boundary="reflect", bandwidth="mlcv")
+    batch = fit_cells([x], axes=[np.linspace(0, 360, 19), np.linspace(0, 20, 21)], **options)
+    assert "joint likelihood cross-validation" in batch.path and "cell by cell" in batch.path
+    np.testing.assert_allclose(batch.H[0], mvkde.fit(x, **options).H, rtol=1e-10)

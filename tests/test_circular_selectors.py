@@ -335,3 +335,34 @@ def test_sphere_cv_of_many_locations_subsamples_and_rescales():
     sub = F.sphere_likelihood_cv(u, max_n=800).kappa
     assert sub == pytest.approx(full, rel=0.25)
     assert F.sphere_likelihood_cv(u, max_n=800).kappa == sub  # seeded: the same subsample every time
+
+
+# ---------------------------------------------------------------------------
+# the mixture EM for a block of samples (cells)
+# ---------------------------------------------------------------------------
+
+def test_mixture_plugin_of_a_block_equals_each_sample_alone():
+    rng = np.random.default_rng(21)
+    mixes = [ONE_PEAK["kappa 1"], SEVERAL["two peaks"], SEVERAL["three peaks"], ONE_PEAK["kappa 0.5"]]
+    xs = [sample(mix, n, rng) for mix, n in zip(mixes, (500, 2000, 800, 40))]
+    weights = [None, rng.uniform(0.5, 2.0, 2000), None, None]
+    block = S.mixture_plugin_concentrations(xs, weights)
+    for x, w, (nu, mixture) in zip(xs, weights, block):
+        alone, alone_mixture = S.mixture_plugin_concentration(x, w, return_mixture=True)
+        assert nu == pytest.approx(alone, rel=1e-12)
+        assert mixture.components == alone_mixture.components
+    # the same cells in another order and grouping
+    again = S.mixture_plugin_concentrations(xs[::-1][:2], weights[::-1][:2])
+    assert again[0][0] == pytest.approx(block[3][0], rel=1e-12)
+    assert again[1][0] == pytest.approx(block[2][0], rel=1e-12)
+
+
+def test_one_component_fit_is_the_von_mises_maximum_likelihood():
+    # scipy.stats.vonmises.fit (maximum likelihood, scale fixed at 1) on the raw sample; the EM
+    # runs on 256 lattice nodes, so agreement is to the binning: measured 2e-5 (kappa), 1e-5 rad
+    from scipy import stats
+    x = sample(ONE_PEAK["kappa 2"], 3000, np.random.default_rng(4))
+    one = S.fit_von_mises_mixtures(x)[0]
+    kappa, loc, _ = stats.vonmises.fit(x, fscale=1)
+    assert one.kappas[0] == pytest.approx(kappa, rel=1e-3)
+    assert abs(np.angle(np.exp(1j * (one.means[0] - loc)))) < 1e-3

@@ -59,13 +59,14 @@ from . import kernels as _dir
 from . import pieces as _pieces
 from . import selectors as _sel
 from .spec import DirectionalSpec
-from ..bandwidth import SELECTORS, BandwidthMatrix, BandwidthResult, kernel_rescaling, select
+from ..bandwidth import SELECTORS, BandwidthMatrix, BandwidthResult, kernel_rescaling
 from ..boundary import BOUNDARY_METHODS, check_method, has_bounds
 from ..boundary.methods import axis_reach, evaluate_pieces, fold_into_box, forward_transform, inverse_transform
 from ..engines import EngineChoice, validate_engine
 from ..engines.exact import CHUNK_ELEMENTS, kernel_matrix
 from ..errors import InputError, check_choice
 from ..kernels import get_multivariate_kernel
+from ..steps import ConcentrationRequest, SelectionRequest
 
 #: boundary methods available for the linear block of a directional estimate
 DIRECTIONAL_BOUNDARY = ("none", "reflect", "transform")
@@ -239,9 +240,37 @@ def _joint_cv(method, theta, units, lin_values, weights, spec, parametrization):
     return r, label + how
 
 
+def _choose_separately(method, theta, units, weights, spec, names, notes, n_eff):
+    """Concentrations of the circular variables and the sphere, each alone (every selector but the
+    joint cross-validation); a generator that yields a ConcentrationRequest per circular variable
+    for the mixture plug-in.  Returns ``(kappas, kappa_sphere, at_edge)`` and fills ``notes``."""
+    kappas, ks, at_edge = {}, None, False
+    for col, j in enumerate(spec.circular):
+        if method == "normal":
+            kappas[j] = _sel.normal_concentration(theta[:, col], weights)
+            notes[names[j]] = ("Garcia-Portugues (2013) rule, von Mises reference "
+                               "(oversmooths several peaks)")
+        else:
+            kappas[j], mixture = yield ConcentrationRequest(theta[:, col], weights)
+            notes[names[j]] = (f"von Mises mixture plug-in (Oliveira et al. 2012), "
+                               f"{mixture.components} component(s) by BIC")
+    if spec.sphere is not None:
+        if method == "normal":
+            k_mle = _dir.vmf_mle_kappa(units, weights)
+            ks = 1.0 / _dir.sphere_rule_h_from_kappa(k_mle, n_eff) ** 2
+            label = "Garcia-Portugues (2013) rule of thumb"
+        else:
+            r = _fast_cv.sphere_likelihood_cv(units, weights)
+            ks, at_edge = r.kappa, r.at_edge
+            label = "likelihood cross-validation (locations alone, KD-tree neighbours)"
+        for j in spec.sphere:
+            notes[names[j]] = label
+    return kappas, ks, at_edge
+
+
 def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form, parametrization, names,
-           lin_values) -> Smoothing:
-    """Concentrations and the linear bandwidth for selector ``method``.
+           lin_values):
+    """Concentrations and the linear bandwidth for selector ``method`` (a generator, see below).
 
     Circular variables (von Mises kernel; :mod:`mvkde.directional_selectors`):
     ``"normal"`` -- the Garcia-Portugues (2013) AMISE rule under a von Mises
@@ -267,6 +296,15 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
         ``lin_values``: the linear columns the selector sees (transformed for ``boundary="transform"``).
     weights : ndarray, shape (n,), or None
     spec, names : DirectionalSpec, list of str
+
+    Yields
+    ------
+    ConcentrationRequest or SelectionRequest
+        The mixture plug-in concentration of each circular variable (``"plugin"`` and the other
+        plug-in names), then the linear block's bandwidth (every selector but the joint
+        cross-validation): :func:`mvkde.fit` answers each alone, :func:`mvkde.cells.fit_cells`
+        a round of cells together.  The rules, the joint cross-validation and the sphere's
+        concentration are computed here, per cell.
 
     Returns
     -------
@@ -308,30 +346,11 @@ def choose(method: str, values, weights, spec: DirectionalSpec, *, kernel, form,
                                          criterion=r.criterion, converged=r.converged, at_edge=r.at_edge,
                                          details={"selected_jointly_with": "directional concentrations"})
     else:
-        for col, j in enumerate(spec.circular):
-            if method == "normal":
-                kappas[j] = _sel.normal_concentration(theta[:, col], weights)
-                notes[names[j]] = ("Garcia-Portugues (2013) rule, von Mises reference "
-                                   "(oversmooths several peaks)")
-            else:
-                kappas[j], mixture = _sel.mixture_plugin_concentration(theta[:, col], weights,
-                                                                       return_mixture=True)
-                notes[names[j]] = (f"von Mises mixture plug-in (Oliveira et al. 2012), "
-                                   f"{mixture.components} component(s) by BIC")
-        if spec.sphere is not None:
-            if method == "normal":
-                k_mle = _dir.vmf_mle_kappa(units, weights)
-                ks = 1.0 / _dir.sphere_rule_h_from_kappa(k_mle, n_eff) ** 2
-                label = "Garcia-Portugues (2013) rule of thumb"
-            else:
-                r = _fast_cv.sphere_likelihood_cv(units, weights)
-                ks, at_edge = r.kappa, r.at_edge
-                label = "likelihood cross-validation (locations alone, KD-tree neighbours)"
-            for j in spec.sphere:
-                notes[names[j]] = label
+        kappas, ks, at_edge = yield from _choose_separately(method, theta, units, weights, spec, names, notes,
+                                                            n_eff)
         if q:
-            lin_result = select(method, lin_values, weights, kernel=kernel, form=form,
-                                parametrization=parametrization, names=[names[j] for j in spec.linear])
+            lin_result = yield SelectionRequest(method, lin_values, weights, kernel, form, parametrization,
+                                                [names[j] for j in spec.linear])
     for j, k in list(kappas.items()):
         if not (math.isfinite(k) and k > 0):
             raise InputError(f"the concentration of {names[j]} could not be chosen (got {k}); the sample may "
@@ -723,7 +742,8 @@ def _fold(y, box):
 
 def fit_model(values, w, names, spec: DirectionalSpec, mk, bandwidth, parametrization, box, boundary,
               engine="auto"):
-    """The directional smoothing and model of :func:`mvkde.fit` (data already wrapped and checked).
+    """The directional smoothing and model of :func:`mvkde.fit` (data already wrapped and checked);
+    a generator that yields the requests of :func:`choose` (``yield from`` it in ``fit_steps``).
 
     Parameters
     ----------
@@ -762,7 +782,7 @@ def fit_model(values, w, names, spec: DirectionalSpec, mk, bandwidth, parametriz
         sel_lin = lin_values
     if isinstance(bandwidth, str):
         method_bw = check_choice("bandwidth", bandwidth, SELECTORS)
-        sm = choose(method_bw, values, w, spec, kernel=mk.name, form=mk.form, parametrization=parametrization,
+        sm = yield from choose(method_bw, values, w, spec, kernel=mk.name, form=mk.form, parametrization=parametrization,
                     names=names, lin_values=sel_lin)
     else:
         matrix = bandwidth.H if isinstance(bandwidth, BandwidthResult) else bandwidth
