@@ -83,7 +83,8 @@ Binning error, its correction and the refinement
     integrals).  The biweight's second derivative jumps (by J2) at the edge of
     its support; data whose bins meet the edge add J2 W^2 / 8 each.
 
-    The refinement starts at the smallest r_j with D_j |a_j| <= RESOLVE and
+    The refinement starts at the smallest r_j with D_j |a_j| <= RESOLVE (RESOLVE_LARGE
+    for samples above SMALL_SAMPLE rows) and
     grows while the estimate exceeds tol x peak (the peak: the largest
     value on the lattice nodes inside the output box); the error is taken
     to scale as D^3 for smooth kernels (whose second-order term is corrected),
@@ -117,17 +118,22 @@ from .binning import ONE, U, U_CROSS, U_SKEW, U_SQUARED, WEIGHT, _bin, _cross_ta
 
 MAX_DIM = 4
 DEFAULT_TOL = 1e-3
-RESOLVE = 0.5            # start: bins at most half a conditional kernel standard deviation wide
-# closed-form Gaussian spectrum when bins are at most this many conditional sds wide: the
-# aliases it leaves out are below sum_j 2 exp(-pi^2 / (2 * 0.6^2)) = 4.5e-6 x peak in 2-D
-# (1/200 of the default tolerance), and the sampled kernel's own transform is saved
+# first bins at most RESOLVE conditional kernel sds wide (RESOLVE_LARGE above SMALL_SAMPLE
+# rows): sums of a few thousand points are rough at the kernel's scale (pipeline cells, n =
+# 3,650: bins 0.7-0.95 sd gave 4-7e-3 x peak), sums of 1e5-1e7 points are smooth (1x1 met 1e-3
+# with bins up to 1 sd on the engine benchmark's normal cases: 5e-4, 4e-5, 5e-5)
+RESOLVE = 0.5
+RESOLVE_LARGE = 1.0
+SMALL_SAMPLE = 20_000
+# closed-form Gaussian spectrum up to bins this many conditional sds wide: the aliases left
+# out are below sum_j 2 exp(-pi^2 / (2 * 0.6^2)) = 4.5e-6 x peak in 2-D
 ALIAS_FREE = 0.6
 SAFETY = 2.0             # margin on the estimated higher-order error terms
 MAX_LATTICE = 6_000_000  # nodes per cell of the internal lattice (48 MB per array)
 MAX_ROUNDS = 4           # refinement rounds before giving up (and saying so)
 
 __all__ = ["BinnedInfo", "DEFAULT_TOL", "MAX_DIM", "grid_density", "grid_density_many",
-           "regular_spacing", "starting_refinement", "lattice_for"]
+           "regular_spacing", "resolve_for", "starting_refinement", "lattice_for"]
 
 
 @dataclass(frozen=True)
@@ -393,8 +399,13 @@ def _shell_spectra(bws, mk, nfft, delta, margins):
 # the engine
 # ---------------------------------------------------------------------------
 
-def starting_refinement(axes, bws) -> np.ndarray:
-    """Smallest r_j with bins at most RESOLVE conditional standard deviations wide.
+def resolve_for(n: int) -> float:
+    """Widest starting bin, in conditional kernel sds, for a largest sample of ``n`` rows."""
+    return RESOLVE if n <= SMALL_SAMPLE else RESOLVE_LARGE
+
+
+def starting_refinement(axes, bws, n: int = 0) -> np.ndarray:
+    """Smallest r_j with bins at most :func:`resolve_for` (n) conditional standard deviations wide.
 
     Parameters
     ----------
@@ -402,6 +413,8 @@ def starting_refinement(axes, bws) -> np.ndarray:
         Regular grid axes.
     bws : list of BandwidthMatrix
         The refinement suits all of them.
+    n : int, optional
+        Rows of the largest sample.
 
     Returns
     -------
@@ -411,7 +424,7 @@ def starting_refinement(axes, bws) -> np.ndarray:
     r = np.ones(len(axes), dtype=np.int64)
     for bw in bws:
         a = _conditional_inverse_sd(bw)
-        r = np.maximum(r, np.ceil(delta_out * a / RESOLVE - 1e-9).astype(np.int64))
+        r = np.maximum(r, np.ceil(delta_out * a / resolve_for(n) - 1e-9).astype(np.int64))
     return r
 
 
@@ -526,7 +539,7 @@ def grid_density_many(axes, samples, weights, bws, mk: MultivariateKernel, tol=D
     # r = 2 to 4 on correlated Gaussian cells); assuming D^2 overshot the refinement
     order = {"smooth": 3.0, "curvature": 2.0, "kink": 1.0, "jump": 0.5}[kind]
     todo = np.arange(cells)
-    r = starting_refinement(axes, bws)
+    r = starting_refinement(axes, bws, max(x.shape[0] for x in samples))
     for round_ in range(MAX_ROUNDS):
         sub_bws = [bws[c] for c in todo]
         max_w = max(_max_weight(samples[c].shape[0], weights[c]) for c in todo)
@@ -667,30 +680,15 @@ def _convolve(todo, samples, weights, bws, mk, lo, delta, margins, shape, r):
 
 def grid_density(axes, data, weights, bw: BandwidthMatrix, mk: MultivariateKernel, tol=DEFAULT_TOL,
                  max_lattice=MAX_LATTICE):
-    """Binned density of one sample on a regular grid: (values, BinnedInfo).
+    """Binned density of one sample on a regular grid: :func:`grid_density_many` for one cell.
 
-    Parameters
-    ----------
-    axes : list of ndarray
-        Regular grid axes (>= 2 nodes each).
-    data : ndarray, shape (n, d)
-    weights : ndarray, shape (n,), or None
-        Weights summing to one.
-    bw : BandwidthMatrix
-    mk : MultivariateKernel
-    tol : float, optional
-        Target max |binning error| relative to the peak density.
-    max_lattice : int, optional
-        Largest number of lattice nodes.
+    Parameters are those of :func:`grid_density_many` for one cell: ``data``
+    (n, d), ``weights`` (n,) summing to one or None, and its ``bw``.
 
     Returns
     -------
     values : ndarray, shape (len(axes[0]), ..., len(axes[d-1]))
     info : BinnedInfo
-
-    See Also
-    --------
-    grid_density_many
     """
     values, infos = grid_density_many(axes, [data], [weights], [bw], mk, tol, max_lattice)
     return values[0], infos[0]

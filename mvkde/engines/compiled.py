@@ -288,3 +288,91 @@ def warm() -> None:
                    np.zeros((1, 16)), np.zeros((1, 4)))
     off_diagonal_power(np.zeros((1, 4), np.complex128), one, np.zeros((1, 4)), np.zeros((4, 1)), np.ones(1),
                        np.ones(1), np.zeros((1, 1)))
+
+
+@numba.njit(nogil=True, cache=True)
+def bin_piece_box(x, w, c, origin, delta, upper, blo, bshape, kind, coef, fj, fk, mode, target, tap_ptr,
+                  tap_shift, tap_coef, out, nfft, dropped):
+    """One piece (cell ``c``) binned through a box, for pieces with many rows.
+
+    Every term is first binned plainly (tent corners or nearest node) into a
+    (terms, box nodes) table over the box ``blo``, ``bshape`` (the piece's bins
+    plus the taps' reach on every side); each term's stencil is then applied
+    to its column as shifted flat slices (a tap that crosses a row reads the
+    empty margin, i.e. zero) and the targets are added into ``out`` (clipped to
+    the array).  A datum then costs 2^d + 1 deposits whatever the stencils, and
+    the stencils cost box nodes x taps: cheaper than :func:`bin_terms` when the
+    piece has more rows than its box has nodes.  Same arguments as
+    :func:`bin_terms`, for one piece; equal results up to the order of the sums.
+    """
+    d = x.shape[1]
+    nterm = kind.shape[0]
+    ncorner = 1 << d
+    bstride = np.empty(d, np.int64)
+    s = 1
+    for j in range(d - 1, -1, -1):
+        bstride[j] = s
+        s *= bshape[j]
+    bsize = s
+    table = np.zeros((nterm, bsize))
+    k = np.empty(d, np.int64)
+    t = np.empty(d)
+    u = np.empty(d)
+    cwt = np.empty(ncorner)
+    corner_flat = np.zeros(ncorner, np.int64)
+    for corner in range(ncorner):
+        for j in range(d):
+            if (corner >> (d - 1 - j)) & 1:
+                corner_flat[corner] += bstride[j]
+    big = np.full(d, 1 << 40, np.int64)
+    for i in range(x.shape[0]):
+        # the box holds every bin of the piece: only the lattice's own limits can drop a row
+        ok, _safe, _base, _near = _locate(x[i], origin, delta, upper, big, 0, bstride, k, t, u)
+        if not ok:
+            dropped[c] += w[i]
+            continue
+        base = 0
+        near = 0
+        for j in range(d):
+            base += (k[j] - blo[j]) * bstride[j]
+            near += (k[j] - blo[j] + (1 if t[j] >= 0.5 else 0)) * bstride[j]
+        _tent_weights(t, cwt)
+        for term in range(nterm):
+            value = w[i] * coef[term] * _factor(kind[term], fj[term], fk[term], t, u, w[i])
+            if mode[term] == NEAREST:
+                table[term, near] += value
+            else:
+                for corner in range(ncorner):
+                    table[term, base + corner_flat[corner]] += value * cwt[corner]
+    ngroups = out.shape[0]
+    acc = np.zeros((ngroups, bsize))
+    for term in range(nterm):
+        g = target[term]
+        for q in range(tap_ptr[term], tap_ptr[term + 1]):
+            sh = 0
+            for j in range(d):
+                sh += tap_shift[q, j] * bstride[j]
+            lo = max(0, -sh)
+            hi = bsize - max(0, sh)
+            cf = tap_coef[q]
+            src = table[term]
+            dst = acc[g]
+            for p in range(lo, hi):
+                dst[p] += cf * src[p + sh]
+    # the boxes into the lattice, clipped to it
+    idx = np.zeros(d, np.int64)
+    for p in range(bsize):
+        rem = p
+        flat = 0
+        inside = True
+        for j in range(d):
+            idx[j] = rem // bstride[j]
+            rem -= idx[j] * bstride[j]
+            node = blo[j] + idx[j]
+            if node < 0 or node >= nfft[j]:
+                inside = False
+                break
+            flat = flat * nfft[j] + node
+        if inside:
+            for g in range(ngroups):
+                out[g, c, flat] += acc[g, p]
