@@ -84,7 +84,7 @@ Binning error, its correction and the refinement
     its support; data whose bins meet the edge add J2 W^2 / 8 each.
 
     The refinement starts at the smallest r_j with D_j |a_j| <= RESOLVE (RESOLVE_LARGE
-    for samples above SMALL_SAMPLE rows) and
+    for sums of many data per kernel volume, see SMOOTH_SUM) and
     grows while the estimate exceeds tol x peak (the peak: the largest
     value on the lattice nodes inside the output box); the error is taken
     to scale as D^3 for smooth kernels (whose second-order term is corrected),
@@ -118,13 +118,12 @@ from .binning import ONE, U, U_CROSS, U_SKEW, U_SQUARED, WEIGHT, _bin, _cross_ta
 
 MAX_DIM = 4
 DEFAULT_TOL = 1e-3
-# first bins at most RESOLVE conditional kernel sds wide (RESOLVE_LARGE above SMALL_SAMPLE
-# rows): sums of a few thousand points are rough at the kernel's scale (pipeline cells, n =
-# 3,650: bins 0.7-0.95 sd gave 4-7e-3 x peak), sums of 1e5-1e7 points are smooth (1x1 met 1e-3
-# with bins up to 1 sd on the engine benchmark's normal cases: 5e-4, 4e-5, 5e-5)
+# first bins at most RESOLVE conditional sds wide; RESOLVE_LARGE when every cell has SMOOTH_SUM
+# data per kernel volume (n sqrt(det H) / prod sd_j): pipeline cells (36-150) and 3-D n = 1e5
+# (290-510) failed at 1 sd, 2-D n = 1e5 (1,260-1,950) and 1e6 (9,100) normal data met 1e-3 there
 RESOLVE = 0.5
 RESOLVE_LARGE = 1.0
-SMALL_SAMPLE = 20_000
+SMOOTH_SUM = 1_000
 # closed-form Gaussian spectrum up to bins this many conditional sds wide: the aliases left
 # out are below sum_j 2 exp(-pi^2 / (2 * 0.6^2)) = 4.5e-6 x peak in 2-D
 ALIAS_FREE = 0.6
@@ -399,13 +398,20 @@ def _shell_spectra(bws, mk, nfft, delta, margins):
 # the engine
 # ---------------------------------------------------------------------------
 
-def resolve_for(n: int) -> float:
-    """Widest starting bin, in conditional kernel sds, for a largest sample of ``n`` rows."""
-    return RESOLVE if n <= SMALL_SAMPLE else RESOLVE_LARGE
+def resolve_for(samples, bws) -> float:
+    """Widest starting bin, in conditional kernel sds, for these cells (see SMOOTH_SUM)."""
+    for x, bw in zip(samples, bws):
+        n, d = x.shape
+        if n < SMOOTH_SUM:
+            return RESOLVE
+        sd = np.array([x[:, j].std() for j in range(d)])   # column by column: see data_window
+        if not np.all(sd > 0) or n * bw.sqrt_det / float(np.prod(sd)) < SMOOTH_SUM:
+            return RESOLVE
+    return RESOLVE_LARGE
 
 
-def starting_refinement(axes, bws, n: int = 0) -> np.ndarray:
-    """Smallest r_j with bins at most :func:`resolve_for` (n) conditional standard deviations wide.
+def starting_refinement(axes, bws, resolve: float = RESOLVE) -> np.ndarray:
+    """Smallest r_j with bins at most ``resolve`` conditional standard deviations wide.
 
     Parameters
     ----------
@@ -413,8 +419,8 @@ def starting_refinement(axes, bws, n: int = 0) -> np.ndarray:
         Regular grid axes.
     bws : list of BandwidthMatrix
         The refinement suits all of them.
-    n : int, optional
-        Rows of the largest sample.
+    resolve : float, optional
+        See :func:`resolve_for`.
 
     Returns
     -------
@@ -424,7 +430,7 @@ def starting_refinement(axes, bws, n: int = 0) -> np.ndarray:
     r = np.ones(len(axes), dtype=np.int64)
     for bw in bws:
         a = _conditional_inverse_sd(bw)
-        r = np.maximum(r, np.ceil(delta_out * a / resolve_for(n) - 1e-9).astype(np.int64))
+        r = np.maximum(r, np.ceil(delta_out * a / resolve - 1e-9).astype(np.int64))
     return r
 
 
@@ -539,7 +545,7 @@ def grid_density_many(axes, samples, weights, bws, mk: MultivariateKernel, tol=D
     # r = 2 to 4 on correlated Gaussian cells); assuming D^2 overshot the refinement
     order = {"smooth": 3.0, "curvature": 2.0, "kink": 1.0, "jump": 0.5}[kind]
     todo = np.arange(cells)
-    r = starting_refinement(axes, bws, max(x.shape[0] for x in samples))
+    r = starting_refinement(axes, bws, resolve_for(samples, bws))
     for round_ in range(MAX_ROUNDS):
         sub_bws = [bws[c] for c in todo]
         max_w = max(_max_weight(samples[c].shape[0], weights[c]) for c in todo)

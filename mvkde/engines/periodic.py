@@ -429,11 +429,11 @@ def _convolve(xs, ws, pbws, mk_lin, geo: _Geometry, r):
     return vals, err, dropped
 
 
-def _starting_refinement(axes, pbws, steps, n):
+def _starting_refinement(axes, pbws, steps):
     delta_out = _binned.regular_spacing(axes)
     r = np.ones(len(axes), dtype=np.int64)
     for p in pbws:
-        r = np.maximum(r, np.ceil(delta_out * p.inverse_sd() / _binned.resolve_for(n) - 1e-9).astype(np.int64))
+        r = np.maximum(r, np.ceil(delta_out * p.inverse_sd() / _binned.RESOLVE - 1e-9).astype(np.int64))
     for j, M in steps.items():
         r[j] = max(r[j], -(-MIN_NODES // M))
     return r
@@ -474,7 +474,7 @@ def grid_density_many(axes, samples, weights, pbws, kernel: MultivariateKernel, 
     values = np.zeros((cells,) + tuple(len(a) for a in full_axes))
     infos: list = [None] * cells
     todo = np.arange(cells)
-    r = _starting_refinement(full_axes, pbws, steps, max(x.shape[0] for x in samples))
+    r = _starting_refinement(full_axes, pbws, steps)
     for round_ in range(_binned.MAX_ROUNDS):
         sub = [pbws[c] for c in todo]
         max_w = max(_binned._max_weight(samples[c].shape[0], weights[c]) for c in todo)
