@@ -124,9 +124,7 @@ DEFAULT_TOL = 1e-3
 RESOLVE = 0.5
 RESOLVE_LARGE = 1.0
 SMOOTH_SUM = 1_000
-# closed-form Gaussian spectrum up to bins this many conditional sds wide: the aliases left
-# out are below sum_j 2 exp(-pi^2 / (2 * 0.6^2)) = 4.5e-6 x peak in 2-D
-ALIAS_FREE = 0.6
+ALIAS_FREE = 0.6         # closed-form spectrum up to this bin width: aliases < 4.5e-6 x peak (2-D)
 SAFETY = 2.0             # margin on the estimated higher-order error terms
 MAX_LATTICE = 6_000_000  # nodes per cell of the internal lattice (48 MB per array)
 MAX_ROUNDS = 4           # refinement rounds before giving up (and saying so)
@@ -401,11 +399,8 @@ def _shell_spectra(bws, mk, nfft, delta, margins):
 def resolve_for(samples, bws) -> float:
     """Widest starting bin, in conditional kernel sds, for these cells (see SMOOTH_SUM)."""
     for x, bw in zip(samples, bws):
-        n, d = x.shape
-        if n < SMOOTH_SUM:
-            return RESOLVE
-        sd = np.array([x[:, j].std() for j in range(d)])   # column by column: see data_window
-        if not np.all(sd > 0) or n * bw.sqrt_det / float(np.prod(sd)) < SMOOTH_SUM:
+        sd = np.array([x[:, j].std() for j in range(x.shape[1])]) if len(x) >= SMOOTH_SUM else 0.0
+        if not np.all(sd > 0) or len(x) * bw.sqrt_det / float(np.prod(sd)) < SMOOTH_SUM:
             return RESOLVE
     return RESOLVE_LARGE
 
@@ -675,13 +670,16 @@ def _convolve(todo, samples, weights, bws, mk, lo, delta, margins, shape, r):
         # it by less than the error bound, and setting those nodes to 0 only
         # brings them closer to the truth
         np.maximum(fine, 0.0, out=fine)
-    picks = (slice(None),) + tuple(slice(0, None, int(rj)) for rj in r)
-    vals = fine[picks]
-    peak = np.max(fine.reshape(cells, -1), axis=1)
-    emax = np.max(bound.reshape(cells, -1), axis=1)
+    return (*output_nodes(fine, bound, r), dropped)
+
+
+def output_nodes(fine, bound, r):
+    """Values at the output nodes (every r_j-th lattice node) and each cell's error estimate / peak."""
+    peak = np.max(fine.reshape(fine.shape[0], -1), axis=1)
+    emax = np.max(bound.reshape(fine.shape[0], -1), axis=1)
     with np.errstate(divide="ignore", invalid="ignore"):
         err = np.where(peak > 0, emax / peak, 0.0)
-    return vals, err, dropped
+    return fine[(slice(None),) + tuple(slice(0, None, int(rj)) for rj in r)], err
 
 
 def grid_density(axes, data, weights, bw: BandwidthMatrix, mk: MultivariateKernel, tol=DEFAULT_TOL,

@@ -420,13 +420,7 @@ def _convolve(xs, ws, pbws, mk_lin, geo: _Geometry, r):
     bound = _binned.SAFETY * np.abs(conv(outs[1]))
     if mk_lin is None or mk_lin.univariate.is_nonnegative:
         np.maximum(fine, 0.0, out=fine)
-    picks = (slice(None),) + tuple(slice(0, None, int(rj)) for rj in r)
-    vals = fine[picks]
-    peak = np.max(fine.reshape(cells, -1), axis=1)
-    emax = np.max(bound.reshape(cells, -1), axis=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        err = np.where(peak > 0, emax / peak, 0.0)
-    return vals, err, dropped
+    return (*_binned.output_nodes(fine, bound, r), dropped)
 
 
 def _starting_refinement(axes, pbws, steps):
