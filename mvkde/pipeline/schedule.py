@@ -109,13 +109,15 @@ class Scheduler:
         two thirds of a block's time is numpy and Python work that holds the GIL
         (measured: 2 threads ran no faster than 1).  Restored on exit.
         """
-        import multiprocessing
+        import sys
 
         import dask
 
         from ..cells import warm_up
 
-        method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
+        # fork only on Linux: macOS's system libraries are not safe to use after a fork
+        # (Python itself defaults to spawn there)
+        method = "fork" if sys.platform.startswith("linux") else "spawn"
         if method == "fork":
             warm_up()
         self._context = dask.config.set({"multiprocessing.context": method})
