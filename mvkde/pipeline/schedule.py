@@ -99,7 +99,7 @@ class Scheduler:
         return self
 
     def _start_processes(self) -> None:
-        """Worker processes forked from this one, where the platform can fork.
+        """Worker processes forked from this one (on Linux; spawned elsewhere).
 
         A forked worker starts with everything this process has imported and
         compiled (the binning loops are loaded here first, :func:`mvkde.cells.warm_up`),
