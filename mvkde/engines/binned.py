@@ -107,7 +107,6 @@ from __future__ import annotations
 
 import itertools
 import math
-from dataclasses import dataclass
 
 import numpy as np
 from scipy import fft as sfft
@@ -115,6 +114,7 @@ from scipy import fft as sfft
 from ..bandwidth.matrix import BandwidthMatrix
 from ..kernels import MultivariateKernel
 from .binning import ONE, U, U_CROSS, U_SKEW, U_SQUARED, WEIGHT, _bin, _cross_taps, _taps, factor
+from .refine import BinnedInfo, accept_round, next_refinement
 
 MAX_DIM = 4
 DEFAULT_TOL = 1e-3
@@ -131,35 +131,6 @@ MAX_ROUNDS = 4           # refinement rounds before giving up (and saying so)
 
 __all__ = ["BinnedInfo", "DEFAULT_TOL", "MAX_DIM", "grid_density", "grid_density_many",
            "regular_spacing", "resolve_for", "starting_refinement", "lattice_for"]
-
-
-@dataclass(frozen=True)
-class BinnedInfo:
-    """What the binned engine did for one cell."""
-
-    refinement: tuple[int, ...]
-    lattice: tuple[int, ...]
-    error_estimate: float        # SAFETY * max |leading binning error| / peak
-    tolerance: float
-    dropped_weight: float        # weight of data beyond the kernel's reach of the grid
-    met: bool                    # error_estimate <= tolerance
-
-    def describe(self) -> str:
-        """One sentence on the refinement, the error estimate and any dropped weight.
-
-        Returns
-        -------
-        str
-        """
-        r = "x".join(map(str, self.refinement))
-        lat = "x".join(map(str, self.lattice))
-        text = (f"refinement {r} (lattice {lat}), estimated binning error "
-                f"{self.error_estimate:.2g} x peak (tolerance {self.tolerance:.2g})")
-        if not self.met:
-            text += ": TOLERANCE NOT MET (lattice size limit)"
-        if self.dropped_weight > 0:
-            text += f"; weight {self.dropped_weight:.3g} beyond the kernel's reach dropped"
-        return text
 
 
 def regular_spacing(axes) -> np.ndarray | None:
@@ -558,28 +529,11 @@ def grid_density_many(axes, samples, weights, bws, mk: MultivariateKernel, tol=D
         vals, err, dropped = _convolve(todo, samples, weights, sub_bws, mk, lo, delta, margins,
                                        shape, r)
         last = capped or round_ == MAX_ROUNDS - 1
-        failing = []
-        for k, c in enumerate(todo):
-            met = bool(err[k] <= tol)
-            if met or last:
-                values[(c,) + tuple(window)] = vals[k]
-                infos[c] = BinnedInfo(tuple(int(v) for v in r), shape, float(err[k]), tol,
-                                      float(dropped[k]), met)
-            else:
-                failing.append(k)
+        failing = accept_round(todo, vals, err, dropped, r, shape, tol, last, values, window, infos)
         if not failing:
             break
-        need = float(np.max(err[failing])) / tol
         a = np.max([_conditional_inverse_sd(sub_bws[k]) for k in failing], axis=0)
-        share = (delta * a) ** 2
-        share = share / share.sum()
-        # new refinement from the predicted factor per axis (not a multiple of the
-        # old one: rounding the factor up to an integer overshot 4x4 to 6x6)
-        factor = (need * d * share) ** (1.0 / order)
-        new = np.maximum(r, np.ceil(r * factor - 1e-9).astype(np.int64))
-        if np.all(new == r):
-            new = r * 2
-        r = new
+        r = next_refinement(r, err[failing], tol, delta * a, order)
         todo = todo[failing]
     return values, infos
 

@@ -71,6 +71,7 @@ from ..kernels import MultivariateKernel, get_multivariate_kernel
 from . import binned as _binned
 from .binning import ONE, U, U_CROSS, U_SKEW, U_SQUARED, _bin, _cross_taps, _taps, factor
 from .exact import CHUNK_ELEMENTS, kernel_matrix
+from .refine import accept_round, next_refinement
 
 #: nodes added on each side of a period before folding (tent corner + stencil reach of 2)
 FOLD_MARGIN = 3
@@ -490,25 +491,11 @@ def grid_density_many(axes, samples, weights, pbws, kernel: MultivariateKernel, 
         vals, err, dropped = _convolve([samples[c] for c in todo], [weights[c] for c in todo], sub, mk_lin,
                                        geo, r)
         last = capped or round_ == _binned.MAX_ROUNDS - 1
-        failing = []
-        for k, c in enumerate(todo):
-            met = bool(err[k] <= tol)
-            if met or last:
-                values[(c,) + tuple(window)] = vals[k]
-                infos[c] = _binned.BinnedInfo(tuple(int(v) for v in r), tuple(geo.fft_shape), float(err[k]), tol,
-                                              float(dropped[k]), met)
-            else:
-                failing.append(k)
+        failing = accept_round(todo, vals, err, dropped, r, geo.fft_shape, tol, last, values, window, infos)
         if not failing:
             break
-        # the corrected error falls like D^3 (smooth kernels); growth shared as in binned.py
-        need = float(np.max(err[failing])) / tol
+        # the corrected error falls like D^3 (smooth kernels)
         a = np.max([sub[k].inverse_sd() for k in failing], axis=0)
-        share = (geo.delta * a) ** 2
-        share = share / share.sum()
-        new = np.maximum(r, np.ceil(r * (need * len(r) * share) ** (1.0 / 3.0) - 1e-9).astype(np.int64))
-        if np.all(new == r):
-            new = r * 2
-        r = new
+        r = next_refinement(r, err[failing], tol, geo.delta * a, 3.0)
         todo = todo[failing]
     return values, infos
